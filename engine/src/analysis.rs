@@ -1,0 +1,275 @@
+//! The correlation analysis of a release, end to end: reduce every pulsar, correlate every pair,
+//! fit the patterns, bin by angle, and write `summary.json`, `pairs.csv` and `bins.csv`.
+
+use crate::bins::{bin_pairs, Bin, Binning};
+use crate::constants::{GAMMA_BINARIES, SECONDS_PER_YEAR};
+use crate::error::{Error, Result};
+use crate::noise::RedProcess;
+use crate::optimal::{
+    multiple_component, optimal_statistic, pair_correlations, MultiComponent, OsEstimate,
+    PairCorrelations,
+};
+use crate::orf::{hellings_downs, Pattern};
+use crate::output::{fmt_f64, write_atomic, write_json};
+use crate::reduce::{reduce_release, FrequencyGrid, Reduced};
+use crate::release::Release;
+use crate::spectrum::{template, PowerLaw};
+use serde::Serialize;
+use std::collections::BTreeMap;
+use std::fmt::Write as _;
+use std::path::Path;
+
+/// Where the common process in each pulsar's auto-power comes from.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum CommonAutoPower {
+    /// The `[common]` table of noise.toml (none if absent).
+    FromNoiseModel,
+    /// No common process in the auto-power.
+    Off,
+    /// This power law instead.
+    Given(PowerLaw),
+}
+
+/// Settings of a correlation analysis.
+#[derive(Clone, Debug, Serialize)]
+pub struct CorrelateSettings {
+    /// Number of analysis frequencies K.
+    pub n_frequencies: usize,
+    /// Spectral index of the template (and of the common process unless given).
+    pub spectral_index: f64,
+    /// Number of angular bins.
+    pub n_bins: usize,
+    pub binning: Binning,
+    pub common: CommonAutoPower,
+}
+
+impl Default for CorrelateSettings {
+    fn default() -> Self {
+        CorrelateSettings {
+            n_frequencies: 14,
+            spectral_index: GAMMA_BINARIES,
+            n_bins: 10,
+            binning: Binning::EqualCount,
+            common: CommonAutoPower::FromNoiseModel,
+        }
+    }
+}
+
+impl CorrelateSettings {
+    /// Check ranges.
+    pub fn validate(&self) -> Result<()> {
+        if self.n_frequencies == 0 || self.n_frequencies > 1000 {
+            return Err(Error::setting(
+                "frequencies",
+                format!("must be in 1..=1000, got {}", self.n_frequencies),
+            ));
+        }
+        if !(self.spectral_index.is_finite()
+            && self.spectral_index > 0.0
+            && self.spectral_index <= 10.0)
+        {
+            return Err(Error::setting(
+                "spectral-index",
+                format!("must be in (0, 10], got {}", self.spectral_index),
+            ));
+        }
+        if self.n_bins == 0 {
+            return Err(Error::setting("bins", "need at least one bin"));
+        }
+        Ok(())
+    }
+
+    /// The common power law in the auto-power for a release, if any.
+    pub fn common_power_law(&self, release: &Release) -> Option<PowerLaw> {
+        match self.common {
+            CommonAutoPower::FromNoiseModel => {
+                release.noise.common.as_ref().map(RedProcess::power_law)
+            }
+            CommonAutoPower::Off => None,
+            CommonAutoPower::Given(p) => Some(p),
+        }
+    }
+}
+
+/// Everything a correlation analysis produces.
+#[derive(Clone, Debug)]
+pub struct Correlation {
+    pub grid: FrequencyGrid,
+    pub labels: Vec<String>,
+    pub reduced: Vec<Reduced>,
+    /// The template Phi (A = 1), length 2K.
+    pub phi: Vec<f64>,
+    pub pairs: PairCorrelations,
+    pub estimates: BTreeMap<Pattern, OsEstimate>,
+    pub multi: Option<MultiComponent>,
+    pub bins: Vec<Bin>,
+    pub common: Option<PowerLaw>,
+    /// Spectral index of the template.
+    pub spectral_index: f64,
+}
+
+impl Ord for Pattern {
+    fn cmp(&self, other: &Self) -> std::cmp::Ordering {
+        (*self as u8).cmp(&(*other as u8))
+    }
+}
+impl PartialOrd for Pattern {
+    fn partial_cmp(&self, other: &Self) -> Option<std::cmp::Ordering> {
+        Some(self.cmp(other))
+    }
+}
+
+/// Run the correlation analysis of a release.
+pub fn correlate(release: &Release, settings: &CorrelateSettings) -> Result<Correlation> {
+    settings.validate()?;
+    let grid = FrequencyGrid::for_release(release, settings.n_frequencies)?;
+    let common = settings.common_power_law(release);
+    let reduced = reduce_release(release, &release.noise, &grid, common.as_ref())?;
+    correlate_reduced(reduced, grid, settings, common)
+}
+
+/// The pair stage of the analysis from already reduced pulsars.
+pub fn correlate_reduced(
+    reduced: Vec<Reduced>,
+    grid: FrequencyGrid,
+    settings: &CorrelateSettings,
+    common: Option<PowerLaw>,
+) -> Result<Correlation> {
+    let phi = template(settings.spectral_index, &grid.freqs, grid.t_span);
+    let pairs = pair_correlations(&reduced, &phi)?;
+    let estimates = Pattern::ALL
+        .iter()
+        .map(|&p| {
+            (
+                p,
+                optimal_statistic(&pairs.rho, &pairs.sigma, &pairs.pattern_values(p)),
+            )
+        })
+        .collect();
+    let multi = multiple_component(&pairs, &Pattern::ALL).ok();
+    let bins = bin_pairs(&pairs, settings.n_bins, settings.binning);
+    Ok(Correlation {
+        labels: reduced.iter().map(|r| r.label.clone()).collect(),
+        grid,
+        reduced,
+        phi,
+        pairs,
+        estimates,
+        multi,
+        bins,
+        common,
+        spectral_index: settings.spectral_index,
+    })
+}
+
+/// The inputs and settings of a run, recorded in every output.
+#[derive(Clone, Debug, Serialize)]
+pub struct Provenance {
+    pub program: &'static str,
+    pub version: &'static str,
+    pub release_title: String,
+    pub input_hash: String,
+    pub settings: serde_json::Value,
+}
+
+impl Provenance {
+    /// Provenance of a run on `release` with `settings`.
+    pub fn new<S: Serialize>(release: &Release, settings: &S) -> Self {
+        Provenance {
+            program: "ptacorr",
+            version: crate::VERSION,
+            release_title: release.title.clone(),
+            input_hash: release.input_hash.clone(),
+            settings: serde_json::to_value(settings).unwrap_or(serde_json::Value::Null),
+        }
+    }
+}
+
+#[derive(Serialize)]
+struct Summary<'a> {
+    title: &'a str,
+    n_pulsars: usize,
+    n_pairs: usize,
+    n_frequencies: usize,
+    spectral_index: f64,
+    span_years: f64,
+    frequencies_hz: &'a [f64],
+    common_auto_power: Option<PowerLaw>,
+    patterns: BTreeMap<&'static str, OsEstimate>,
+    multiple_component: Option<&'a MultiComponent>,
+    notes: &'static str,
+    provenance: &'a Provenance,
+}
+
+/// What every summary says about its numbers.
+pub const SUMMARY_NOTES: &str = "amplitude2 estimates A^2 of the template power law (Phi with A = 1) under the noise model given; amplitude2_sigma is the no-signal uncertainty sigma_0, which understates the scatter when a signal is present; snr = amplitude2 / amplitude2_sigma is not a false-alarm probability (see `ptacorr null`); a detection claim needs the collaboration's full analysis.";
+
+impl Correlation {
+    /// Number of pulsars.
+    pub fn n_pulsars(&self) -> usize {
+        self.labels.len()
+    }
+
+    /// Write summary.json, pairs.csv and bins.csv into `dir` (each file atomically).
+    pub fn write(&self, dir: &Path, release: &Release, settings: &CorrelateSettings) -> Result<()> {
+        let provenance = Provenance::new(release, settings);
+        let summary = Summary {
+            title: &release.title,
+            n_pulsars: self.n_pulsars(),
+            n_pairs: self.pairs.len(),
+            n_frequencies: self.grid.k(),
+            spectral_index: settings.spectral_index,
+            span_years: self.grid.t_span / SECONDS_PER_YEAR,
+            frequencies_hz: &self.grid.freqs,
+            common_auto_power: self.common,
+            patterns: self.estimates.iter().map(|(p, e)| (p.name(), *e)).collect(),
+            multiple_component: self.multi.as_ref(),
+            notes: SUMMARY_NOTES,
+            provenance: &provenance,
+        };
+        let pairs = self.pairs_csv();
+        let bins = bins_csv(&self.bins);
+        write_json(&dir.join("summary.json"), &summary)?;
+        write_atomic(&dir.join("pairs.csv"), pairs.as_bytes())?;
+        write_atomic(&dir.join("bins.csv"), bins.as_bytes())
+    }
+
+    /// `pulsar_a,pulsar_b,angle_deg,rho,sigma,hd`.
+    pub fn pairs_csv(&self) -> String {
+        let mut s = String::from("pulsar_a,pulsar_b,angle_deg,rho,sigma,hd\n");
+        let p = &self.pairs;
+        for i in 0..p.len() {
+            let _ = writeln!(
+                s,
+                "{},{},{},{},{},{}",
+                self.labels[p.a[i]],
+                self.labels[p.b[i]],
+                fmt_f64(p.cos_angle[i].acos().to_degrees()),
+                fmt_f64(p.rho[i]),
+                fmt_f64(p.sigma[i]),
+                fmt_f64(hellings_downs(p.cos_angle[i]))
+            );
+        }
+        s
+    }
+}
+
+/// `angle_lo_deg,angle_hi_deg,angle_mean_deg,n_pairs,rho,sigma,hd`.
+pub fn bins_csv(bins: &[Bin]) -> String {
+    let mut s = String::from("angle_lo_deg,angle_hi_deg,angle_mean_deg,n_pairs,rho,sigma,hd\n");
+    for b in bins {
+        let _ = writeln!(
+            s,
+            "{},{},{},{},{},{},{}",
+            fmt_f64(b.angle_lo_deg),
+            fmt_f64(b.angle_hi_deg),
+            fmt_f64(b.angle_mean_deg),
+            b.n_pairs,
+            fmt_f64(b.rho),
+            fmt_f64(b.sigma),
+            fmt_f64(b.hd)
+        );
+    }
+    s
+}

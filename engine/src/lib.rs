@@ -1,0 +1,36 @@
+//! ptacorr: the engine of a gravitational-wave search with a pulsar timing array. It reads a
+//! release of timing residuals, reduces each pulsar once (Woodbury form, Fourier basis, timing
+//! model marginalised), forms every pair's cross-correlation with the optimal statistic, and
+//! compares them with the Hellings-Downs, monopole and dipole patterns.
+//!
+//! Data flow: [`release`] -> [`reduce`] -> [`optimal`] -> [`bins`] / [`analysis`].
+
+// Index loops mirror the formulas they implement (sums over i, j); keep them.
+#![allow(clippy::needless_range_loop)]
+
+// Link the system OpenBLAS for ndarray's matrix products and LAPACK.
+extern crate blas_src;
+extern crate openblas_src;
+
+pub mod analysis;
+pub mod basis;
+pub mod bins;
+pub mod constants;
+pub mod error;
+pub mod linalg;
+pub mod noise;
+pub mod optimal;
+pub mod orf;
+pub mod output;
+pub mod reduce;
+pub mod release;
+pub mod rng;
+pub mod scenario;
+pub mod simulate;
+pub mod sky;
+pub mod spectrum;
+
+pub use error::{Error, Result};
+
+/// Program version recorded in every output's provenance.
+pub const VERSION: &str = env!("CARGO_PKG_VERSION");

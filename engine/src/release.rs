@@ -1,0 +1,492 @@
+//! The release reader: `release.toml`, one residual CSV per pulsar, optional design matrices and
+//! `noise.toml`. Every malformed input becomes an [`Error::Input`] naming file, line and field.
+
+use crate::error::{Error, Result};
+use crate::noise::{line_of, toml_error, NoiseModel};
+use crate::sky::{direction_from_radec, parse_dec, parse_ra, Direction};
+use ndarray::Array2;
+use serde::Deserialize;
+use sha2::{Digest, Sha256};
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+
+/// Header of a residual table, in order.
+pub const RESIDUAL_COLUMNS: [&str; 5] = ["mjd", "residual_s", "sigma_s", "freq_mhz", "backend"];
+
+/// The timing residuals and metadata of one pulsar.
+#[derive(Clone, Debug)]
+pub struct Pulsar {
+    pub label: String,
+    /// Right ascension and declination (radians, J2000).
+    pub ra: f64,
+    pub dec: f64,
+    pub direction: Direction,
+    /// Times of arrival (MJD), residuals (s), uncertainties (s), radio frequencies (MHz).
+    pub mjd: Vec<f64>,
+    pub residual: Vec<f64>,
+    pub sigma: Vec<f64>,
+    pub freq_mhz: Vec<f64>,
+    /// Index into `backends` for each TOA.
+    pub backend: Vec<usize>,
+    /// Distinct backend labels in order of first appearance.
+    pub backends: Vec<String>,
+    /// The exported timing-model design matrix (n_toa x n_param), if any.
+    pub design: Option<DesignMatrix>,
+}
+
+impl Pulsar {
+    /// Number of TOAs.
+    pub fn n_toa(&self) -> usize {
+        self.mjd.len()
+    }
+}
+
+/// A timing-model design matrix with its parameter names.
+#[derive(Clone, Debug)]
+pub struct DesignMatrix {
+    pub names: Vec<String>,
+    pub values: Array2<f64>,
+}
+
+/// A residual release: pulsars, their noise model, and a content hash of the input files.
+#[derive(Clone, Debug)]
+pub struct Release {
+    pub title: String,
+    pub pulsars: Vec<Pulsar>,
+    pub noise: NoiseModel,
+    /// The release folder.
+    pub dir: PathBuf,
+    /// `sha256:` hash over the names and bytes of every input file, in reading order.
+    pub input_hash: String,
+}
+
+impl Release {
+    /// Earliest and latest MJD over all TOAs.
+    pub fn mjd_range(&self) -> (f64, f64) {
+        let mut lo = f64::INFINITY;
+        let mut hi = f64::NEG_INFINITY;
+        for p in &self.pulsars {
+            for &t in &p.mjd {
+                lo = lo.min(t);
+                hi = hi.max(t);
+            }
+        }
+        (lo, hi)
+    }
+
+    /// Span of the whole array in seconds.
+    pub fn span_seconds(&self) -> f64 {
+        let (lo, hi) = self.mjd_range();
+        (hi - lo) * crate::constants::SECONDS_PER_DAY
+    }
+
+    /// Total number of TOAs.
+    pub fn n_toa(&self) -> usize {
+        self.pulsars.iter().map(Pulsar::n_toa).sum()
+    }
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct ReleaseFile {
+    release: ReleaseHeader,
+    #[serde(default)]
+    pulsar: Vec<toml::Spanned<PulsarEntry>>,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct ReleaseHeader {
+    title: String,
+}
+
+#[derive(Deserialize)]
+#[serde(deny_unknown_fields)]
+struct PulsarEntry {
+    label: String,
+    ra: Option<String>,
+    dec: Option<String>,
+    ra_deg: Option<f64>,
+    dec_deg: Option<f64>,
+    residuals: String,
+    design_matrix: Option<String>,
+}
+
+/// Smallest number of pulsars for a correlation analysis.
+pub const MIN_PULSARS: usize = 3;
+
+/// Read a release folder (or a path to its `release.toml`).
+pub fn read_release(path: &Path) -> Result<Release> {
+    let (dir, toml_path) = if path.is_dir() {
+        (path.to_path_buf(), path.join("release.toml"))
+    } else {
+        (
+            path.parent().unwrap_or(Path::new(".")).to_path_buf(),
+            path.to_path_buf(),
+        )
+    };
+    let mut hasher = Sha256::new();
+    let text = read_text(&toml_path, &mut hasher, "release.toml")?;
+    let file: ReleaseFile = toml::from_str(&text).map_err(|e| toml_error(&toml_path, &text, &e))?;
+    if file.pulsar.len() < MIN_PULSARS {
+        return Err(Error::input(
+            &toml_path,
+            None,
+            Some("pulsar"),
+            format!(
+                "a correlation analysis needs at least {MIN_PULSARS} pulsars, found {}",
+                file.pulsar.len()
+            ),
+        ));
+    }
+    let mut seen: BTreeMap<String, usize> = BTreeMap::new();
+    let mut pulsars = Vec::with_capacity(file.pulsar.len());
+    for (i, spanned) in file.pulsar.iter().enumerate() {
+        let line = Some(line_of(&text, spanned.span().start));
+        let entry = spanned.get_ref();
+        let field = |name: &str| format!("pulsar[{i}].{name}");
+        let label = entry.label.trim().to_string();
+        if label.is_empty() || label.contains(|c: char| c.is_whitespace() || c == ',') {
+            return Err(Error::input(
+                &toml_path,
+                line,
+                Some(&field("label")),
+                format!(
+                    "\"{}\" is not a usable label (non-empty, no spaces or commas)",
+                    entry.label
+                ),
+            ));
+        }
+        if let Some(prev) = seen.insert(label.clone(), i) {
+            return Err(Error::input(
+                &toml_path,
+                line,
+                Some(&field("label")),
+                format!("label {label} is used twice (also pulsar[{prev}])"),
+            ));
+        }
+        let (ra, dec) = sky_position(entry, &toml_path, line, &field)?;
+        let csv_path = dir.join(&entry.residuals);
+        let mut p = read_residuals(&csv_path, &label, &mut hasher)?;
+        p.ra = ra;
+        p.dec = dec;
+        p.direction = direction_from_radec(ra, dec);
+        if let Some(dm_rel) = &entry.design_matrix {
+            let dm_path = dir.join(dm_rel);
+            p.design = Some(read_design_matrix(&dm_path, p.n_toa(), &mut hasher)?);
+        }
+        let n_params = p.design.as_ref().map_or(3, |d| d.names.len());
+        if p.n_toa() <= n_params + 1 {
+            return Err(Error::input(
+                &csv_path,
+                None,
+                None,
+                format!(
+                    "pulsar {label} has {} TOAs, too few for its timing model of {n_params} parameters",
+                    p.n_toa()
+                ),
+            ));
+        }
+        pulsars.push(p);
+    }
+    let noise_path = dir.join("noise.toml");
+    let noise = if noise_path.exists() {
+        let t = read_text(&noise_path, &mut hasher, "noise.toml")?;
+        let model = NoiseModel::parse(&t, &noise_path)?;
+        check_noise_against(&model, &pulsars, &noise_path, &t)?;
+        model
+    } else {
+        NoiseModel::default()
+    };
+    Ok(Release {
+        title: file.release.title,
+        pulsars,
+        noise,
+        dir,
+        input_hash: format!("sha256:{:x}", hasher.finalize()),
+    })
+}
+
+fn sky_position(
+    e: &PulsarEntry,
+    path: &Path,
+    line: Option<usize>,
+    field: &dyn Fn(&str) -> String,
+) -> Result<(f64, f64)> {
+    let bad = |name: &str, msg: String| Error::input(path, line, Some(&field(name)), msg);
+    match (&e.ra, &e.dec, e.ra_deg, e.dec_deg) {
+        (Some(ra), Some(dec), None, None) => {
+            let r = parse_ra(ra).ok_or_else(|| {
+                bad(
+                    "ra",
+                    format!("\"{ra}\" is not a right ascension hh:mm:ss.s in [0, 24) h"),
+                )
+            })?;
+            let d = parse_dec(dec).ok_or_else(|| {
+                bad(
+                    "dec",
+                    format!("\"{dec}\" is not a declination +dd:mm:ss.s in [-90, 90] deg"),
+                )
+            })?;
+            Ok((r, d))
+        }
+        (None, None, Some(r), Some(d)) => {
+            if !(r.is_finite() && (0.0..360.0).contains(&r)) {
+                return Err(bad("ra_deg", format!("{r} is outside [0, 360) deg")));
+            }
+            if !(d.is_finite() && (-90.0..=90.0).contains(&d)) {
+                return Err(bad("dec_deg", format!("{d} is outside [-90, 90] deg")));
+            }
+            Ok((r.to_radians(), d.to_radians()))
+        }
+        _ => Err(bad(
+            "ra",
+            "give the position as ra and dec (sexagesimal) or as ra_deg and dec_deg".into(),
+        )),
+    }
+}
+
+fn read_bytes(path: &Path, hasher: &mut Sha256, name: &str) -> Result<Vec<u8>> {
+    let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
+    hasher.update(name.as_bytes());
+    hasher.update((bytes.len() as u64).to_le_bytes());
+    hasher.update(&bytes);
+    Ok(bytes)
+}
+
+fn read_text(path: &Path, hasher: &mut Sha256, name: &str) -> Result<String> {
+    let bytes = read_bytes(path, hasher, name)?;
+    String::from_utf8(bytes).map_err(|_| Error::input(path, None, None, "is not UTF-8 text"))
+}
+
+/// Read one residual table (`mjd,residual_s,sigma_s,freq_mhz,backend`).
+pub fn read_residuals(path: &Path, label: &str, hasher: &mut Sha256) -> Result<Pulsar> {
+    let bytes = read_bytes(path, hasher, &format!("residuals:{label}"))?;
+    let mut rdr = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .trim(csv::Trim::All)
+        .from_reader(bytes.as_slice());
+    let header = rdr.byte_headers().map_err(|e| csv_error(path, &e))?.clone();
+    let names: Vec<String> = header
+        .iter()
+        .map(|h| String::from_utf8_lossy(h).into_owned())
+        .collect();
+    if names != RESIDUAL_COLUMNS {
+        return Err(Error::input(
+            path,
+            Some(1),
+            None,
+            format!(
+                "header must be exactly `{}`, found `{}`",
+                RESIDUAL_COLUMNS.join(","),
+                names.join(",")
+            ),
+        ));
+    }
+    let cap = bytes.len() / 48;
+    let mut p = Pulsar {
+        label: label.to_string(),
+        ra: 0.0,
+        dec: 0.0,
+        direction: [0.0; 3],
+        mjd: Vec::with_capacity(cap),
+        residual: Vec::with_capacity(cap),
+        sigma: Vec::with_capacity(cap),
+        freq_mhz: Vec::with_capacity(cap),
+        backend: Vec::with_capacity(cap),
+        backends: Vec::new(),
+        design: None,
+    };
+    let mut rec = csv::ByteRecord::new();
+    loop {
+        match rdr.read_byte_record(&mut rec) {
+            Ok(false) => break,
+            Ok(true) => {}
+            Err(e) => return Err(csv_error(path, &e)),
+        }
+        let line = rec.position().map(|q| q.line() as usize);
+        if rec.len() != 5 {
+            return Err(Error::input(
+                path,
+                line,
+                None,
+                format!("expected 5 columns, found {}", rec.len()),
+            ));
+        }
+        let num =
+            |k: usize| -> Result<f64> { parse_number(&rec[k], path, line, RESIDUAL_COLUMNS[k]) };
+        let mjd = num(0)?;
+        let r = num(1)?;
+        let s = num(2)?;
+        let f = num(3)?;
+        if s <= 0.0 {
+            return Err(Error::input(
+                path,
+                line,
+                Some("sigma_s"),
+                format!("uncertainty must be positive, got {s}"),
+            ));
+        }
+        if f <= 0.0 {
+            return Err(Error::input(
+                path,
+                line,
+                Some("freq_mhz"),
+                format!("radio frequency must be positive, got {f}"),
+            ));
+        }
+        if !(0.0..1.0e6).contains(&mjd) {
+            return Err(Error::input(
+                path,
+                line,
+                Some("mjd"),
+                format!("{mjd} is not a plausible MJD"),
+            ));
+        }
+        let b = std::str::from_utf8(&rec[4]).unwrap_or("");
+        if b.is_empty() {
+            return Err(Error::input(
+                path,
+                line,
+                Some("backend"),
+                "backend label is empty",
+            ));
+        }
+        let bi = match p.backends.iter().position(|x| x == b) {
+            Some(i) => i,
+            None => {
+                p.backends.push(b.to_string());
+                p.backends.len() - 1
+            }
+        };
+        p.mjd.push(mjd);
+        p.residual.push(r);
+        p.sigma.push(s);
+        p.freq_mhz.push(f);
+        p.backend.push(bi);
+    }
+    if p.mjd.is_empty() {
+        return Err(Error::input(
+            path,
+            None,
+            None,
+            "the residual table has no rows",
+        ));
+    }
+    Ok(p)
+}
+
+fn parse_number(field: &[u8], path: &Path, line: Option<usize>, name: &str) -> Result<f64> {
+    let text = std::str::from_utf8(field).unwrap_or("");
+    match text.parse::<f64>() {
+        Ok(v) if v.is_finite() => Ok(v),
+        Ok(v) => Err(Error::input(
+            path,
+            line,
+            Some(name),
+            format!("{v} is not a finite number"),
+        )),
+        Err(_) => Err(Error::input(
+            path,
+            line,
+            Some(name),
+            format!("\"{text}\" is not a number"),
+        )),
+    }
+}
+
+fn csv_error(path: &Path, e: &csv::Error) -> Error {
+    let line = e.position().map(|p| p.line() as usize);
+    let msg = match e.kind() {
+        csv::ErrorKind::UnequalLengths {
+            expected_len, len, ..
+        } => {
+            format!("expected {expected_len} columns, found {len}")
+        }
+        _ => e.to_string(),
+    };
+    Error::input(path, line, None, msg)
+}
+
+/// Read a design matrix CSV: header of parameter names, one row per TOA.
+pub fn read_design_matrix(path: &Path, n_toa: usize, hasher: &mut Sha256) -> Result<DesignMatrix> {
+    let bytes = read_bytes(path, hasher, "design_matrix")?;
+    let mut rdr = csv::ReaderBuilder::new()
+        .has_headers(true)
+        .trim(csv::Trim::All)
+        .from_reader(bytes.as_slice());
+    let names: Vec<String> = rdr
+        .headers()
+        .map_err(|e| csv_error(path, &e))?
+        .iter()
+        .map(str::to_string)
+        .collect();
+    if names.is_empty() || names.iter().any(String::is_empty) {
+        return Err(Error::input(
+            path,
+            Some(1),
+            None,
+            "header must name every parameter column",
+        ));
+    }
+    let m = names.len();
+    let mut values = Vec::with_capacity(n_toa * m);
+    let mut rows = 0;
+    let mut rec = csv::ByteRecord::new();
+    loop {
+        match rdr.read_byte_record(&mut rec) {
+            Ok(false) => break,
+            Ok(true) => {}
+            Err(e) => return Err(csv_error(path, &e)),
+        }
+        let line = rec.position().map(|q| q.line() as usize);
+        for (k, name) in names.iter().enumerate() {
+            values.push(parse_number(&rec[k], path, line, name)?);
+        }
+        rows += 1;
+    }
+    if rows != n_toa {
+        return Err(Error::input(
+            path,
+            None,
+            None,
+            format!("has {rows} rows but the residual table has {n_toa} TOAs"),
+        ));
+    }
+    let values = Array2::from_shape_vec((rows, m), values).expect("shape checked");
+    Ok(DesignMatrix { names, values })
+}
+
+fn check_noise_against(
+    model: &NoiseModel,
+    pulsars: &[Pulsar],
+    path: &Path,
+    text: &str,
+) -> Result<()> {
+    let line_with = |needle: &str| text.lines().position(|l| l.contains(needle)).map(|i| i + 1);
+    for (label, pn) in &model.pulsars {
+        let Some(p) = pulsars.iter().find(|p| &p.label == label) else {
+            return Err(Error::input(
+                path,
+                line_with(&format!("pulsar.{label}")),
+                Some(&format!("pulsar.{label}")),
+                format!("pulsar {label} is not in the release"),
+            ));
+        };
+        for (i, w) in pn.white.iter().enumerate() {
+            if !p.backends.contains(&w.backend) {
+                return Err(Error::input(
+                    path,
+                    line_with(&format!("\"{}\"", w.backend)),
+                    Some(&format!("pulsar.{label}.white[{i}].backend")),
+                    format!(
+                        "backend \"{}\" does not occur in {label}'s residuals (it has: {})",
+                        w.backend,
+                        p.backends.join(", ")
+                    ),
+                ));
+            }
+        }
+    }
+    Ok(())
+}

@@ -1,0 +1,483 @@
+//! Scenario files: the recipe of a simulated array (pulsars, observing campaign, noise and the
+//! common background), read from TOML, and its layout into pulsars with TOAs.
+
+use crate::constants::{DM_REFERENCE_MHZ, GAMMA_BINARIES, SECONDS_PER_DAY};
+use crate::error::{Error, Result};
+use crate::noise::{line_of, toml_error, NoiseModel, PulsarNoise, RedProcess, WhiteNoise};
+use crate::release::Pulsar;
+use crate::rng::{stream, Purpose};
+use crate::sky::{isotropic_direction, Direction};
+use rand::Rng;
+use rand_distr::{Distribution, Normal};
+use serde::{Deserialize, Serialize};
+use std::path::Path;
+
+/// A whole scenario file.
+#[derive(Clone, Debug, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct Scenario {
+    pub array: ArraySpec,
+    #[serde(rename = "backend")]
+    pub backends: Vec<BackendSpec>,
+    pub white: WhiteSpec,
+    #[serde(default)]
+    pub red: Option<RedSpec>,
+    #[serde(default)]
+    pub dm: Option<RedSpec>,
+    #[serde(default)]
+    pub background: Option<BackgroundSpec>,
+    #[serde(default)]
+    pub simulation: SimulationSpec,
+    /// Optional explicit pulsars (positions); otherwise `array.n_pulsars` isotropic ones.
+    #[serde(default, rename = "pulsar")]
+    pub pulsars: Vec<PulsarSpec>,
+}
+
+/// The array and its campaign.
+#[derive(Clone, Debug, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct ArraySpec {
+    pub title: String,
+    /// Number of pulsars at isotropic random positions (ignored when `[[pulsar]]` are given).
+    #[serde(default)]
+    pub n_pulsars: Option<usize>,
+    pub start_mjd: f64,
+    pub span_years: f64,
+    /// Mean days between observing epochs of one pulsar with one backend.
+    pub cadence_days: f64,
+    /// Default seed (the command line's --seed overrides).
+    #[serde(default)]
+    pub seed: Option<u64>,
+}
+
+/// An explicit pulsar.
+#[derive(Clone, Debug, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct PulsarSpec {
+    pub label: String,
+    pub ra_deg: f64,
+    pub dec_deg: f64,
+}
+
+/// One backend (receiver and recorder at one of our fictional observatories).
+#[derive(Clone, Debug, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct BackendSpec {
+    pub name: String,
+    pub observatory: String,
+    /// Radio frequency channels (MHz); one TOA per channel per epoch.
+    pub freq_mhz: Vec<f64>,
+    /// Share of pulsars this backend observes (each pulsar has at least one backend).
+    #[serde(default = "one")]
+    pub share: f64,
+    /// When the backend starts and stops, as fractions of the span (default 0 to 1).
+    #[serde(default)]
+    pub active: Option<[f64; 2]>,
+}
+
+fn one() -> f64 {
+    1.0
+}
+
+/// White-noise ranges; each pulsar (and backend) draws from them.
+#[derive(Clone, Debug, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct WhiteSpec {
+    /// Range of a pulsar's typical TOA uncertainty (microseconds), drawn log-uniformly.
+    pub sigma_us: [f64; 2],
+    /// Per-TOA scatter of the uncertainty about the pulsar's level, in dex.
+    #[serde(default)]
+    pub sigma_scatter_dex: f64,
+    /// Range of EFAC per (pulsar, backend), uniform.
+    #[serde(default = "unit_range")]
+    pub efac: [f64; 2],
+    /// Range of log10 EQUAD (s) per (pulsar, backend), uniform; none if absent.
+    #[serde(default)]
+    pub log10_equad: Option<[f64; 2]>,
+    /// Range of log10 ECORR (s) per (pulsar, backend), uniform; none if absent.
+    #[serde(default)]
+    pub log10_ecorr: Option<[f64; 2]>,
+}
+
+fn unit_range() -> [f64; 2] {
+    [1.0, 1.0]
+}
+
+/// Intrinsic red (or DM) noise of a share of the pulsars.
+#[derive(Clone, Debug, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+pub struct RedSpec {
+    pub share: f64,
+    pub log10_amplitude: [f64; 2],
+    pub spectral_index: [f64; 2],
+}
+
+/// The common background.
+#[derive(Clone, Copy, Debug, Deserialize, Serialize, PartialEq)]
+#[serde(deny_unknown_fields)]
+pub struct BackgroundSpec {
+    pub log10_amplitude: f64,
+    #[serde(default = "gamma_default")]
+    pub spectral_index: f64,
+    #[serde(default = "pattern_default")]
+    pub pattern: BackgroundPattern,
+}
+
+fn gamma_default() -> f64 {
+    GAMMA_BINARIES
+}
+fn pattern_default() -> BackgroundPattern {
+    BackgroundPattern::Hd
+}
+
+/// The inter-pulsar correlation of the injected background.
+#[derive(Clone, Copy, Debug, Deserialize, Serialize, PartialEq, Eq)]
+#[serde(rename_all = "lowercase")]
+pub enum BackgroundPattern {
+    Hd,
+    Monopole,
+    Dipole,
+    /// A common process with no inter-pulsar correlation.
+    Uncorrelated,
+    None,
+}
+
+impl BackgroundPattern {
+    /// The correlation pattern, when there is one.
+    pub fn pattern(self) -> Option<crate::orf::Pattern> {
+        use crate::orf::Pattern;
+        match self {
+            BackgroundPattern::Hd => Some(Pattern::Hd),
+            BackgroundPattern::Monopole => Some(Pattern::Monopole),
+            BackgroundPattern::Dipole => Some(Pattern::Dipole),
+            _ => None,
+        }
+    }
+}
+
+/// How red processes are synthesised in the time domain.
+#[derive(Clone, Copy, Debug, Deserialize, Serialize, PartialEq)]
+#[serde(deny_unknown_fields)]
+pub struct SimulationSpec {
+    /// Highest simulated frequency in units of 1 / T_span.
+    #[serde(default = "sim_k")]
+    pub n_frequencies: usize,
+    /// The simulated ladder has spacing 1 / (span_factor T_span), reaching down to that
+    /// frequency, so power below 1 / T_span leaks in as it does in real data.
+    #[serde(default = "sim_factor")]
+    pub span_factor: usize,
+}
+
+fn sim_k() -> usize {
+    30
+}
+fn sim_factor() -> usize {
+    4
+}
+
+impl Default for SimulationSpec {
+    fn default() -> Self {
+        SimulationSpec {
+            n_frequencies: sim_k(),
+            span_factor: sim_factor(),
+        }
+    }
+}
+
+impl Scenario {
+    /// Read and validate a scenario file.
+    pub fn read(path: &Path) -> Result<Scenario> {
+        let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, e))?;
+        Self::parse(&text, path)
+    }
+
+    /// Parse and validate scenario text.
+    pub fn parse(text: &str, path: &Path) -> Result<Scenario> {
+        let s: Scenario = toml::from_str(text).map_err(|e| toml_error(path, text, &e))?;
+        let bad = |field: &str, msg: String| {
+            let key = field.rsplit('.').next().unwrap_or(field);
+            let line = text
+                .find(&format!("{key} "))
+                .or_else(|| text.find(&format!("{key}=")))
+                .map(|o| line_of(text, o));
+            Error::input(path, line, Some(field), msg)
+        };
+        let a = &s.array;
+        if !(a.span_years.is_finite() && a.span_years > 0.1 && a.span_years < 100.0) {
+            return Err(bad(
+                "array.span_years",
+                format!("must be in (0.1, 100), got {}", a.span_years),
+            ));
+        }
+        if !(a.cadence_days.is_finite()
+            && a.cadence_days >= 1.0
+            && a.cadence_days < a.span_years * 365.25 / 4.0)
+        {
+            return Err(bad(
+                "array.cadence_days",
+                format!(
+                    "must be at least 1 day and give several epochs, got {}",
+                    a.cadence_days
+                ),
+            ));
+        }
+        if !(a.start_mjd.is_finite() && a.start_mjd > 0.0) {
+            return Err(bad(
+                "array.start_mjd",
+                format!("{} is not a plausible MJD", a.start_mjd),
+            ));
+        }
+        let n = if s.pulsars.is_empty() {
+            a.n_pulsars.unwrap_or(0)
+        } else {
+            s.pulsars.len()
+        };
+        if n < crate::release::MIN_PULSARS {
+            return Err(bad(
+                "array.n_pulsars",
+                format!(
+                    "need at least {} pulsars, got {n}",
+                    crate::release::MIN_PULSARS
+                ),
+            ));
+        }
+        if s.backends.is_empty() {
+            return Err(bad("backend", "give at least one [[backend]]".into()));
+        }
+        for (i, b) in s.backends.iter().enumerate() {
+            if b.freq_mhz.is_empty() || b.freq_mhz.iter().any(|f| !(f.is_finite() && *f > 10.0)) {
+                return Err(bad(
+                    &format!("backend[{i}].freq_mhz"),
+                    "give radio frequencies above 10 MHz".into(),
+                ));
+            }
+            if !(0.0..=1.0).contains(&b.share) {
+                return Err(bad(
+                    &format!("backend[{i}].share"),
+                    format!("must be in [0, 1], got {}", b.share),
+                ));
+            }
+            if let Some([lo, hi]) = b.active {
+                if !(0.0 <= lo && lo < hi && hi <= 1.0) {
+                    return Err(bad(
+                        &format!("backend[{i}].active"),
+                        "must be [start, stop] with 0 <= start < stop <= 1".into(),
+                    ));
+                }
+            }
+        }
+        let w = &s.white;
+        if !(w.sigma_us[0] > 0.0 && w.sigma_us[0] <= w.sigma_us[1] && w.sigma_us[1].is_finite()) {
+            return Err(bad(
+                "white.sigma_us",
+                "must be [low, high] with 0 < low <= high".into(),
+            ));
+        }
+        if !(w.efac[0] > 0.0 && w.efac[0] <= w.efac[1]) {
+            return Err(bad(
+                "white.efac",
+                "must be [low, high] with 0 < low <= high".into(),
+            ));
+        }
+        for (name, r) in [("red", &s.red), ("dm", &s.dm)] {
+            if let Some(r) = r {
+                if !(0.0..=1.0).contains(&r.share) {
+                    return Err(bad(&format!("{name}.share"), "must be in [0, 1]".into()));
+                }
+                if r.log10_amplitude[0] > r.log10_amplitude[1]
+                    || r.spectral_index[0] > r.spectral_index[1]
+                    || r.spectral_index[0] <= 0.0
+                {
+                    return Err(bad(
+                        &format!("{name}.spectral_index"),
+                        "ranges must be [low, high] with positive indices".into(),
+                    ));
+                }
+            }
+        }
+        if let Some(b) = &s.background {
+            if !(b.log10_amplitude.is_finite() && b.log10_amplitude < -10.0) {
+                return Err(bad(
+                    "background.log10_amplitude",
+                    format!("{} is not a plausible log10 amplitude", b.log10_amplitude),
+                ));
+            }
+            if !(b.spectral_index > 0.0 && b.spectral_index <= 10.0) {
+                return Err(bad(
+                    "background.spectral_index",
+                    "must be in (0, 10]".into(),
+                ));
+            }
+        }
+        if s.simulation.n_frequencies == 0 || s.simulation.span_factor == 0 {
+            return Err(bad(
+                "simulation.n_frequencies",
+                "n_frequencies and span_factor must be at least 1".into(),
+            ));
+        }
+        Ok(s)
+    }
+
+    /// The seed: the command line's if given, else the file's, else 1.
+    pub fn seed(&self, cli: Option<u64>) -> u64 {
+        cli.or(self.array.seed).unwrap_or(1)
+    }
+}
+
+/// A laid-out array: pulsars with TOAs (residuals still zero) and their true noise model.
+#[derive(Clone, Debug)]
+pub struct Layout {
+    pub title: String,
+    pub pulsars: Vec<Pulsar>,
+    pub noise: NoiseModel,
+    pub background: Option<BackgroundSpec>,
+    pub simulation: SimulationSpec,
+}
+
+/// Lay out the array of a scenario: positions, TOAs, uncertainties and the noise parameters of
+/// every pulsar, all drawn from generators keyed by (seed, pulsar index).
+pub fn lay_out(s: &Scenario, seed: u64) -> Layout {
+    let mut rng = stream(seed, Purpose::Layout, 0);
+    let positions: Vec<(String, f64, f64)> = if s.pulsars.is_empty() {
+        let n = s.array.n_pulsars.unwrap_or(0);
+        let width = n.to_string().len().max(2);
+        (0..n)
+            .map(|i| {
+                let d: Direction = isotropic_direction(rng.random(), rng.random());
+                let ra = d[1].atan2(d[0]).rem_euclid(std::f64::consts::TAU);
+                let dec = d[2].clamp(-1.0, 1.0).asin();
+                (format!("P{:0width$}", i + 1), ra, dec)
+            })
+            .collect()
+    } else {
+        s.pulsars
+            .iter()
+            .map(|p| {
+                (
+                    p.label.clone(),
+                    p.ra_deg.to_radians(),
+                    p.dec_deg.to_radians(),
+                )
+            })
+            .collect()
+    };
+    let span_days = s.array.span_years * 365.25;
+    let mut noise = NoiseModel::default();
+    let mut pulsars = Vec::with_capacity(positions.len());
+    for (i, (label, ra, dec)) in positions.into_iter().enumerate() {
+        let mut r = stream(seed, Purpose::Layout, 1 + i as u64);
+        let mut used: Vec<usize> = (0..s.backends.len())
+            .filter(|&b| r.random::<f64>() < s.backends[b].share)
+            .collect();
+        if used.is_empty() {
+            used.push(0);
+        }
+        let level = log_uniform(&mut r, s.white.sigma_us[0], s.white.sigma_us[1]) * 1e-6;
+        let scatter = Normal::new(0.0, s.white.sigma_scatter_dex.max(0.0)).expect("finite scatter");
+        let mut p = Pulsar {
+            label: label.clone(),
+            ra,
+            dec,
+            direction: crate::sky::direction_from_radec(ra, dec),
+            mjd: Vec::new(),
+            residual: Vec::new(),
+            sigma: Vec::new(),
+            freq_mhz: Vec::new(),
+            backend: Vec::new(),
+            backends: used.iter().map(|&b| s.backends[b].name.clone()).collect(),
+            design: None,
+        };
+        let mut pn = PulsarNoise::default();
+        for (bi, &b) in used.iter().enumerate() {
+            let spec = &s.backends[b];
+            let [lo, hi] = spec.active.unwrap_or([0.0, 1.0]);
+            let (d0, d1) = (lo * span_days, hi * span_days);
+            let mut day = d0 + r.random::<f64>() * s.array.cadence_days;
+            while day <= d1 {
+                for &f in &spec.freq_mhz {
+                    p.mjd.push(s.array.start_mjd + day);
+                    p.freq_mhz.push(f);
+                    p.backend.push(bi);
+                    p.residual.push(0.0);
+                    p.sigma.push(level * 10f64.powf(scatter.sample(&mut r)));
+                }
+                day += s.array.cadence_days * (0.75 + 0.5 * r.random::<f64>());
+            }
+            let efac = uniform(&mut r, s.white.efac);
+            pn.white.push(WhiteNoise {
+                backend: spec.name.clone(),
+                efac: round6(efac),
+                log10_equad: s.white.log10_equad.map(|q| round6(uniform(&mut r, q))),
+                log10_ecorr: s.white.log10_ecorr.map(|q| round6(uniform(&mut r, q))),
+            });
+        }
+        // Make sure the span of the whole array is exactly the scenario's.
+        if i == 0 && !p.mjd.is_empty() {
+            p.mjd[0] = s.array.start_mjd;
+            let last = p.mjd.len() - 1;
+            p.mjd[last] = s.array.start_mjd + span_days;
+        }
+        sort_by_time(&mut p);
+        for (spec, slot) in [(&s.red, &mut pn.red), (&s.dm, &mut pn.dm)] {
+            if let Some(rs) = spec {
+                if r.random::<f64>() < rs.share {
+                    *slot = Some(RedProcess {
+                        log10_amplitude: round6(uniform(&mut r, rs.log10_amplitude)),
+                        spectral_index: round6(uniform(&mut r, rs.spectral_index)),
+                        n_frequencies: None,
+                    });
+                }
+            }
+        }
+        noise.pulsars.insert(label, pn);
+        pulsars.push(p);
+    }
+    if let Some(b) = s
+        .background
+        .filter(|b| b.pattern != BackgroundPattern::None)
+    {
+        noise.common = Some(RedProcess {
+            log10_amplitude: b.log10_amplitude,
+            spectral_index: b.spectral_index,
+            n_frequencies: None,
+        });
+    }
+    let _ = (DM_REFERENCE_MHZ, SECONDS_PER_DAY);
+    Layout {
+        title: s.array.title.clone(),
+        pulsars,
+        noise,
+        background: s
+            .background
+            .filter(|b| b.pattern != BackgroundPattern::None),
+        simulation: s.simulation,
+    }
+}
+
+fn sort_by_time(p: &mut Pulsar) {
+    let mut idx: Vec<usize> = (0..p.mjd.len()).collect();
+    idx.sort_by(|&a, &b| {
+        p.mjd[a]
+            .total_cmp(&p.mjd[b])
+            .then(p.freq_mhz[a].total_cmp(&p.freq_mhz[b]))
+    });
+    let take = |v: &Vec<f64>| idx.iter().map(|&i| v[i]).collect::<Vec<f64>>();
+    p.mjd = take(&p.mjd);
+    p.freq_mhz = take(&p.freq_mhz);
+    p.sigma = take(&p.sigma);
+    p.residual = take(&p.residual);
+    p.backend = idx.iter().map(|&i| p.backend[i]).collect();
+}
+
+fn uniform<R: Rng>(r: &mut R, [lo, hi]: [f64; 2]) -> f64 {
+    lo + (hi - lo) * r.random::<f64>()
+}
+
+fn log_uniform<R: Rng>(r: &mut R, lo: f64, hi: f64) -> f64 {
+    (lo.ln() + (hi.ln() - lo.ln()) * r.random::<f64>()).exp()
+}
+
+/// Round to 6 decimals so that the noise file states exactly what was simulated.
+fn round6(x: f64) -> f64 {
+    (x * 1e6).round() / 1e6
+}
