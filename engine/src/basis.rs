@@ -79,8 +79,8 @@ pub fn timing_model(p: &Pulsar, t: &[f64]) -> Result<Array2<f64>> {
 pub const ECORR_EPOCH_GAP_S: f64 = 3600.0;
 
 /// ECORR epochs: for each listed backend, groups of TOA indices (sorted by time) whose
-/// consecutive gaps are at most `gap_s`; single-TOA epochs are dropped (common practice: their
-/// jitter cannot be told from white noise). Returns (backend index, TOA indices) per epoch.
+/// consecutive gaps are at most `gap_s`. A single-TOA epoch is kept: its jitter still adds
+/// ECORR^2 to that TOA's variance. Returns (backend index, TOA indices) per epoch.
 pub fn ecorr_epochs(
     t: &[f64],
     backend: &[usize],
@@ -94,16 +94,12 @@ pub fn ecorr_epochs(
     for &i in &order {
         if let Some(&last) = current.last() {
             if backend[last] != backend[i] || t[i] - t[last] > gap_s {
-                if current.len() > 1 {
-                    epochs.push((backend[last], std::mem::take(&mut current)));
-                } else {
-                    current.clear();
-                }
+                epochs.push((backend[last], std::mem::take(&mut current)));
             }
         }
         current.push(i);
     }
-    if current.len() > 1 {
+    if !current.is_empty() {
         epochs.push((backend[current[0]], current));
     }
     epochs
@@ -127,8 +123,11 @@ mod tests {
         let t = [0.0, 10.0, 5000.0, 5001.0, 20.0, 9000.0];
         let b = [0, 0, 0, 0, 1, 1];
         let e = ecorr_epochs(&t, &b, &[true, true], 3600.0);
+        assert_eq!(
+            e,
+            vec![(0, vec![0, 1]), (0, vec![2, 3]), (1, vec![4]), (1, vec![5])]
+        );
+        let e = ecorr_epochs(&t, &b, &[true, false], 3600.0);
         assert_eq!(e, vec![(0, vec![0, 1]), (0, vec![2, 3])]);
-        let e = ecorr_epochs(&t, &b, &[false, true], 3600.0);
-        assert!(e.is_empty());
     }
 }

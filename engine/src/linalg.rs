@@ -5,6 +5,19 @@ use crate::error::{Error, Result};
 use ndarray::{Array1, Array2, Axis};
 use ndarray_linalg::{Cholesky, Diag, SolveTriangular, UPLO};
 
+extern "C" {
+    fn openblas_set_num_threads(n: std::ffi::c_int);
+}
+
+/// Make OpenBLAS single-threaded (once per process). The engine parallelises over pulsars and
+/// trials with rayon; letting every BLAS call spawn its own threads on top oversubscribes the
+/// cores (common practice for task-parallel code over a threaded BLAS).
+pub fn single_threaded_blas() {
+    static ONCE: std::sync::Once = std::sync::Once::new();
+    // SAFETY: a plain setter of OpenBLAS's thread count, called before any parallel BLAS use.
+    ONCE.call_once(|| unsafe { openblas_set_num_threads(1) });
+}
+
 /// Cholesky factor of a symmetric positive-definite S, computed as S = D L L^T D with
 /// D = diag(S)^(1/2). Scaling by the diagonal (Jacobi equilibration, Golub & Van Loan 2013,
 /// sec. 3.5.2) leaves the answer unchanged and keeps badly scaled blocks (timing model next to

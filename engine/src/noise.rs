@@ -181,15 +181,51 @@ fn check_red(r: &RedProcess, field: &str) -> std::result::Result<(), (String, St
     Ok(())
 }
 
-/// Best-effort line of the TOML table a dotted field belongs to (for messages).
+/// Best-effort line of a dotted field such as `pulsar.P01.white[0].efac` in TOML text, for
+/// messages: the key's line under its own table header if there is one, else the line of the
+/// inline table that holds it, else the nearest enclosing table header.
 fn find_line(text: &str, field: &str) -> Option<usize> {
-    let mut parts: Vec<&str> = field.split('.').collect();
-    while !parts.is_empty() {
-        let header = format!("[{}]", parts.join("."));
-        if let Some(i) = text.lines().position(|l| l.trim() == header) {
-            return Some(i + 1);
+    let lines: Vec<&str> = text.lines().collect();
+    let is_header = |l: &str| l.trim_start().starts_with('[');
+    let key_after = |start: usize, key: &str| -> Option<usize> {
+        (start + 1..lines.len())
+            .take_while(|&k| !is_header(lines[k]))
+            .find(|&k| lines[k].trim_start().starts_with(key))
+    };
+    let parts: Vec<&str> = field.split('.').collect();
+    for cut in (1..=parts.len()).rev() {
+        let (table, rest) = parts.split_at(cut);
+        let (name, index) = match table[cut - 1].split_once('[') {
+            Some((n, i)) => (n, i.trim_end_matches(']').parse::<usize>().ok()),
+            None => (table[cut - 1], None),
+        };
+        let path = table[..cut - 1]
+            .iter()
+            .copied()
+            .chain([name])
+            .collect::<Vec<_>>()
+            .join(".");
+        let header = match index {
+            Some(_) => format!("[[{path}]]"),
+            None => format!("[{path}]"),
+        };
+        let found = lines
+            .iter()
+            .enumerate()
+            .filter(|(_, l)| l.trim() == header)
+            .map(|(k, _)| k)
+            .nth(index.unwrap_or(0));
+        if let Some(h) = found {
+            let line = rest.first().and_then(|key| key_after(h, key)).unwrap_or(h);
+            return Some(line + 1);
         }
-        parts.pop();
+        // An inline table or array: `name = ...` under the parent table.
+        let parent = format!("[{}]", table[..cut - 1].join("."));
+        if let Some(h) = lines.iter().position(|l| l.trim() == parent) {
+            if let Some(k) = key_after(h, name) {
+                return Some(k + 1);
+            }
+        }
     }
     None
 }
@@ -241,7 +277,7 @@ red = { log10_amplitude = -13.8, spectral_index = 3.0, n_frequencies = 30 }
             .unwrap_err()
             .to_string();
         assert!(
-            e.contains("noise.toml line 1, field pulsar.P01.white[0].efac"),
+            e.contains("noise.toml line 2, field pulsar.P01.white[0].efac"),
             "{e}"
         );
         let e = NoiseModel::parse("[common]\nlog10_amplitude = -14\n", Path::new("n.toml"))

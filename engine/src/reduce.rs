@@ -259,6 +259,7 @@ pub fn reduce_release(
     grid: &FrequencyGrid,
     common: Option<&PowerLaw>,
 ) -> Result<Vec<Reduced>> {
+    crate::linalg::single_threaded_blas();
     release
         .pulsars
         .par_iter()

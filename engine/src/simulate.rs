@@ -81,12 +81,16 @@ pub fn simulate_residuals(
     purpose: Purpose,
     realization: u64,
 ) -> Result<Vec<Vec<f64>>> {
+    crate::linalg::single_threaded_blas();
     let (ladder, t_sim) = simulation_ladder(&what.simulation, t_span);
     let n_psr = pulsars.len();
     let n_c = 2 * ladder.len();
     // Background coefficients: for each frequency and quadrature, c ~ N(0, phi(f) G).
     let mut bg = Array2::<f64>::zeros((n_psr, n_c));
-    if let Some(b) = what.background.filter(|b| b.pattern != BackgroundPattern::None) {
+    if let Some(b) = what
+        .background
+        .filter(|b| b.pattern != BackgroundPattern::None)
+    {
         let a2 = 10f64.powf(2.0 * b.log10_amplitude);
         let root = match b.pattern.pattern() {
             Some(p) => {
