@@ -3,7 +3,7 @@
 //! Fourier basis (van Haasteren & Vallisneri 2014; Chamberlin et al. 2015). Everything the
 //! correlation analysis needs afterwards is X, Z and the sky direction.
 
-use crate::basis::{chromatic_basis, ecorr_epochs, fourier_basis, timing_model, ECORR_EPOCH_GAP_S};
+use crate::basis::{chromatic_scale, ecorr_epochs, fourier_basis, timing_model, ECORR_EPOCH_GAP_S};
 use crate::constants::SECONDS_PER_DAY;
 use crate::error::{Error, Result};
 use crate::linalg::ScaledCholesky;
@@ -82,15 +82,24 @@ pub struct Reduced {
 
 /// The Woodbury-factored model of one pulsar, kept so that new residual vectors (simulations,
 /// injections) can be reduced in O(n * cols) without refactoring.
+///
+/// ECORR is folded into the white noise rather than added as basis columns: N is then block
+/// diagonal (one block D_I + c^2 1 1^T per epoch I), and the Sherman-Morrison formula
+/// (Sherman & Morrison 1950) gives N_I^-1 = D_I^-1 - beta D_I^-1 1 1^T D_I^-1 with
+/// beta = c^2 / (1 + c^2 1^T D_I^-1 1). The cost then does not grow with the number of epochs.
 pub struct PulsarModel {
-    /// sqrt(N^-1) per TOA.
-    sqrt_ninv: Vec<f64>,
-    /// sqrt(N^-1) * T (n x cols), the whitened basis.
-    wt: Array2<f64>,
-    /// Columns of the whitened analysis basis sqrt(N^-1) F (n x 2K).
-    wf: Array2<f64>,
+    /// D^-1/2 per TOA (D: the diagonal white noise).
+    sqrt_dinv: Vec<f64>,
+    /// D^-1/2 [T | F] (n x (cols + 2K)): the whitened model basis and analysis basis.
+    wa: Array2<f64>,
+    /// Number of columns of T.
+    n_t: usize,
+    /// ECORR epochs: TOA indices and beta.
+    epochs: Vec<(Vec<usize>, f64)>,
+    /// Row e: sum over epoch e of D^-1/2 times the rows of `wa` (E x (cols + 2K)).
+    v: Array2<f64>,
     chol: ScaledCholesky,
-    /// L^-1 D^-1 T^T N^-1 F (cols x 2K).
+    /// L^-1 D_S^-1 T^T N^-1 F (cols x 2K).
     qf: Array2<f64>,
     /// Z = F^T P^-1 F.
     pub z: Array2<f64>,
@@ -104,8 +113,8 @@ pub struct AutoPower<'a> {
 }
 
 impl PulsarModel {
-    /// Build the model T = [M | F_red | F_dm | U_ecorr] with prior B (docs/conventions.md) and
-    /// factor S = B^-1 + T^T N^-1 T.
+    /// Build the model T = [M | F_red | F_dm] with prior B and white noise N (EFAC, EQUAD,
+    /// ECORR; docs/conventions.md), and factor S = B^-1 + T^T N^-1 T.
     pub fn build(
         p: &Pulsar,
         noise: &PulsarNoise,
@@ -116,9 +125,9 @@ impl PulsarModel {
         let k = grid.k();
         let t = grid.seconds(&p.mjd);
 
-        // White noise N_ii = (EFAC sigma_i)^2 + EQUAD^2 per backend.
+        // White noise D_ii = (EFAC sigma_i)^2 + EQUAD^2 per backend.
         let whites: Vec<_> = p.backends.iter().map(|b| noise.white_for(b)).collect();
-        let sqrt_ninv: Vec<f64> = (0..n)
+        let sqrt_dinv: Vec<f64> = (0..n)
             .map(|i| {
                 let w = &whites[p.backend[i]];
                 let var = (w.efac * p.sigma[i]).powi(2) + w.equad().powi(2);
@@ -126,18 +135,22 @@ impl PulsarModel {
             })
             .collect();
 
-        // Blocks of T and their prior inverses (0 for the timing model's flat prior).
-        let m = timing_model(p, &t)?;
-        let mut blocks: Vec<Array2<f64>> = vec![m.clone()];
-        let mut binv: Vec<f64> = vec![0.0; m.ncols()];
-
+        // Frequencies needed by any block; one Fourier basis serves them all.
         let k_common = if auto.common.is_some() { k } else { 0 };
         let k_red = noise.red.map_or(0, |r| r.n_frequencies.unwrap_or(k));
         let k_r = k_common.max(k_red);
+        let k_dm = noise.dm.map_or(0, |d| d.n_frequencies.unwrap_or(k));
+        let k_max = k.max(k_r).max(k_dm);
+        let ladder = grid.ladder(k_max);
+        let fourier = fourier_basis(&t, &ladder);
+
+        // Columns of [T | F] and the prior inverses of T (0 for the timing model's flat prior).
+        let m = timing_model(p, &t)?;
+        let mut blocks: Vec<Array2<f64>> = vec![m];
+        let mut binv: Vec<f64> = vec![0.0; blocks[0].ncols()];
         if k_r > 0 {
-            let ladder = grid.ladder(k_r);
-            blocks.push(fourier_basis(&t, &ladder));
-            for (j, &f) in ladder.iter().enumerate() {
+            blocks.push(fourier.slice(s![.., ..2 * k_r]).to_owned());
+            for (j, &f) in ladder[..k_r].iter().enumerate() {
                 let mut phi = 0.0;
                 if let Some(c) = auto.common.filter(|_| j < k_common) {
                     phi += c.coefficient_variance(f, grid.t_span);
@@ -149,40 +162,57 @@ impl PulsarModel {
             }
         }
         if let Some(dm) = noise.dm {
-            let ladder = grid.ladder(dm.n_frequencies.unwrap_or(k));
-            blocks.push(chromatic_basis(&t, &p.freq_mhz, &ladder));
-            for &f in &ladder {
+            let mut fd = fourier.slice(s![.., ..2 * k_dm]).to_owned();
+            for (mut row, sc) in fd.rows_mut().into_iter().zip(chromatic_scale(&p.freq_mhz)) {
+                row *= sc;
+            }
+            blocks.push(fd);
+            for &f in &ladder[..k_dm] {
                 let phi = dm.power_law().coefficient_variance(f, grid.t_span);
                 binv.extend([1.0 / phi, 1.0 / phi]);
             }
         }
-        let use_ecorr: Vec<bool> = whites.iter().map(|w| w.ecorr().is_some()).collect();
-        if use_ecorr.iter().any(|&u| u) {
-            let epochs = ecorr_epochs(&t, &p.backend, &use_ecorr, ECORR_EPOCH_GAP_S);
-            let mut u = Array2::zeros((n, epochs.len()));
-            for (e, (b, idx)) in epochs.iter().enumerate() {
-                for &i in idx {
-                    u[[i, e]] = 1.0;
-                }
-                binv.push(1.0 / whites[*b].ecorr().expect("ecorr backend").powi(2));
-            }
-            blocks.push(u);
-        }
-
-        // The analysis basis F: the first K frequencies of the red block when present, else
-        // (for frequencies beyond k_r) extra columns outside T.
-        let f_all = fourier_basis(&t, &grid.freqs);
+        let n_t = binv.len();
+        blocks.push(fourier.slice(s![.., ..2 * k]).to_owned());
         let views: Vec<_> = blocks.iter().map(|b| b.view()).collect();
-        let tmat = ndarray::concatenate(Axis(1), &views).expect("blocks share rows");
-        let mut wt = tmat;
-        let mut wf = f_all;
-        for i in 0..n {
-            wt.row_mut(i).mapv_inplace(|v| v * sqrt_ninv[i]);
-            wf.row_mut(i).mapv_inplace(|v| v * sqrt_ninv[i]);
+        let mut wa = ndarray::concatenate(Axis(1), &views).expect("blocks share rows");
+        drop(blocks);
+        for (mut row, &w) in wa.rows_mut().into_iter().zip(&sqrt_dinv) {
+            row *= w;
         }
 
-        // S = B^-1 + T^T N^-1 T (one GEMM).
-        let mut smat = wt.t().dot(&wt);
+        // ECORR epochs and their Sherman-Morrison terms.
+        let use_ecorr: Vec<bool> = whites.iter().map(|w| w.ecorr().is_some()).collect();
+        let epochs: Vec<(Vec<usize>, f64)> = if use_ecorr.iter().any(|&u| u) {
+            ecorr_epochs(&t, &p.backend, &use_ecorr, ECORR_EPOCH_GAP_S)
+                .into_iter()
+                .map(|(b, idx)| {
+                    let c2 = whites[b].ecorr().expect("ecorr backend").powi(2);
+                    let sum_dinv: f64 = idx.iter().map(|&i| sqrt_dinv[i] * sqrt_dinv[i]).sum();
+                    (idx, c2 / (1.0 + c2 * sum_dinv))
+                })
+                .collect()
+        } else {
+            Vec::new()
+        };
+        let mut v = Array2::<f64>::zeros((epochs.len(), wa.ncols()));
+        for (e, (idx, _)) in epochs.iter().enumerate() {
+            let mut row = v.row_mut(e);
+            for &i in idx {
+                row.scaled_add(sqrt_dinv[i], &wa.row(i));
+            }
+        }
+
+        // [T | F]^T N^-1 [T | F] in one GEMM, less the ECORR correction V^T diag(beta) V.
+        let mut gram = wa.t().dot(&wa);
+        if !epochs.is_empty() {
+            let mut bv = v.clone();
+            for (mut row, (_, beta)) in bv.rows_mut().into_iter().zip(&epochs) {
+                row *= *beta;
+            }
+            gram -= &v.t().dot(&bv);
+        }
+        let mut smat = gram.slice(s![..n_t, ..n_t]).to_owned();
         for (i, b) in binv.iter().enumerate() {
             smat[[i, i]] += b;
         }
@@ -190,15 +220,16 @@ impl PulsarModel {
             &smat,
             &format!("S = B^-1 + T^T N^-1 T of pulsar {}", p.label),
         )?;
-        let tnf = wt.t().dot(&wf);
+        let tnf = gram.slice(s![..n_t, n_t..]).to_owned();
         let qf = chol.whiten(&tnf);
-        let fnf = wf.t().dot(&wf);
-        let z = &fnf - &qf.t().dot(&qf);
-        let z = symmetrise(z);
+        let fnf = gram.slice(s![n_t.., n_t..]).to_owned();
+        let z = symmetrise(&fnf - &qf.t().dot(&qf));
         Ok(PulsarModel {
-            sqrt_ninv,
-            wt,
-            wf,
+            sqrt_dinv,
+            wa,
+            n_t,
+            epochs,
+            v,
             chol,
             qf,
             z,
@@ -207,16 +238,27 @@ impl PulsarModel {
 
     /// X = F^T P^-1 r for a residual vector r (s), by the Woodbury identity.
     pub fn reduce(&self, r: &[f64]) -> Array1<f64> {
-        let wr: Array1<f64> = r.iter().zip(&self.sqrt_ninv).map(|(a, b)| a * b).collect();
-        let fnr = self.wf.t().dot(&wr);
-        let tnr = self.wt.t().dot(&wr);
+        let wr: Array1<f64> = r.iter().zip(&self.sqrt_dinv).map(|(a, b)| a * b).collect();
+        let mut g = self.wa.t().dot(&wr);
+        if !self.epochs.is_empty() {
+            let s: Array1<f64> = self
+                .epochs
+                .iter()
+                .map(|(idx, beta)| {
+                    beta * idx.iter().map(|&i| self.sqrt_dinv[i] * wr[i]).sum::<f64>()
+                })
+                .collect();
+            g -= &self.v.t().dot(&s);
+        }
+        let tnr = g.slice(s![..self.n_t]).to_owned();
+        let fnr = g.slice(s![self.n_t..]).to_owned();
         let q = self.chol.whiten(&tnr.insert_axis(Axis(1)));
         fnr - self.qf.t().dot(&q.slice(s![.., 0]))
     }
 
     /// Number of TOAs.
     pub fn n_toa(&self) -> usize {
-        self.sqrt_ninv.len()
+        self.sqrt_dinv.len()
     }
 
     /// log det S (for likelihood evaluations).
