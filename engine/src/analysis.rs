@@ -109,17 +109,6 @@ pub struct Correlation {
     pub spectral_index: f64,
 }
 
-impl Ord for Pattern {
-    fn cmp(&self, other: &Self) -> std::cmp::Ordering {
-        (*self as u8).cmp(&(*other as u8))
-    }
-}
-impl PartialOrd for Pattern {
-    fn partial_cmp(&self, other: &Self) -> Option<std::cmp::Ordering> {
-        Some(self.cmp(other))
-    }
-}
-
 /// Run the correlation analysis of a release.
 pub fn correlate(release: &Release, settings: &CorrelateSettings) -> Result<Correlation> {
     settings.validate()?;

@@ -22,7 +22,9 @@ pub fn dipole(cos_zeta: f64) -> f64 {
 }
 
 /// The correlation patterns compared against the data.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, serde::Serialize, serde::Deserialize)]
+#[derive(
+    Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash, serde::Serialize, serde::Deserialize,
+)]
 #[serde(rename_all = "lowercase")]
 pub enum Pattern {
     /// Hellings-Downs quadrupole of a gravitational-wave background.
