@@ -25,6 +25,24 @@ pub fn run(out: &Path, seed: u64) -> Result<()> {
     let (rel, c) = crate::correlate_release(&release_dir, &settings)?;
     c.write(&analysis_dir, &rel, &settings)?;
     crate::print_summary(&rel, &c);
-    println!("wrote {}", analysis_dir.display());
+    let figure_dir = out.join("figures");
+    let opts = ptacorr::figure::FigureOptions {
+        show_pairs: true,
+        ..Default::default()
+    };
+    ptacorr::figure::plot_folder(
+        &analysis_dir,
+        ptacorr::figure::FigureFormat::Png,
+        Some(&figure_dir),
+        &opts,
+    )?;
+    let report =
+        ptacorr::report::build_report(std::slice::from_ref(&analysis_dir), &out.join("report"))?;
+    println!("wrote the analysis to {}", analysis_dir.display());
+    println!(
+        "wrote the figure to {}",
+        figure_dir.join("angular-correlation.png").display()
+    );
+    println!("wrote the report to {}", report.display());
     Ok(())
 }

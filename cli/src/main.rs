@@ -15,6 +15,7 @@ use std::process::ExitCode;
 use std::time::Instant;
 
 mod demo;
+mod figures_cmd;
 
 #[derive(Parser)]
 #[command(
@@ -53,6 +54,10 @@ enum Command {
         #[command(flatten)]
         analysis: AnalysisArgs,
     },
+    /// Draw the figure of an output folder (correlate, null or inject).
+    Plot(figures_cmd::PlotArgs),
+    /// Gather output folders into a memo-ready report (Markdown, HTML, LaTeX tables, figures).
+    Report(figures_cmd::ReportArgs),
 }
 
 #[derive(clap::Args, Clone)]
@@ -147,6 +152,8 @@ fn run(cli: Cli) -> Result<()> {
             println!("wrote {}/summary.json, pairs.csv, bins.csv", out.display());
             Ok(())
         }
+        Command::Plot(args) => figures_cmd::plot(&args),
+        Command::Report(args) => figures_cmd::report(&args).map(|_| ()),
     }
 }
 

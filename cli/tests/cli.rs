@@ -129,5 +129,30 @@ fn demo_runs_and_names_its_folder() {
     assert_eq!(summary["n_pairs"], 780);
     // The demo's background is strong by design: a clear Hellings-Downs detection.
     assert!(summary["patterns"]["hd"]["snr"].as_f64().unwrap() > 5.0);
+    // It ends with the figure and the report, and says where they are.
+    for f in [
+        "figures/angular-correlation.png",
+        "report/report.md",
+        "report/report.html",
+        "report/tables.tex",
+    ] {
+        assert!(out.join(f).is_file(), "demo did not write {f}");
+        assert!(text.contains(&out.join(f.split('/').next().unwrap()).display().to_string()));
+    }
+    // The report regenerates byte for byte from the same folder.
+    let again = temp("demo-report-again");
+    let st = ptacorr()
+        .arg("report")
+        .arg(out.join("correlate"))
+        .arg("--out")
+        .arg(&again)
+        .status()
+        .unwrap();
+    assert!(st.success());
+    assert_eq!(
+        std::fs::read(again.join("report.md")).unwrap(),
+        std::fs::read(out.join("report/report.md")).unwrap()
+    );
+    std::fs::remove_dir_all(again).ok();
     std::fs::remove_dir_all(out).ok();
 }

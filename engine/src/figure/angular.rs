@@ -1,0 +1,458 @@
+//! Figure 1: the angular correlation. Binned cross-correlations with 1σ error bars against
+//! angular separation, the Hellings-Downs curve scaled by its fitted amplitude, the monopole
+//! and dipole curves scaled by theirs, a zero line and, optionally, every pair as a faint
+//! point behind the bins.
+
+use serde::Serialize;
+
+use super::canvas::{
+    bottom_gutter, draw_axes, draw_caption, draw_legend, fixed_ticks, left_gutter, legend_height,
+    linear_ticks, superscript, wrap, LegendItem, LineStyle, Marker, MarkerStyle, Rect, Sample,
+    Scale, Stroke, Svg, BLACK, BLUE, CAPTION_LINE, FS_SMALL, GREEN, INK, MUTED, PAIR_GREY,
+    VERMILLION,
+};
+use super::format::{self, Style};
+use super::input::{CorrelateData, SUMMARY_JSON};
+use super::{ColumnWidth, Drawn, FigureError, FigureOptions};
+
+pub(crate) const STEM: &str = "angular-correlation";
+
+/// Hellings & Downs (1983) overlap reduction for distinct pulsars, normalised to 1/2 at
+/// zero separation: x = (1 - cos ζ)/2, G = 1/2 - x/4 + (3/2) x ln x.
+pub(crate) fn hellings_downs(cos_zeta: f64) -> f64 {
+    let x = ((1.0 - cos_zeta) / 2.0).clamp(0.0, 1.0);
+    if x <= 0.0 {
+        0.5
+    } else {
+        0.5 - x / 4.0 + 1.5 * x * x.ln()
+    }
+}
+
+const CURVE_STEP_DEG: f64 = 0.5;
+
+#[derive(Serialize)]
+struct SideBin {
+    angle_lo_deg: f64,
+    angle_hi_deg: f64,
+    angle_mean_deg: f64,
+    n_pairs: u64,
+    rho: f64,
+    sigma: f64,
+    /// Weighted mean of G over the bin's pairs, from bins.csv.
+    hd: f64,
+    /// Plotted value and error bar half-length (rho and sigma divided by `y_divisor`).
+    y: f64,
+    y_err: f64,
+}
+
+#[derive(Serialize)]
+struct SideCurve {
+    pattern: String,
+    amplitude2: f64,
+    shape: &'static str,
+    angle_deg: Vec<f64>,
+    y: Vec<f64>,
+}
+
+#[derive(Serialize)]
+struct Sidecar {
+    figure: &'static str,
+    source_folder: String,
+    normalised: bool,
+    /// Plotted y = value / y_divisor (1 in units of A², the hd amplitude2 when normalised).
+    y_divisor: f64,
+    x_label: String,
+    y_label: String,
+    y_axis: [f64; 2],
+    bins: Vec<SideBin>,
+    curves: Vec<SideCurve>,
+    pairs_shown: bool,
+    pairs_in_file: usize,
+    pairs_outside_axes: usize,
+    caption: String,
+    size_in: [f64; 2],
+    plot_box_pt: [f64; 4],
+    caption_box_pt: [f64; 4],
+}
+
+struct CurveSpec {
+    pattern: &'static str,
+    label: &'static str,
+    shape: &'static str,
+    stroke: Stroke,
+    f: fn(f64) -> f64,
+}
+
+const CURVES: [CurveSpec; 3] = [
+    CurveSpec {
+        pattern: "hd",
+        label: "Hellings–Downs",
+        shape: "G(zeta)",
+        stroke: Stroke::new(VERMILLION, 1.1, LineStyle::Solid),
+        f: hellings_downs,
+    },
+    CurveSpec {
+        pattern: "monopole",
+        label: "monopole",
+        shape: "1",
+        stroke: Stroke::new(BLUE, 0.9, LineStyle::Dashed),
+        f: |_| 1.0,
+    },
+    CurveSpec {
+        pattern: "dipole",
+        label: "dipole",
+        shape: "cos(zeta)",
+        stroke: Stroke::new(GREEN, 0.9, LineStyle::DashDot),
+        f: |c| c,
+    },
+];
+
+const BIN_MARKER: MarkerStyle = MarkerStyle {
+    shape: Marker::Circle,
+    size: 3.8,
+    fill: BLACK,
+    stroke: "#FFFFFF",
+};
+
+fn quantile(sorted: &[f64], q: f64) -> f64 {
+    let i = ((sorted.len() - 1) as f64 * q).round() as usize;
+    sorted[i.min(sorted.len() - 1)]
+}
+
+pub(crate) fn draw(
+    data: &CorrelateData,
+    opts: &FigureOptions,
+    stem: &str,
+    source: &str,
+) -> Result<Drawn, FigureError> {
+    let s = &data.summary;
+    let hd = s.pattern("hd").ok_or_else(|| FigureError::MissingField {
+        path: data.dir.join(SUMMARY_JSON),
+        field: "patterns.hd".to_string(),
+    })?;
+    let div = if opts.normalised {
+        if hd.amplitude2 <= 0.0 {
+            return Err(FigureError::InvalidField {
+                path: data.dir.join(SUMMARY_JSON),
+                field: "patterns.hd.amplitude2".to_string(),
+                reason: format!(
+                    "a normalised figure divides by the hd amplitude2, which must be positive (it is {})",
+                    hd.amplitude2
+                ),
+            });
+        }
+        hd.amplitude2
+    } else {
+        1.0
+    };
+
+    // Data in plotted units.
+    let bins: Vec<SideBin> = data
+        .bins
+        .iter()
+        .map(|b| SideBin {
+            angle_lo_deg: b.angle_lo_deg,
+            angle_hi_deg: b.angle_hi_deg,
+            angle_mean_deg: b.angle_mean_deg,
+            n_pairs: b.n_pairs,
+            rho: b.rho,
+            sigma: b.sigma,
+            hd: b.hd,
+            y: b.rho / div,
+            y_err: b.sigma / div,
+        })
+        .collect();
+    let n_steps = (180.0 / CURVE_STEP_DEG).round() as usize;
+    let angles: Vec<f64> = (0..=n_steps).map(|i| i as f64 * CURVE_STEP_DEG).collect();
+    let mut curves = Vec::new();
+    let mut curve_specs = Vec::new();
+    for spec in &CURVES {
+        if let Some(fit) = s.pattern(spec.pattern) {
+            let y = angles
+                .iter()
+                .map(|a| fit.amplitude2 * (spec.f)(a.to_radians().cos()) / div)
+                .collect();
+            curves.push(SideCurve {
+                pattern: spec.pattern.to_string(),
+                amplitude2: fit.amplitude2,
+                shape: spec.shape,
+                angle_deg: angles.clone(),
+                y,
+            });
+            curve_specs.push(spec);
+        }
+    }
+
+    // Vertical range: bins with error bars, curves, zero, and the central 96 % of pairs.
+    let mut lo: f64 = 0.0;
+    let mut hi: f64 = 0.0;
+    for b in &bins {
+        lo = lo.min(b.y - b.y_err);
+        hi = hi.max(b.y + b.y_err);
+    }
+    for c in &curves {
+        for y in &c.y {
+            lo = lo.min(*y);
+            hi = hi.max(*y);
+        }
+    }
+    let pair_ys: Vec<(f64, f64)> = data
+        .pairs
+        .iter()
+        .map(|p| (p.angle_deg, p.rho / div))
+        .collect();
+    if opts.show_pairs && !pair_ys.is_empty() {
+        let mut ys: Vec<f64> = pair_ys.iter().map(|p| p.1).collect();
+        ys.sort_by(f64::total_cmp);
+        lo = lo.min(quantile(&ys, 0.02));
+        hi = hi.max(quantile(&ys, 0.98));
+    }
+    let span = (hi - lo).max(f64::MIN_POSITIVE);
+    let yt = linear_ticks(lo - 0.04 * span, hi + 0.04 * span, 5, true);
+    let xt = fixed_ticks(0.0, 180.0, 30.0, 3);
+    let unit = if yt.exponent != 0 {
+        format!("10{} ", superscript(yt.exponent))
+    } else {
+        String::new()
+    };
+    let y_label = if opts.normalised {
+        if unit.is_empty() {
+            "correlation ρ / Â²(HD)".to_string()
+        } else {
+            format!("correlation ρ / Â²(HD) [{}]", unit.trim_end())
+        }
+    } else {
+        // rho estimates A^2 G: it is in units of the (dimensionless) squared amplitude.
+        if unit.is_empty() {
+            "cross-correlation ρ [A²]".to_string()
+        } else {
+            format!("cross-correlation ρ [{}A²]", unit)
+        }
+    };
+    let x_label = "angular separation ζ [deg]".to_string();
+
+    // Legend.
+    let mut items = vec![LegendItem {
+        label: "binned ρ ± 1σ".to_string(),
+        sample: Sample::Marker(BIN_MARKER, true),
+    }];
+    for (spec, c) in curve_specs.iter().zip(&curves) {
+        let label = if opts.normalised && spec.pattern == "hd" {
+            format!("{} G(ζ)", spec.label)
+        } else {
+            format!(
+                "{}, Â² = {}",
+                spec.label,
+                format::sci(c.amplitude2, 2, Style::Figure)
+            )
+        };
+        items.push(LegendItem {
+            label,
+            sample: Sample::Line(spec.stroke),
+        });
+    }
+    if opts.show_pairs {
+        items.push(LegendItem {
+            label: "pairs".to_string(),
+            sample: Sample::Dot(PAIR_GREY, 0.7),
+        });
+    }
+
+    // Caption.
+    let fy = if s.frequencies_hz.is_empty() {
+        format!("{} frequencies", s.n_frequencies)
+    } else {
+        let fmin = s
+            .frequencies_hz
+            .iter()
+            .copied()
+            .fold(f64::INFINITY, f64::min);
+        let fmax = s
+            .frequencies_hz
+            .iter()
+            .copied()
+            .fold(f64::NEG_INFINITY, f64::max);
+        format!(
+            "{} frequencies, {}–{}",
+            s.n_frequencies,
+            format::general(fmin * 1e9, 3, Style::Figure),
+            format::nanohertz(fmax, Style::Figure)
+        )
+    };
+    let pairs_outside = if opts.show_pairs {
+        pair_ys
+            .iter()
+            .filter(|(_, y)| *y < yt.lo || *y > yt.hi)
+            .count()
+    } else {
+        0
+    };
+    let mut caption = format!(
+        "Â²(HD) = {}, S/N = {}. {} pulsars, {} pairs in {} bins; {} (spectral index {}, span {} yr). Each curve is that pattern's own fit.",
+        format::plus_minus(hd.amplitude2, hd.amplitude2_sigma, 3, Style::Figure),
+        format::fixed(hd.snr, 2, Style::Figure),
+        s.n_pulsars,
+        s.n_pairs,
+        bins.len(),
+        fy,
+        format::fixed(s.spectral_index, 2, Style::Figure),
+        format::general(s.span_years, 3, Style::Figure),
+    );
+    if pairs_outside > 0 {
+        caption.push_str(&format!(
+            " {pairs_outside} pair points lie outside the axes."
+        ));
+    }
+
+    // Layout in points.
+    let w = opts.width.inches() * 72.0;
+    let pad = 4.0;
+    let plot_x = pad + left_gutter(&yt)?;
+    let plot_w = w - 9.0 - plot_x;
+    let aspect = match opts.width {
+        ColumnWidth::Single => 0.64,
+        ColumnWidth::Double => 0.42,
+    };
+    let legend_w = w - pad - plot_x;
+    let leg_h = legend_height(&items, legend_w)?;
+    let plot = Rect {
+        x: plot_x,
+        y: pad + leg_h + 5.0,
+        w: plot_w,
+        h: plot_w * aspect,
+    };
+    let lines = wrap(&caption, w - 2.0 * pad, FS_SMALL)?;
+    let cap_y = plot.bottom() + bottom_gutter() + 4.0;
+    let h = cap_y + lines.len() as f64 * CAPTION_LINE + pad;
+
+    let xs = Scale {
+        lo: 0.0,
+        hi: 180.0,
+        log: false,
+        a: plot.x,
+        b: plot.right(),
+    };
+    let ys = Scale {
+        lo: yt.lo,
+        hi: yt.hi,
+        log: false,
+        a: plot.bottom(),
+        b: plot.y,
+    };
+
+    let title = format!("Angular correlation: {}", s.title);
+    let mut svg = Svg::new(w, h, stem);
+    let clip = svg.clip(plot);
+    draw_axes(&mut svg, plot, &xs, &ys, &xt, &yt, &x_label, &y_label)?;
+    svg.open("zero", Some(&clip), "");
+    svg.line(
+        plot.x,
+        ys.map(0.0),
+        plot.right(),
+        ys.map(0.0),
+        &Stroke::new(MUTED, 0.5, LineStyle::Dotted),
+        "zero-line",
+    );
+    svg.close();
+    if opts.show_pairs {
+        svg.open(
+            "pairs",
+            Some(&clip),
+            &format!(" fill=\"{PAIR_GREY}\" fill-opacity=\"0.45\""),
+        );
+        for (a, y) in &pair_ys {
+            svg.dot(xs.map(*a), ys.map(*y), 0.75, "pair-point");
+        }
+        svg.close();
+    }
+    svg.open("curves", Some(&clip), "");
+    for (spec, c) in curve_specs.iter().zip(&curves) {
+        let pts: Vec<(f64, f64)> = c
+            .angle_deg
+            .iter()
+            .zip(&c.y)
+            .map(|(a, y)| (xs.map(*a), ys.map(*y)))
+            .collect();
+        svg.polyline(&pts, &spec.stroke, &format!("curve curve-{}", spec.pattern));
+    }
+    svg.close();
+    svg.open("bins", Some(&clip), "");
+    let bar = Stroke::new(INK, 0.7, LineStyle::Solid);
+    for b in &bins {
+        let x = xs.map(b.angle_mean_deg);
+        svg.error_bar(
+            x,
+            ys.map(b.y - b.y_err),
+            ys.map(b.y + b.y_err),
+            1.3,
+            &bar,
+            "bin-errorbar",
+        );
+    }
+    for b in &bins {
+        svg.marker(
+            xs.map(b.angle_mean_deg),
+            ys.map(b.y),
+            &BIN_MARKER,
+            "bin-marker",
+        );
+    }
+    svg.close();
+    draw_legend(&mut svg, &items, plot.x, pad, legend_w)?;
+    let cap_box = draw_caption(&mut svg, &lines, pad, cap_y)?;
+    let svg_text = svg.finish(&title);
+
+    let sidecar = Sidecar {
+        figure: STEM,
+        source_folder: source.to_string(),
+        normalised: opts.normalised,
+        y_divisor: div,
+        x_label,
+        y_label,
+        y_axis: [yt.lo, yt.hi],
+        bins,
+        curves,
+        pairs_shown: opts.show_pairs,
+        pairs_in_file: data.pairs.len(),
+        pairs_outside_axes: pairs_outside,
+        caption: caption.clone(),
+        size_in: [w / 72.0, h / 72.0],
+        plot_box_pt: plot.as_array(),
+        caption_box_pt: cap_box.as_array(),
+    };
+    Ok(Drawn {
+        stem: stem.to_string(),
+        title,
+        caption,
+        svg: svg_text,
+        sidecar: super::sidecar_json(&sidecar, stem)?,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::hellings_downs;
+
+    #[test]
+    fn hellings_downs_known_values() {
+        assert_eq!(hellings_downs(1.0), 0.5);
+        // ζ = 180°: x = 1, G = 1/2 - 1/4.
+        assert!((hellings_downs(-1.0) - 0.25).abs() < 1e-15);
+        // ζ = 90°: x = 1/2, G = 3/8 + (3/4) ln(1/2) = -0.1448603...
+        assert!((hellings_downs(0.0) + 0.144_860_385_3).abs() < 1e-9);
+        // Continuous at ζ -> 0 and the minimum lies near 82.5°.
+        assert!((hellings_downs(1.0 - 1e-12) - 0.5).abs() < 1e-9);
+        let (mut best, mut at) = (1.0, 0.0);
+        for i in 0..=1800 {
+            let z = i as f64 / 10.0;
+            let g = hellings_downs(z.to_radians().cos());
+            if g < best {
+                best = g;
+                at = z;
+            }
+        }
+        assert!((at - 82.5).abs() < 0.5, "minimum at {at}");
+        // dG/dx = 0 at x = exp(-5/6): G = -0.151897...
+        assert!((best + 0.151_897).abs() < 1e-5, "minimum {best}");
+    }
+}

@@ -1,0 +1,813 @@
+//! Figures drawn from ptacorr's output folders.
+//!
+//! [`plot_folder`] looks at a folder, decides what ptacorr wrote there and draws:
+//! - a correlate folder (summary.json, bins.csv, pairs.csv): the angular correlation,
+//!   binned cross-correlations against angular separation with the fitted Hellings-Downs,
+//!   monopole and dipole curves ([`angular`]);
+//! - a null folder (null.json, trials.csv): the distribution of trial S/N with the observed
+//!   value and its p-value ([`null`]);
+//! - an inject folder (recovery.json, recovery.csv): recovered against injected amplitude
+//!   and the detection probability ([`recovery`]).
+//!
+//! Each figure is written as SVG, PNG or PDF together with a JSON sidecar holding exactly
+//! the numbers that were drawn. All text is drawn as vector outlines of an embedded font,
+//! so output does not depend on the fonts of the machine. Rendering is deterministic: the
+//! same inputs give byte-identical files.
+
+mod angular;
+mod canvas;
+pub(crate) mod format;
+mod input;
+mod null;
+mod recovery;
+
+use std::io::Write as _;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicU64, Ordering};
+
+pub use input::{
+    detect_kinds, Bin, CorrelateData, FolderKind, InjectData, MultiFit, NullData, NullSummary,
+    Pair, PatternFit, Provenance, RecoveryRow, Summary, Trial,
+};
+
+use resvg::{tiny_skia, usvg};
+
+/// Errors of figure and report generation. Each names the file (and field) concerned.
+#[derive(Debug, thiserror::Error)]
+pub enum FigureError {
+    #[error("cannot read {path}: {source}")]
+    Read {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+    #[error("cannot write {path}: {source}")]
+    Write {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+    #[error("{path}: not valid JSON: {source}")]
+    Json {
+        path: PathBuf,
+        source: serde_json::Error,
+    },
+    #[error("{path}: cannot read CSV: {source}")]
+    Csv { path: PathBuf, source: csv::Error },
+    #[error("{path}: field `{field}` is missing")]
+    MissingField { path: PathBuf, field: String },
+    #[error("{path}: column `{column}` is missing from the header")]
+    MissingColumn { path: PathBuf, column: String },
+    #[error("{path}: field `{field}`: {reason}")]
+    InvalidField {
+        path: PathBuf,
+        field: String,
+        reason: String,
+    },
+    #[error("{path}, line {line}, column `{column}`: {reason}")]
+    InvalidCell {
+        path: PathBuf,
+        line: u64,
+        column: String,
+        reason: String,
+    },
+    #[error("{dir}: not a ptacorr output folder: {reason}")]
+    UnknownFolder { dir: PathBuf, reason: String },
+    #[error("{dir}: {file} is missing (a {kind} folder needs it)")]
+    MissingFile {
+        dir: PathBuf,
+        file: &'static str,
+        kind: &'static str,
+    },
+    #[error("option `{option}`: {reason}")]
+    InvalidOption {
+        option: &'static str,
+        reason: String,
+    },
+    #[error("{format} output is not supported: {reason}")]
+    Unsupported {
+        format: &'static str,
+        reason: String,
+    },
+    #[error("rendering {figure} failed: {reason}")]
+    Render { figure: String, reason: String },
+    #[error("no input folders were given")]
+    NoInputs,
+}
+
+/// Output file format of a figure.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
+pub enum FigureFormat {
+    Svg,
+    Png,
+    Pdf,
+}
+
+impl FigureFormat {
+    pub fn extension(self) -> &'static str {
+        match self {
+            FigureFormat::Svg => "svg",
+            FigureFormat::Png => "png",
+            FigureFormat::Pdf => "pdf",
+        }
+    }
+}
+
+impl std::str::FromStr for FigureFormat {
+    type Err = FigureError;
+    fn from_str(s: &str) -> Result<Self, Self::Err> {
+        match s.to_ascii_lowercase().as_str() {
+            "svg" => Ok(FigureFormat::Svg),
+            "png" => Ok(FigureFormat::Png),
+            "pdf" => Ok(FigureFormat::Pdf),
+            _ => Err(FigureError::InvalidOption {
+                option: "format",
+                reason: format!("`{s}` is not one of svg, png, pdf"),
+            }),
+        }
+    }
+}
+
+/// Figure width for a journal page.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Default)]
+pub enum ColumnWidth {
+    /// One column, 3.4 in.
+    #[default]
+    Single,
+    /// Full page width, 7.0 in.
+    Double,
+}
+
+impl ColumnWidth {
+    pub fn inches(self) -> f64 {
+        match self {
+            ColumnWidth::Single => 3.4,
+            ColumnWidth::Double => 7.0,
+        }
+    }
+}
+
+/// How figures are drawn.
+#[derive(Clone, Debug, PartialEq)]
+pub struct FigureOptions {
+    /// Angular correlation in units of the fitted Hellings-Downs amplitude (rho / A2_hat)
+    /// instead of correlated power.
+    pub normalised: bool,
+    /// Show every pulsar pair as a faint point behind the bins.
+    pub show_pairs: bool,
+    pub width: ColumnWidth,
+    /// Resolution of PNG output, dots per inch (36 to 1200).
+    pub png_dpi: f64,
+}
+
+impl Default for FigureOptions {
+    fn default() -> Self {
+        Self {
+            normalised: false,
+            show_pairs: false,
+            width: ColumnWidth::Single,
+            png_dpi: 300.0,
+        }
+    }
+}
+
+/// A drawn figure before it is encoded.
+#[derive(Clone, Debug)]
+pub(crate) struct Drawn {
+    /// File name without extension, e.g. `angular-correlation`.
+    pub stem: String,
+    /// One-line description (the SVG title and the report's alt text).
+    pub title: String,
+    /// The caption printed under the figure.
+    pub caption: String,
+    pub svg: String,
+    /// The sidecar JSON text (pretty-printed, newline-terminated).
+    pub sidecar: String,
+}
+
+/// Draws every figure of one folder kind. `stem_suffix` is appended to the file stems (the
+/// report uses it to keep two folders of one kind apart).
+pub(crate) fn draw_kind(
+    kind: FolderKind,
+    dir: &Path,
+    opts: &FigureOptions,
+    stem_suffix: &str,
+) -> Result<Vec<Drawn>, FigureError> {
+    check_options(opts)?;
+    let source = folder_label(dir);
+    Ok(match kind {
+        FolderKind::Correlate => {
+            let data = CorrelateData::load(dir)?;
+            vec![angular::draw(
+                &data,
+                opts,
+                &format!("{}{stem_suffix}", angular::STEM),
+                &source,
+            )?]
+        }
+        FolderKind::Null => {
+            let data = NullData::load(dir)?;
+            vec![null::draw(
+                &data,
+                opts,
+                &format!("{}{stem_suffix}", null::STEM),
+                &source,
+            )?]
+        }
+        FolderKind::Inject => {
+            let data = InjectData::load(dir)?;
+            vec![recovery::draw(
+                &data,
+                opts,
+                &format!("{}{stem_suffix}", recovery::STEM),
+                &source,
+            )?]
+        }
+    })
+}
+
+/// The last component of a folder path, used to name it in sidecars and the report
+/// (never the full path, so outputs do not depend on where the inputs sit).
+pub(crate) fn folder_label(dir: &Path) -> String {
+    dir.components()
+        .next_back()
+        .map(|c| c.as_os_str().to_string_lossy().into_owned())
+        .filter(|s| !s.is_empty() && s != "." && s != "..")
+        .unwrap_or_else(|| "input".to_string())
+}
+
+fn check_options(opts: &FigureOptions) -> Result<(), FigureError> {
+    if !(opts.png_dpi.is_finite() && (36.0..=1200.0).contains(&opts.png_dpi)) {
+        return Err(FigureError::InvalidOption {
+            option: "png_dpi",
+            reason: format!("{} is outside 36-1200", opts.png_dpi),
+        });
+    }
+    Ok(())
+}
+
+/// Detects the kind of `dir`, draws its figure(s) and writes each in `format` together with
+/// a `<stem>.json` sidecar into `out` (default: `dir` itself). Returns the paths written,
+/// figure then sidecar for each figure.
+pub fn plot_folder(
+    dir: &Path,
+    format: FigureFormat,
+    out: Option<&Path>,
+    opts: &FigureOptions,
+) -> Result<Vec<PathBuf>, FigureError> {
+    check_options(opts)?;
+    let kinds = detect_kinds(dir)?;
+    let out_dir = out.unwrap_or(dir);
+    std::fs::create_dir_all(out_dir).map_err(|source| FigureError::Write {
+        path: out_dir.to_path_buf(),
+        source,
+    })?;
+    let mut written = Vec::new();
+    for kind in kinds {
+        for d in draw_kind(kind, dir, opts, "")? {
+            let bytes = encode(&d, format, opts)?;
+            let fig = out_dir.join(format!("{}.{}", d.stem, format.extension()));
+            write_atomic(&fig, &bytes)?;
+            let side = out_dir.join(format!("{}.json", d.stem));
+            write_atomic(&side, d.sidecar.as_bytes())?;
+            written.push(fig);
+            written.push(side);
+        }
+    }
+    Ok(written)
+}
+
+/// Encodes a drawn figure in `format`.
+pub(crate) fn encode(
+    d: &Drawn,
+    format: FigureFormat,
+    opts: &FigureOptions,
+) -> Result<Vec<u8>, FigureError> {
+    match format {
+        FigureFormat::Svg => Ok(d.svg.clone().into_bytes()),
+        FigureFormat::Png => render_png(&d.svg, opts.png_dpi, &d.stem),
+        FigureFormat::Pdf => render_pdf(&d.svg, &d.stem),
+    }
+}
+
+fn render_err(figure: &str, reason: impl std::fmt::Display) -> FigureError {
+    FigureError::Render {
+        figure: figure.to_string(),
+        reason: reason.to_string(),
+    }
+}
+
+/// Serialises a figure's sidecar as pretty JSON ending in a newline.
+pub(crate) fn sidecar_json<T: serde::Serialize>(
+    v: &T,
+    figure: &str,
+) -> Result<String, FigureError> {
+    serde_json::to_string_pretty(v)
+        .map(|s| s + "\n")
+        .map_err(|e| render_err(figure, e))
+}
+
+/// Parses our own SVG. No font database is consulted: all text is already outlines.
+fn parse_svg(svg: &str, figure: &str) -> Result<usvg::Tree, FigureError> {
+    usvg::Tree::from_str(svg, &usvg::Options::default()).map_err(|e| render_err(figure, e))
+}
+
+/// Rasterises an SVG at `dpi` onto white and encodes it as an RGB PNG with its resolution
+/// recorded (pHYs chunk).
+pub(crate) fn render_png(svg: &str, dpi: f64, figure: &str) -> Result<Vec<u8>, FigureError> {
+    let tree = parse_svg(svg, figure)?;
+    // usvg sizes the tree in CSS pixels (96 per inch).
+    let scale = dpi / 96.0;
+    let w = (f64::from(tree.size().width()) * scale).round();
+    let h = (f64::from(tree.size().height()) * scale).round();
+    if !(w >= 1.0 && h >= 1.0 && w * h <= 1.0e8) {
+        return Err(render_err(
+            figure,
+            format!("image size {w} x {h} px is out of range"),
+        ));
+    }
+    let (w, h) = (w as u32, h as u32);
+    let mut pixmap = tiny_skia::Pixmap::new(w, h)
+        .ok_or_else(|| render_err(figure, "cannot allocate the image"))?;
+    pixmap.fill(tiny_skia::Color::WHITE);
+    let sx = w as f32 / tree.size().width();
+    let sy = h as f32 / tree.size().height();
+    resvg::render(
+        &tree,
+        tiny_skia::Transform::from_scale(sx, sy),
+        &mut pixmap.as_mut(),
+    );
+    // Opaque white background: premultiplied RGBA equals straight RGBA; drop alpha.
+    let rgb: Vec<u8> = pixmap
+        .data()
+        .chunks_exact(4)
+        .flat_map(|p| [p[0], p[1], p[2]])
+        .collect();
+    let mut out = Vec::new();
+    {
+        let mut enc = png::Encoder::new(&mut out, w, h);
+        enc.set_color(png::ColorType::Rgb);
+        enc.set_depth(png::BitDepth::Eight);
+        let ppm = (dpi / 0.0254).round() as u32;
+        enc.set_pixel_dims(Some(png::PixelDimensions {
+            xppu: ppm,
+            yppu: ppm,
+            unit: png::Unit::Meter,
+        }));
+        let mut wr = enc.write_header().map_err(|e| render_err(figure, e))?;
+        wr.write_image_data(&rgb)
+            .map_err(|e| render_err(figure, e))?;
+        wr.finish().map_err(|e| render_err(figure, e))?;
+    }
+    Ok(out)
+}
+
+/// Converts an SVG to a one-page vector PDF of the same physical size.
+pub(crate) fn render_pdf(svg: &str, figure: &str) -> Result<Vec<u8>, FigureError> {
+    let tree = parse_svg(svg, figure)?;
+    svg2pdf::to_pdf(
+        &tree,
+        svg2pdf::ConversionOptions::default(),
+        svg2pdf::PageOptions { dpi: 96.0 },
+    )
+    .map_err(|e| render_err(figure, e))
+}
+
+/// Writes `bytes` to a temporary file beside `path`, flushes it and renames it over `path`,
+/// so a reader never sees a half-written file.
+pub(crate) fn write_atomic(path: &Path, bytes: &[u8]) -> Result<(), FigureError> {
+    static COUNTER: AtomicU64 = AtomicU64::new(0);
+    let werr = |source| FigureError::Write {
+        path: path.to_path_buf(),
+        source,
+    };
+    let name = path
+        .file_name()
+        .ok_or_else(|| werr(std::io::Error::other("the path has no file name")))?;
+    let dir = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
+        _ => PathBuf::from("."),
+    };
+    let tmp = dir.join(format!(
+        ".{}.tmp-{}-{}",
+        name.to_string_lossy(),
+        std::process::id(),
+        COUNTER.fetch_add(1, Ordering::Relaxed)
+    ));
+    let result = (|| {
+        let mut f = std::fs::File::create(&tmp)?;
+        f.write_all(bytes)?;
+        f.sync_all()?;
+        drop(f);
+        std::fs::rename(&tmp, path)
+    })();
+    if let Err(e) = result {
+        let _ = std::fs::remove_file(&tmp);
+        return Err(werr(e));
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+pub(crate) mod fixtures;
+
+#[cfg(test)]
+mod tests {
+    use super::fixtures::{self, TempDir};
+    use super::*;
+    use resvg::usvg::roxmltree;
+
+    fn class_count(svg: &str, class: &str) -> usize {
+        let doc = roxmltree::Document::parse(svg).expect("SVG parses as XML");
+        doc.descendants()
+            .filter(|n| {
+                n.attribute("class")
+                    .is_some_and(|c| c.split_whitespace().any(|w| w == class))
+            })
+            .count()
+    }
+
+    fn sidecar(path: &Path) -> serde_json::Value {
+        serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap()
+    }
+
+    fn png_size(bytes: &[u8]) -> (u32, u32, Vec<u8>) {
+        let dec = png::Decoder::new(std::io::Cursor::new(bytes));
+        let mut r = dec.read_info().expect("PNG header decodes");
+        let mut buf = vec![0; r.output_buffer_size()];
+        let info = r.next_frame(&mut buf).expect("PNG data decodes");
+        assert_eq!(info.color_type, png::ColorType::Rgb);
+        buf.truncate(info.buffer_size());
+        (info.width, info.height, buf)
+    }
+
+    /// Non-white pixels inside a box given in points.
+    fn ink_in(rgb: &[u8], width: u32, dpi: f64, b: &[f64]) -> usize {
+        let s = dpi / 72.0;
+        let (x0, y0) = ((b[0] * s) as usize, (b[1] * s) as usize);
+        let (x1, y1) = (((b[0] + b[2]) * s) as usize, ((b[1] + b[3]) * s) as usize);
+        let mut k = 0;
+        for y in y0..y1 {
+            for x in x0..x1.min(width as usize) {
+                let i = (y * width as usize + x) * 3;
+                if i + 2 < rgb.len() && rgb[i..i + 3].iter().any(|&c| c < 200) {
+                    k += 1;
+                }
+            }
+        }
+        k
+    }
+
+    #[test]
+    fn detects_folder_kinds_and_reports_missing_files() {
+        let t = TempDir::new("detect");
+        let c = t.sub("corr");
+        fixtures::write_correlate(&c);
+        assert_eq!(detect_kinds(&c).unwrap(), vec![FolderKind::Correlate]);
+        std::fs::remove_file(c.join("pairs.csv")).unwrap();
+        let e = detect_kinds(&c).unwrap_err();
+        assert!(
+            matches!(
+                e,
+                FigureError::MissingFile {
+                    file: "pairs.csv",
+                    ..
+                }
+            ),
+            "{e}"
+        );
+        let empty = t.sub("empty");
+        let e =
+            plot_folder(&empty, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
+        assert!(matches!(e, FigureError::UnknownFolder { .. }), "{e}");
+        assert!(e.to_string().contains("empty"));
+    }
+
+    #[test]
+    fn angular_svg_has_one_marker_and_error_bar_per_bin() {
+        let t = TempDir::new("angular-svg");
+        let c = t.sub("corr");
+        fixtures::write_correlate(&c);
+        let opts = FigureOptions {
+            show_pairs: true,
+            ..Default::default()
+        };
+        let out = plot_folder(&c, FigureFormat::Svg, Some(&t.sub("out")), &opts).unwrap();
+        assert_eq!(out.len(), 2);
+        assert!(out[0].ends_with("angular-correlation.svg"));
+        let svg = std::fs::read_to_string(&out[0]).unwrap();
+        let tree = usvg::Tree::from_str(&svg, &usvg::Options::default()).expect("usvg parses");
+        assert!((tree.size().width() - 3.4 * 96.0).abs() < 0.01);
+        let side = sidecar(&out[1]);
+        let n_rows = fixtures::correlate_bin_rows(&c);
+        assert_eq!(side["bins"].as_array().unwrap().len(), n_rows);
+        assert_eq!(class_count(&svg, "bin-marker"), n_rows);
+        assert_eq!(class_count(&svg, "bin-errorbar"), n_rows);
+        assert_eq!(class_count(&svg, "pair-point"), fixtures::CORRELATE_PAIRS);
+        assert_eq!(class_count(&svg, "curve-hd"), 1);
+        assert_eq!(class_count(&svg, "curve-monopole"), 1);
+        assert_eq!(class_count(&svg, "curve-dipole"), 1);
+        // No font is needed to show this file.
+        assert_eq!(svg.matches("<text").count(), 0);
+        // The sidecar holds what was drawn: the bins of bins.csv and G(zeta) scaled by A2.
+        let a2 = side["curves"][0]["amplitude2"].as_f64().unwrap();
+        assert_eq!(side["curves"][0]["pattern"], "hd");
+        let ys = side["curves"][0]["y"].as_array().unwrap();
+        assert!((ys[0].as_f64().unwrap() - 0.5 * a2).abs() < 1e-12 * a2);
+        assert!((ys[180].as_f64().unwrap() - a2 * -0.144_860_2).abs() < 1e-6 * a2);
+        let b0 = &side["bins"][0];
+        assert_eq!(b0["y"].as_f64(), b0["rho"].as_f64());
+    }
+
+    #[test]
+    fn normalised_mode_divides_by_hd_amplitude() {
+        let t = TempDir::new("angular-norm");
+        let c = t.sub("corr");
+        fixtures::write_correlate(&c);
+        let opts = FigureOptions {
+            normalised: true,
+            ..Default::default()
+        };
+        let out = plot_folder(&c, FigureFormat::Svg, Some(&t.sub("out")), &opts).unwrap();
+        let side = sidecar(&out[1]);
+        let a2 = fixtures::CORRELATE_A2_HD;
+        assert_eq!(side["y_divisor"].as_f64().unwrap(), a2);
+        let b = &side["bins"][2];
+        let want = b["rho"].as_f64().unwrap() / a2;
+        assert!((b["y"].as_f64().unwrap() - want).abs() < 1e-12);
+        assert!((side["curves"][0]["y"][0].as_f64().unwrap() - 0.5).abs() < 1e-12);
+        assert!(side["y_label"].as_str().unwrap().contains("Â²"));
+    }
+
+    #[test]
+    fn normalising_by_a_negative_amplitude_is_a_typed_error() {
+        let t = TempDir::new("angular-neg");
+        let c = t.sub("corr");
+        fixtures::write_correlate(&c);
+        fixtures::edit_json(&c.join("summary.json"), |v| {
+            v["patterns"]["hd"]["amplitude2"] = serde_json::json!(-1.0e-30);
+        });
+        let opts = FigureOptions {
+            normalised: true,
+            ..Default::default()
+        };
+        let e = plot_folder(&c, FigureFormat::Svg, None, &opts).unwrap_err();
+        match &e {
+            FigureError::InvalidField { path, field, .. } => {
+                assert!(path.ends_with("summary.json"));
+                assert_eq!(field, "patterns.hd.amplitude2");
+            }
+            other => panic!("unexpected error {other}"),
+        }
+        // In units of A^2 the same folder draws fine.
+        assert!(plot_folder(&c, FigureFormat::Svg, None, &FigureOptions::default()).is_ok());
+    }
+
+    #[test]
+    fn bad_cells_and_fields_name_file_line_and_column() {
+        let t = TempDir::new("bad-input");
+        let c = t.sub("corr");
+        fixtures::write_correlate(&c);
+        let bins = std::fs::read_to_string(c.join("bins.csv")).unwrap();
+        let mut lines: Vec<String> = bins.lines().map(str::to_string).collect();
+        let cells: Vec<&str> = lines[3].split(',').collect();
+        let mut cells: Vec<String> = cells.iter().map(|s| s.to_string()).collect();
+        cells[5] = "abc".to_string();
+        lines[3] = cells.join(",");
+        std::fs::write(c.join("bins.csv"), lines.join("\n")).unwrap();
+        let e = plot_folder(&c, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
+        match &e {
+            FigureError::InvalidCell {
+                path, line, column, ..
+            } => {
+                assert!(path.ends_with("bins.csv"));
+                assert_eq!(*line, 4);
+                assert_eq!(column, "sigma");
+            }
+            other => panic!("unexpected error {other}"),
+        }
+        let n = t.sub("null");
+        fixtures::write_null(&n, true);
+        std::fs::write(n.join("null.json"), "{\"method\": \"phase\"").unwrap();
+        let e = plot_folder(&n, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
+        assert!(matches!(e, FigureError::Json { .. }), "{e}");
+        fixtures::write_null(&n, true);
+        fixtures::edit_json(&n.join("null.json"), |v| {
+            v.as_object_mut().unwrap().remove("observed_snr");
+        });
+        let e = plot_folder(&n, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
+        assert!(e.to_string().contains("observed_snr"), "{e}");
+        let i = t.sub("inject");
+        fixtures::write_inject(&i);
+        let rec = std::fs::read_to_string(i.join("recovery.csv")).unwrap();
+        std::fs::write(
+            i.join("recovery.csv"),
+            rec.replace("detection_probability", "p_det"),
+        )
+        .unwrap();
+        let e = plot_folder(&i, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
+        assert!(
+            matches!(&e, FigureError::MissingColumn { column, .. } if column == "detection_probability"),
+            "{e}"
+        );
+    }
+
+    #[test]
+    fn out_of_range_angles_and_non_finite_values_are_refused() {
+        let t = TempDir::new("bad-angles");
+        let c = t.sub("corr");
+        fixtures::write_correlate(&c);
+        let pairs = std::fs::read_to_string(c.join("pairs.csv")).unwrap();
+        let mut lines: Vec<String> = pairs.lines().map(str::to_string).collect();
+        let mut cells: Vec<String> = lines[1].split(',').map(str::to_string).collect();
+        cells[2] = "181.5".to_string();
+        lines[1] = cells.join(",");
+        std::fs::write(c.join("pairs.csv"), lines.join("\n")).unwrap();
+        let e = plot_folder(&c, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
+        assert!(
+            matches!(&e, FigureError::InvalidCell { line: 2, column, .. } if column == "angle_deg"),
+            "{e}"
+        );
+        fixtures::write_correlate(&c);
+        let bins = std::fs::read_to_string(c.join("bins.csv")).unwrap();
+        let mut lines: Vec<String> = bins.lines().map(str::to_string).collect();
+        let mut cells: Vec<String> = lines[2].split(',').map(str::to_string).collect();
+        cells[4] = "NaN".to_string();
+        lines[2] = cells.join(",");
+        std::fs::write(c.join("bins.csv"), lines.join("\n")).unwrap();
+        let e = plot_folder(&c, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
+        assert!(
+            matches!(&e, FigureError::InvalidCell { line: 3, column, .. } if column == "rho"),
+            "{e}"
+        );
+    }
+
+    #[test]
+    fn png_has_the_column_size_and_text_renders_without_system_fonts() {
+        let t = TempDir::new("angular-png");
+        let c = t.sub("corr");
+        fixtures::write_correlate(&c);
+        for (width, dpi) in [(ColumnWidth::Single, 300.0), (ColumnWidth::Double, 150.0)] {
+            let opts = FigureOptions {
+                width,
+                png_dpi: dpi,
+                show_pairs: true,
+                ..Default::default()
+            };
+            let out = plot_folder(&c, FigureFormat::Png, Some(&t.sub("out")), &opts).unwrap();
+            let bytes = std::fs::read(&out[0]).unwrap();
+            let (w, h, rgb) = png_size(&bytes);
+            assert_eq!(w, (width.inches() * dpi).round() as u32);
+            let side = sidecar(&out[1]);
+            let h_in = side["size_in"][1].as_f64().unwrap();
+            assert_eq!(h, (h_in * dpi).round() as u32);
+            // usvg is given no font database at all; the caption box must still hold ink.
+            let cap: Vec<f64> = side["caption_box_pt"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .map(|v| v.as_f64().unwrap())
+                .collect();
+            assert!(cap[2] > 20.0 && cap[3] > 4.0, "caption box {cap:?}");
+            let ink = ink_in(&rgb, w, dpi, &cap);
+            let area = (cap[2] * cap[3]) * (dpi / 72.0).powi(2);
+            assert!(
+                ink as f64 > 0.02 * area,
+                "caption has {ink} inked pixels of {area}"
+            );
+            // The strip just below the caption is blank (the check can tell ink from none).
+            let margin = [cap[0], cap[1] + cap[3] + 1.0, cap[2], 2.0];
+            assert_eq!(ink_in(&rgb, w, dpi, &margin), 0);
+        }
+    }
+
+    #[test]
+    fn null_figure_marks_observed_and_overlays_analytic_density() {
+        let t = TempDir::new("null-fig");
+        let n = t.sub("null");
+        fixtures::write_null(&n, true);
+        let out = plot_folder(&n, FigureFormat::Svg, None, &FigureOptions::default()).unwrap();
+        assert!(out[0].ends_with("null-distribution.svg"));
+        let svg = std::fs::read_to_string(&out[0]).unwrap();
+        let side = sidecar(&out[1]);
+        let counts = side["histogram"]["counts"].as_array().unwrap();
+        let total: u64 = counts.iter().map(|c| c.as_u64().unwrap()).sum();
+        assert_eq!(total as usize, fixtures::NULL_TRIALS);
+        assert_eq!(class_count(&svg, "hist-bar"), counts.len());
+        assert_eq!(class_count(&svg, "observed-line"), 1);
+        assert_eq!(class_count(&svg, "analytic-density"), 1);
+        // Densities integrate to one over the histogram.
+        let edges = side["histogram"]["edges"].as_array().unwrap();
+        let dens = side["histogram"]["density"].as_array().unwrap();
+        let integral: f64 = (0..dens.len())
+            .map(|i| {
+                dens[i].as_f64().unwrap()
+                    * (edges[i + 1].as_f64().unwrap() - edges[i].as_f64().unwrap())
+            })
+            .sum();
+        assert!((integral - 1.0).abs() < 1e-9);
+        assert!(side["caption"].as_str().unwrap().contains("one-sided"));
+        // Without analytic density there is no curve.
+        fixtures::write_null(&n, false);
+        let out = plot_folder(&n, FigureFormat::Svg, None, &FigureOptions::default()).unwrap();
+        let svg = std::fs::read_to_string(&out[0]).unwrap();
+        assert_eq!(class_count(&svg, "analytic-density"), 0);
+    }
+
+    #[test]
+    fn recovery_figure_plots_each_positive_row_in_both_panels() {
+        let t = TempDir::new("inject-fig");
+        let i = t.sub("inject");
+        fixtures::write_inject(&i);
+        for width in [ColumnWidth::Single, ColumnWidth::Double] {
+            let opts = FigureOptions {
+                width,
+                ..Default::default()
+            };
+            let out = plot_folder(&i, FigureFormat::Svg, None, &opts).unwrap();
+            let svg = std::fs::read_to_string(&out[0]).unwrap();
+            let side = sidecar(&out[1]);
+            let positive = fixtures::INJECT_ROWS - 1;
+            assert_eq!(side["recovery"].as_array().unwrap().len(), positive);
+            assert_eq!(side["omitted_zero_rows"].as_u64(), Some(1));
+            assert_eq!(class_count(&svg, "recovery-marker"), positive);
+            assert_eq!(class_count(&svg, "recovery-errorbar"), positive);
+            assert_eq!(class_count(&svg, "detection-marker"), positive);
+            assert_eq!(class_count(&svg, "identity-line"), 1);
+            assert_eq!(class_count(&svg, "fap-label"), 1);
+            let below = side["recovery"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .filter(|r| r["placement"] == "below_axis")
+                .count();
+            assert_eq!(below, 1, "the fixture's weakest row has a negative mean");
+            let det = &side["detection"][0];
+            let p = det["detection_probability"].as_f64().unwrap();
+            let n = det["realizations"].as_f64().unwrap();
+            assert!((det["error"].as_f64().unwrap() - (p * (1.0 - p) / n).sqrt()).abs() < 1e-12);
+        }
+    }
+
+    #[test]
+    fn pdf_output_is_a_deterministic_pdf() {
+        let t = TempDir::new("pdf");
+        let i = t.sub("inject");
+        fixtures::write_inject(&i);
+        let a = plot_folder(
+            &i,
+            FigureFormat::Pdf,
+            Some(&t.sub("a")),
+            &FigureOptions::default(),
+        )
+        .unwrap();
+        let b = plot_folder(
+            &i,
+            FigureFormat::Pdf,
+            Some(&t.sub("b")),
+            &FigureOptions::default(),
+        )
+        .unwrap();
+        let pa = std::fs::read(&a[0]).unwrap();
+        assert!(pa.starts_with(b"%PDF-"));
+        assert_eq!(pa, std::fs::read(&b[0]).unwrap());
+        // 3.4 in = 244.8 pt page width.
+        let text = String::from_utf8_lossy(&pa);
+        assert!(text.contains("/MediaBox [0 0 244.8"), "media box missing");
+    }
+
+    #[test]
+    fn options_are_checked() {
+        let t = TempDir::new("opts");
+        let c = t.sub("corr");
+        fixtures::write_correlate(&c);
+        let opts = FigureOptions {
+            png_dpi: 0.0,
+            ..Default::default()
+        };
+        let e = plot_folder(&c, FigureFormat::Png, None, &opts).unwrap_err();
+        assert!(matches!(
+            e,
+            FigureError::InvalidOption {
+                option: "png_dpi",
+                ..
+            }
+        ));
+        assert!("tiff".parse::<FigureFormat>().is_err());
+        assert_eq!("PNG".parse::<FigureFormat>().unwrap(), FigureFormat::Png);
+    }
+
+    #[test]
+    fn atomic_write_replaces_and_leaves_no_temporary() {
+        let t = TempDir::new("atomic");
+        let p = t.path().join("f.txt");
+        write_atomic(&p, b"one").unwrap();
+        write_atomic(&p, b"two").unwrap();
+        assert_eq!(std::fs::read(&p).unwrap(), b"two");
+        let names: Vec<_> = std::fs::read_dir(t.path())
+            .unwrap()
+            .map(|e| e.unwrap().file_name())
+            .collect();
+        assert_eq!(names.len(), 1, "{names:?}");
+        let e = write_atomic(&t.path().join("missing").join("x"), b"x").unwrap_err();
+        assert!(matches!(e, FigureError::Write { .. }));
+    }
+}
