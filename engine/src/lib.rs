@@ -22,6 +22,7 @@ pub mod noise;
 pub mod optimal;
 pub mod orf;
 pub mod output;
+pub mod paircov;
 pub mod reduce;
 pub mod release;
 pub mod rng;
