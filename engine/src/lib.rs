@@ -17,6 +17,7 @@ pub mod basis;
 pub mod bins;
 pub mod constants;
 pub mod error;
+pub mod inject;
 pub mod linalg;
 pub mod noise;
 pub mod optimal;
