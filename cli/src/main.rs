@@ -15,6 +15,7 @@ use std::process::ExitCode;
 use std::time::Instant;
 
 mod demo;
+mod inject_cmd;
 
 #[derive(Parser)]
 #[command(
@@ -53,6 +54,8 @@ enum Command {
         #[command(flatten)]
         analysis: AnalysisArgs,
     },
+    /// Inject a background at several amplitudes and measure how well it is recovered.
+    Inject(inject_cmd::InjectArgs),
 }
 
 #[derive(clap::Args, Clone)]
@@ -147,6 +150,7 @@ fn run(cli: Cli) -> Result<()> {
             println!("wrote {}/summary.json, pairs.csv, bins.csv", out.display());
             Ok(())
         }
+        Command::Inject(args) => inject_cmd::run(args),
     }
 }
 
