@@ -93,6 +93,7 @@ pub struct InjectArgs {
 
 pub fn run(args: InjectArgs) -> Result<()> {
     let t = Instant::now();
+    ptacorr::inject::limit_blas_threads(1);
     if !args.merge.is_empty() {
         let out = merge_shards(&args.merge)?;
         out.write(&args.out)?;
