@@ -16,6 +16,7 @@ use std::time::Instant;
 
 mod demo;
 mod figures_cmd;
+mod inject_cmd;
 
 #[derive(Parser)]
 #[command(
@@ -58,6 +59,8 @@ enum Command {
     Plot(figures_cmd::PlotArgs),
     /// Gather output folders into a memo-ready report (Markdown, HTML, LaTeX tables, figures).
     Report(figures_cmd::ReportArgs),
+    /// Inject a background at several amplitudes and measure how well it is recovered.
+    Inject(inject_cmd::InjectArgs),
 }
 
 #[derive(clap::Args, Clone)]
@@ -154,6 +157,7 @@ fn run(cli: Cli) -> Result<()> {
         }
         Command::Plot(args) => figures_cmd::plot(&args),
         Command::Report(args) => figures_cmd::report(&args).map(|_| ()),
+        Command::Inject(args) => inject_cmd::run(args),
     }
 }
 
