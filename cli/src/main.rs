@@ -15,6 +15,7 @@ use std::process::ExitCode;
 use std::time::Instant;
 
 mod demo;
+mod null_cmd;
 
 #[derive(Parser)]
 #[command(
@@ -53,10 +54,19 @@ enum Command {
         #[command(flatten)]
         analysis: AnalysisArgs,
     },
+    /// False-alarm probability of the observed SNR from null trials (and the analytic null).
+    Null(Box<null_cmd::NullArgs>),
+    /// Merge the shard folders of one `ptacorr null` run.
+    Merge {
+        #[arg(required = true)]
+        dirs: Vec<PathBuf>,
+        #[arg(long)]
+        out: PathBuf,
+    },
 }
 
 #[derive(clap::Args, Clone)]
-struct AnalysisArgs {
+pub(crate) struct AnalysisArgs {
     /// Number of analysis frequencies f_j = j / T_span.
     #[arg(long, default_value_t = 14)]
     frequencies: usize,
@@ -78,7 +88,7 @@ struct AnalysisArgs {
 }
 
 impl AnalysisArgs {
-    fn settings(&self) -> CorrelateSettings {
+    pub(crate) fn settings(&self) -> CorrelateSettings {
         CorrelateSettings {
             n_frequencies: self.frequencies,
             spectral_index: self.spectral_index,
@@ -147,6 +157,8 @@ fn run(cli: Cli) -> Result<()> {
             println!("wrote {}/summary.json, pairs.csv, bins.csv", out.display());
             Ok(())
         }
+        Command::Null(args) => null_cmd::run_null(*args),
+        Command::Merge { dirs, out } => null_cmd::run_merge(&dirs, &out),
     }
 }
 

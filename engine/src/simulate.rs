@@ -86,7 +86,10 @@ pub fn simulate_residuals(
     let n_c = 2 * ladder.len();
     // Background coefficients: for each frequency and quadrature, c ~ N(0, phi(f) G).
     let mut bg = Array2::<f64>::zeros((n_psr, n_c));
-    if let Some(b) = what.background.filter(|b| b.pattern != BackgroundPattern::None) {
+    if let Some(b) = what
+        .background
+        .filter(|b| b.pattern != BackgroundPattern::None)
+    {
         let a2 = 10f64.powf(2.0 * b.log10_amplitude);
         let root = match b.pattern.pattern() {
             Some(p) => {
