@@ -17,6 +17,7 @@ use std::time::Instant;
 mod demo;
 mod figures_cmd;
 mod inject_cmd;
+mod null_cmd;
 
 #[derive(Parser)]
 #[command(
@@ -61,10 +62,19 @@ enum Command {
     Report(figures_cmd::ReportArgs),
     /// Inject a background at several amplitudes and measure how well it is recovered.
     Inject(inject_cmd::InjectArgs),
+    /// False-alarm probability of the observed SNR from null trials (and the analytic null).
+    Null(Box<null_cmd::NullArgs>),
+    /// Merge the shard folders of one `ptacorr null` run.
+    Merge {
+        #[arg(required = true)]
+        dirs: Vec<PathBuf>,
+        #[arg(long)]
+        out: PathBuf,
+    },
 }
 
 #[derive(clap::Args, Clone)]
-struct AnalysisArgs {
+pub(crate) struct AnalysisArgs {
     /// Number of analysis frequencies f_j = j / T_span.
     #[arg(long, default_value_t = 14)]
     frequencies: usize,
@@ -86,7 +96,7 @@ struct AnalysisArgs {
 }
 
 impl AnalysisArgs {
-    fn settings(&self) -> CorrelateSettings {
+    pub(crate) fn settings(&self) -> CorrelateSettings {
         CorrelateSettings {
             n_frequencies: self.frequencies,
             spectral_index: self.spectral_index,
@@ -158,6 +168,8 @@ fn run(cli: Cli) -> Result<()> {
         Command::Plot(args) => figures_cmd::plot(&args),
         Command::Report(args) => figures_cmd::report(&args).map(|_| ()),
         Command::Inject(args) => inject_cmd::run(args),
+        Command::Null(args) => null_cmd::run_null(*args),
+        Command::Merge { dirs, out } => null_cmd::run_merge(&dirs, &out),
     }
 }
 

@@ -1,0 +1,713 @@
+//! Null distributions of the optimal statistic and the false-alarm probability of an observed
+//! SNR (science notes section 6): sky scrambles (Cornish & Sampson 2016; Taylor et al. 2017),
+//! phase shifts (Taylor et al. 2017), simulated nulls in the reduced space or the time domain,
+//! and the analytic generalised chi-square null (Hazboun et al. 2023; Imhof 1961).
+//!
+//! Every trial draws from `rng::stream(seed, purpose, i)` alone, so trial `i` is the same number
+//! whatever the thread count, the shard or the chunk it falls in. Trials are processed in chunks;
+//! each finished chunk is written atomically to `OUT/.partial/`, so rerunning the same command
+//! after an interruption resumes where it stopped (docs/null.md).
+
+pub mod analytic;
+pub mod merge;
+pub mod phase;
+pub mod scramble;
+pub mod simulated;
+
+use crate::analysis::{correlate, CorrelateSettings, Correlation, Provenance};
+use crate::error::{Error, Result};
+use crate::optimal::{pair_numerators, pair_traces, weight, Weighted};
+use crate::orf::{pattern_for_pairs, Pattern};
+use crate::output::{fmt_f64, write_atomic, write_json};
+use crate::pvalue::{clopper_pearson, gaussian_equivalent_sigma, trial_p_value};
+use crate::release::Release;
+use crate::sky::Direction;
+use rayon::prelude::*;
+use serde::{Deserialize, Serialize};
+use sha2::{Digest, Sha256};
+use std::fmt::Write as _;
+use std::ops::Range;
+use std::path::Path;
+use std::sync::atomic::{AtomicBool, Ordering};
+
+/// How null trials are made.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Method {
+    /// Random sky positions, same rho_ab and sigma_ab.
+    Scramble,
+    /// Random per-pulsar, per-frequency rotations of the Fourier coefficients.
+    Phase,
+    /// Gaussian draws from the noise model (reduced space, or time domain for checking).
+    Simulate,
+}
+
+impl Method {
+    /// Parse `scramble`, `phase` or `simulate`.
+    pub fn from_name(s: &str) -> Option<Method> {
+        match s {
+            "scramble" => Some(Method::Scramble),
+            "phase" => Some(Method::Phase),
+            "simulate" => Some(Method::Simulate),
+            _ => None,
+        }
+    }
+}
+
+/// Shard `index` (1-based) of `count`: a contiguous block of the global trial indices.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Shard {
+    pub index: u64,
+    pub count: u64,
+}
+
+impl Shard {
+    /// Parse `I/N` with 1 <= I <= N.
+    pub fn parse(text: &str) -> Result<Shard> {
+        let bad = || {
+            Error::setting(
+                "shard",
+                format!("expected I/N with 1 <= I <= N, got {text:?}"),
+            )
+        };
+        let (i, n) = text.split_once('/').ok_or_else(bad)?;
+        let index: u64 = i.trim().parse().map_err(|_| bad())?;
+        let count: u64 = n.trim().parse().map_err(|_| bad())?;
+        if index == 0 || index > count {
+            return Err(bad());
+        }
+        Ok(Shard { index, count })
+    }
+
+    /// The global trial indices of this shard out of `trials`:
+    /// [floor((I-1) N / n), floor(I N / n)).
+    pub fn range(&self, trials: u64) -> Range<u64> {
+        let lo = ((self.index - 1) as u128 * trials as u128 / self.count as u128) as u64;
+        let hi = (self.index as u128 * trials as u128 / self.count as u128) as u64;
+        lo..hi
+    }
+}
+
+/// Everything that defines a null run (recorded in its provenance).
+#[derive(Clone, Debug, Serialize)]
+pub struct NullSettings {
+    pub method: Method,
+    /// For `simulate`: simulate full time-domain residuals instead of reduced-space draws.
+    pub time_domain: bool,
+    /// Total number of trials N over all shards.
+    pub trials: u64,
+    pub seed: u64,
+    pub pattern: Pattern,
+    /// For scrambles: keep only scrambles whose |match| with the true pattern is below this.
+    pub match_threshold: Option<f64>,
+    /// For scrambles: also require |match| below the threshold against every earlier accepted
+    /// scramble (sequential; no shards).
+    pub mutual_match: bool,
+    /// Compute the analytic generalised chi-square null.
+    pub analytic: bool,
+    pub shard: Option<Shard>,
+    pub analysis: CorrelateSettings,
+}
+
+/// Default match threshold of sky scrambles (Taylor et al. 2017 used 0.1).
+pub const DEFAULT_MATCH_THRESHOLD: f64 = 0.1;
+
+impl NullSettings {
+    /// Settings with defaults for a method.
+    pub fn new(method: Method, trials: u64, seed: u64) -> Self {
+        NullSettings {
+            method,
+            time_domain: false,
+            trials,
+            seed,
+            pattern: Pattern::Hd,
+            match_threshold: (method == Method::Scramble).then_some(DEFAULT_MATCH_THRESHOLD),
+            mutual_match: false,
+            analytic: true,
+            shard: None,
+            analysis: CorrelateSettings::default(),
+        }
+    }
+
+    /// Check the combination of options.
+    pub fn validate(&self) -> Result<()> {
+        self.analysis.validate()?;
+        if self.trials == 0 || self.trials > 1 << 40 {
+            return Err(Error::setting("trials", "must be in 1..=2^40"));
+        }
+        if self.time_domain && self.method != Method::Simulate {
+            return Err(Error::setting(
+                "time-domain",
+                "only applies to --method simulate",
+            ));
+        }
+        match (self.method, self.match_threshold) {
+            (Method::Scramble, Some(m)) if !(m > 0.0 && m <= 1.0) => {
+                return Err(Error::setting(
+                    "match-threshold",
+                    format!("must be in (0, 1], got {m}"),
+                ))
+            }
+            (Method::Scramble, _) => {}
+            (_, Some(_)) => {
+                return Err(Error::setting(
+                    "match-threshold",
+                    "only applies to --method scramble",
+                ))
+            }
+            _ => {}
+        }
+        if self.mutual_match && self.method != Method::Scramble {
+            return Err(Error::setting(
+                "mutual-match",
+                "only applies to --method scramble",
+            ));
+        }
+        if self.mutual_match && self.shard.is_some() {
+            return Err(Error::setting(
+                "mutual-match",
+                "mutual matching is sequential over all trials and cannot be sharded",
+            ));
+        }
+        if self.method == Method::Scramble && self.pattern == Pattern::Monopole {
+            return Err(Error::setting(
+                "pattern",
+                "sky scrambles leave the monopole unchanged; use --method phase or simulate",
+            ));
+        }
+        Ok(())
+    }
+
+    /// The global trial indices this run computes.
+    pub fn range(&self) -> Range<u64> {
+        self.shard.map_or(0..self.trials, |s| s.range(self.trials))
+    }
+
+    /// Trials per checkpointed chunk (a function of the settings only).
+    pub fn chunk_size(&self) -> u64 {
+        let len = self.range().end - self.range().start;
+        let min = if self.time_domain { 8 } else { 1000 };
+        (len / 100).clamp(min, 100_000)
+    }
+}
+
+/// One trial's result.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Trial {
+    /// Global trial index.
+    pub index: u64,
+    pub snr: f64,
+    pub amplitude2: f64,
+    /// Draws made for this trial (scrambles rejected by the match threshold count too).
+    pub attempts: u64,
+}
+
+/// A generator of null trials: trial `i` is a function of (the data, the settings, i) alone.
+pub trait TrialSource: Sync {
+    fn trial(&self, index: u64) -> Result<Trial>;
+}
+
+/// The observed array weighted by the template, with per-pair quantities that do not change
+/// across trials (Anholm et al. 2009; Chamberlin et al. 2015): the OS SNR of any data x~ is
+/// sum_{a<b} c_ab x~_a . x~_b with c_ab = G_ab / (sum G^2 tr_ab)^(1/2), tr_ab = 1/sigma_ab^2.
+pub struct Prepared {
+    pub n: usize,
+    /// 2K.
+    pub dim: usize,
+    pub weighted: Vec<Weighted>,
+    pub directions: Vec<Direction>,
+    /// X_a^T Phi X_b of the data, per pair (row-major a < b).
+    pub numerators: Vec<f64>,
+    /// tr(Z_a Phi Z_b Phi) = 1/sigma_ab^2 per pair.
+    pub traces: Vec<f64>,
+    /// The true pattern G_ab per pair.
+    pub g: Vec<f64>,
+    /// c_ab = G_ab / sqrt(sum G^2 tr).
+    pub coef: Vec<f64>,
+    /// sigma_0 = (sum G^2 tr)^(-1/2), the no-signal uncertainty of A^2.
+    pub sigma0: f64,
+    pub observed_snr: f64,
+    pub observed_amplitude2: f64,
+}
+
+impl Prepared {
+    /// Weight the reduced pulsars of a correlation analysis by its template.
+    pub fn new(c: &Correlation, pattern: Pattern) -> Result<Prepared> {
+        let n = c.reduced.len();
+        if n < 2 {
+            return Err(Error::setting(
+                "release",
+                "a null needs at least two pulsars",
+            ));
+        }
+        let weighted: Vec<Weighted> = c.reduced.iter().map(|r| weight(r, &c.phi)).collect();
+        let directions: Vec<Direction> = c.reduced.iter().map(|r| r.direction).collect();
+        let numerators = pair_numerators(&weighted);
+        let traces = pair_traces(&weighted);
+        let g = pattern_for_pairs(pattern, &directions);
+        let d: f64 = g.iter().zip(&traces).map(|(g, t)| g * g * t).sum();
+        if !(d.is_finite() && d > 0.0) {
+            return Err(Error::NonFinite {
+                what: "sum G^2 / sigma^2 of the optimal statistic".into(),
+            });
+        }
+        let coef: Vec<f64> = g.iter().map(|g| g / d.sqrt()).collect();
+        let num: f64 = g.iter().zip(&numerators).map(|(g, x)| g * x).sum();
+        Ok(Prepared {
+            n,
+            dim: c.phi.len(),
+            weighted,
+            directions,
+            observed_snr: num / d.sqrt(),
+            observed_amplitude2: num / d,
+            numerators,
+            traces,
+            g,
+            coef,
+            sigma0: d.powf(-0.5),
+        })
+    }
+
+    /// The SNR of data x~ (n rows of `dim`, row-major): sum_{a<b} c_ab x~_a . x~_b.
+    pub fn snr_of(&self, x: &[f64]) -> f64 {
+        let dim = self.dim;
+        let mut total = 0.0;
+        let mut k = 0;
+        for a in 0..self.n {
+            let xa = &x[a * dim..(a + 1) * dim];
+            let mut row = 0.0;
+            for b in a + 1..self.n {
+                let xb = &x[b * dim..(b + 1) * dim];
+                row += self.coef[k] * dot(xa, xb);
+                k += 1;
+            }
+            total += row;
+        }
+        total
+    }
+}
+
+/// Dot product with four independent accumulators (same result for every call).
+pub fn dot(a: &[f64], b: &[f64]) -> f64 {
+    let mut acc = [0.0; 4];
+    let ca = a.chunks_exact(4);
+    let cb = b.chunks_exact(4);
+    let (ra, rb) = (ca.remainder(), cb.remainder());
+    for (x, y) in ca.zip(cb) {
+        for l in 0..4 {
+            acc[l] += x[l] * y[l];
+        }
+    }
+    let mut s = (acc[0] + acc[1]) + (acc[2] + acc[3]);
+    for (x, y) in ra.iter().zip(rb) {
+        s += x * y;
+    }
+    s
+}
+
+/// Cancellation and progress reporting for a run.
+#[derive(Default, Clone, Copy)]
+pub struct Control<'a> {
+    /// Checked between chunks; when set the run stops with [`Error::Setting`] `interrupted`
+    /// after checkpointing the finished chunks.
+    pub cancel: Option<&'a AtomicBool>,
+    /// Called after each chunk with (trials done, trials in this run).
+    pub progress: Option<&'a (dyn Fn(u64, u64) + Sync)>,
+}
+
+/// The generalised chi-square null, kept beside a run for merging and re-plotting.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct DensityGrid {
+    pub snr: Vec<f64>,
+    pub density: Vec<f64>,
+}
+
+/// The contents of `null.json`.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct NullReport {
+    pub method: Method,
+    pub time_domain: bool,
+    pub pattern: Pattern,
+    /// Trials in this file (accepted trials for scrambles).
+    pub trials: u64,
+    /// Trials requested over all shards, and this file's global trial indices.
+    pub total_trials: u64,
+    pub first_trial: u64,
+    pub shard: Option<Shard>,
+    pub seed: u64,
+    pub observed_snr: f64,
+    pub observed_amplitude2: f64,
+    /// k: trials with SNR >= observed.
+    pub n_at_least_as_extreme: u64,
+    /// (k + 1)/(N + 1).
+    pub p_value: f64,
+    /// Clopper-Pearson 95% interval of k/N.
+    pub p_value_interval_95: [f64; 2],
+    /// -Phi^-1(p); null when infinite.
+    pub sigma_equivalent: Option<f64>,
+    pub match_threshold: Option<f64>,
+    pub mutual_match: bool,
+    /// Accepted scrambles / draws.
+    pub acceptance_rate: Option<f64>,
+    pub attempts: u64,
+    /// P(SNR >= observed) under the generalised chi-square null (Imhof 1961).
+    pub analytic_p_value: Option<f64>,
+    pub analytic_sigma_equivalent: Option<f64>,
+    pub analytic_n_eigenvalues: Option<usize>,
+    pub analytic_density: Option<DensityGrid>,
+    pub assumptions: String,
+    pub provenance: serde_json::Value,
+}
+
+/// What every null.json says its p-values assume.
+pub fn assumptions(method: Method, time_domain: bool, n: u64) -> String {
+    let how = match (method, time_domain) {
+        (Method::Scramble, _) => "sky scrambles (Cornish & Sampson 2016; Taylor et al. 2017): the same rho_ab and sigma_ab with pulsars moved to isotropic random positions, kept when the match with the true pattern is below the threshold; this tests the pattern, not the presence of common power",
+        (Method::Phase, _) => "phase shifts (Taylor et al. 2017): each pulsar's (sin, cos) coefficient pair at each frequency rotated by an independent uniform phase, which keeps each pulsar's power and destroys inter-pulsar correlation; sigma_ab kept fixed",
+        (Method::Simulate, false) => "simulated nulls in the reduced space: X_a ~ N(0, Z_a) independently per pulsar, exact when the noise model (including the common auto-power) is right",
+        (Method::Simulate, true) => "simulated nulls in the time domain: residuals drawn from the noise model (white, ECORR, red and DM noise, and an uncorrelated common process when one is in the auto-power) on the analysis frequencies, timing model fitted out, then reduced",
+    };
+    format!(
+        "Trial p-value from {n} trials of {how}. One-sided: trials with SNR >= the observed SNR count as at least as extreme; p = (k + 1)/(N + 1) with a Clopper-Pearson 95% interval for k/N, so it cannot resolve p below about 1/(N + 1). The analytic p-value assumes the noise model is right and the data Gaussian (generalised chi-square of the OS quadratic form, Hazboun et al. 2023; Imhof 1961, absolute accuracy about 1e-10). Both depend on the noise model given; a detection claim needs the collaboration's full analysis."
+    )
+}
+
+/// Analytic ingredients shared by a run and a merge.
+#[derive(Clone, Debug, PartialEq)]
+pub struct AnalyticNull {
+    pub eigenvalues: Vec<f64>,
+}
+
+/// Build a report from trials sorted by index (shared by runs and merges, so a merge of
+/// shards equals the unsharded run exactly).
+#[allow(clippy::too_many_arguments)]
+pub fn build_report(
+    method: Method,
+    time_domain: bool,
+    pattern: Pattern,
+    total_trials: u64,
+    shard: Option<Shard>,
+    seed: u64,
+    observed_snr: f64,
+    observed_amplitude2: f64,
+    match_threshold: Option<f64>,
+    mutual_match: bool,
+    trials: &[Trial],
+    attempts: u64,
+    analytic: Option<&AnalyticNull>,
+    provenance: serde_json::Value,
+) -> Result<NullReport> {
+    let n = trials.len() as u64;
+    let k = trials.iter().filter(|t| t.snr >= observed_snr).count() as u64;
+    let perr = |e: crate::pvalue::PValueError| Error::setting("p-value", e.to_string());
+    let p = trial_p_value(k, n).map_err(perr)?;
+    let (lo, hi) = clopper_pearson(k, n, 0.95).map_err(perr)?;
+    let sigma = |p: f64| {
+        gaussian_equivalent_sigma(p)
+            .ok()
+            .filter(|z: &f64| z.is_finite())
+    };
+    let (ap, asig, neig, dens) = match analytic {
+        Some(a) => {
+            let p = analytic::upper_tail(&a.eigenvalues, observed_snr)?;
+            let grid = analytic::density_grid(&a.eigenvalues, trials, observed_snr)?;
+            (Some(p), sigma(p), Some(a.eigenvalues.len()), Some(grid))
+        }
+        None => (None, None, None, None),
+    };
+    Ok(NullReport {
+        method,
+        time_domain,
+        pattern,
+        trials: n,
+        total_trials,
+        first_trial: trials.first().map_or(0, |t| t.index),
+        shard,
+        seed,
+        observed_snr,
+        observed_amplitude2,
+        n_at_least_as_extreme: k,
+        p_value: p,
+        p_value_interval_95: [lo, hi],
+        sigma_equivalent: sigma(p),
+        match_threshold,
+        mutual_match,
+        acceptance_rate: (method == Method::Scramble && attempts > 0)
+            .then(|| n as f64 / attempts as f64),
+        attempts,
+        analytic_p_value: ap,
+        analytic_sigma_equivalent: asig,
+        analytic_n_eigenvalues: neig,
+        analytic_density: dens,
+        assumptions: assumptions(method, time_domain, n),
+        provenance,
+    })
+}
+
+/// `trial,snr,amplitude2` (global trial index).
+pub fn trials_csv(trials: &[Trial]) -> String {
+    let mut s = String::with_capacity(trials.len() * 48 + 32);
+    s.push_str("trial,snr,amplitude2\n");
+    for t in trials {
+        let _ = writeln!(
+            s,
+            "{},{},{}",
+            t.index,
+            fmt_f64(t.snr),
+            fmt_f64(t.amplitude2)
+        );
+    }
+    s
+}
+
+/// Parse a trials file (`trial,snr,amplitude2`, or the checkpoint form with a fourth column
+/// `attempts`).
+pub fn parse_trials(text: &str, path: &Path) -> Result<Vec<Trial>> {
+    let mut lines = text.lines().enumerate();
+    let header = lines.next().map(|(_, h)| h).unwrap_or("");
+    let with_attempts = match header {
+        "trial,snr,amplitude2" => false,
+        "trial,snr,amplitude2,attempts" => true,
+        _ => {
+            return Err(Error::input(
+                path,
+                Some(1),
+                None,
+                format!("expected header trial,snr,amplitude2, got {header:?}"),
+            ))
+        }
+    };
+    let mut out = Vec::new();
+    for (i, line) in lines {
+        if line.is_empty() {
+            continue;
+        }
+        let f: Vec<&str> = line.split(',').collect();
+        let bad = |field: &str| Error::input(path, Some(i + 1), Some(field), "malformed value");
+        if f.len() != if with_attempts { 4 } else { 3 } {
+            return Err(Error::input(
+                path,
+                Some(i + 1),
+                None,
+                "wrong number of columns",
+            ));
+        }
+        out.push(Trial {
+            index: f[0].parse().map_err(|_| bad("trial"))?,
+            snr: f[1].parse().map_err(|_| bad("snr"))?,
+            amplitude2: f[2].parse().map_err(|_| bad("amplitude2"))?,
+            attempts: if with_attempts {
+                f[3].parse().map_err(|_| bad("attempts"))?
+            } else {
+                1
+            },
+        });
+    }
+    Ok(out)
+}
+
+fn checkpoint_csv(trials: &[Trial]) -> String {
+    let mut s = String::from("trial,snr,amplitude2,attempts\n");
+    for t in trials {
+        let _ = writeln!(
+            s,
+            "{},{},{},{}",
+            t.index,
+            fmt_f64(t.snr),
+            fmt_f64(t.amplitude2),
+            t.attempts
+        );
+    }
+    s
+}
+
+/// The name of the eigenvalue file written beside null.json when the analytic null is on.
+pub const EIGENVALUES_FILE: &str = "analytic_eigenvalues.csv";
+
+/// A fingerprint of the data and settings of a run, used to refuse resuming a different run.
+pub fn fingerprint(input_hash: &str, settings: &NullSettings) -> String {
+    let mut h = Sha256::new();
+    h.update(input_hash.as_bytes());
+    h.update(
+        serde_json::to_string(settings)
+            .unwrap_or_default()
+            .as_bytes(),
+    );
+    h.update(crate::VERSION.as_bytes());
+    let d = h.finalize();
+    d.iter().map(|b| format!("{b:02x}")).collect()
+}
+
+/// Make the trial source of a method.
+pub fn make_source<'a>(
+    release: &'a Release,
+    c: &'a Correlation,
+    prepared: &'a Prepared,
+    settings: &NullSettings,
+) -> Result<Box<dyn TrialSource + 'a>> {
+    Ok(match settings.method {
+        Method::Scramble => Box::new(scramble::Scrambles::new(
+            prepared,
+            settings.pattern,
+            settings.seed,
+            settings.match_threshold.unwrap_or(1.0),
+        )?),
+        Method::Phase => Box::new(phase::PhaseShifts::new(prepared, settings.seed)),
+        Method::Simulate if settings.time_domain => Box::new(simulated::TimeDomain::new(
+            release,
+            c,
+            prepared,
+            &settings.analysis,
+            settings.seed,
+        )?),
+        Method::Simulate => Box::new(simulated::Reduced::new(prepared, settings.seed)?),
+    })
+}
+
+/// Run trials `range` in checkpointed chunks under `partial` (created if needed). Finished
+/// chunks found there are read back instead of recomputed.
+pub fn run_chunks(
+    source: &dyn TrialSource,
+    range: Range<u64>,
+    chunk: u64,
+    partial: Option<&Path>,
+    control: Control,
+) -> Result<Vec<Trial>> {
+    let total = range.end - range.start;
+    let mut out = Vec::with_capacity(total as usize);
+    let mut start = range.start;
+    while start < range.end {
+        let end = (start + chunk).min(range.end);
+        let file = partial.map(|p| p.join(format!("chunk-{start:013}-{end:013}.csv")));
+        let existing = match &file {
+            Some(f) if f.exists() => {
+                let text = std::fs::read_to_string(f).map_err(|e| Error::io(f, e))?;
+                let t = parse_trials(&text, f)?;
+                let ok = t.len() as u64 == end - start
+                    && t.iter().zip(start..end).all(|(t, i)| t.index == i);
+                ok.then_some(t)
+            }
+            _ => None,
+        };
+        let trials = match existing {
+            Some(t) => t,
+            None => {
+                if control.cancel.is_some_and(|c| c.load(Ordering::SeqCst)) {
+                    return Err(Error::setting(
+                        "interrupted",
+                        format!(
+                            "stopped after {} of {total} trials; finished chunks are kept, rerun the same command to resume",
+                            start - range.start
+                        ),
+                    ));
+                }
+                let t: Vec<Trial> = (start..end)
+                    .into_par_iter()
+                    .map(|i| source.trial(i))
+                    .collect::<Result<_>>()?;
+                if let Some(f) = &file {
+                    write_atomic(f, checkpoint_csv(&t).as_bytes())?;
+                }
+                t
+            }
+        };
+        out.extend(trials);
+        start = end;
+        if let Some(p) = control.progress {
+            p(start - range.start, total);
+        }
+    }
+    Ok(out)
+}
+
+/// Run a null analysis of a release and write `null.json`, `trials.csv` (and the analytic
+/// eigenvalues) into `out`, resuming from `out/.partial/` when it holds the same run.
+pub fn run_null(
+    release: &Release,
+    settings: &NullSettings,
+    out: &Path,
+    control: Control,
+) -> Result<NullReport> {
+    settings.validate()?;
+    let c = correlate(release, &settings.analysis)?;
+    let prepared = Prepared::new(&c, settings.pattern)?;
+    let partial = out.join(".partial");
+    let fp = fingerprint(&release.input_hash, settings);
+    let stamp = partial.join("run.txt");
+    if stamp.exists() {
+        let old = std::fs::read_to_string(&stamp).map_err(|e| Error::io(&stamp, e))?;
+        if old.trim() != fp {
+            return Err(Error::setting(
+                "out",
+                format!(
+                    "{} holds checkpoints of a different run (other release or settings); remove it or choose another --out",
+                    partial.display()
+                ),
+            ));
+        }
+    } else {
+        write_atomic(&stamp, format!("{fp}\n").as_bytes())?;
+    }
+    let trials = if settings.mutual_match {
+        scramble::mutual(&prepared, settings, control)?
+    } else {
+        let source = make_source(release, &c, &prepared, settings)?;
+        run_chunks(
+            source.as_ref(),
+            settings.range(),
+            settings.chunk_size(),
+            Some(&partial),
+            control,
+        )?
+    };
+    let analytic = if settings.analytic {
+        Some(AnalyticNull {
+            eigenvalues: analytic::eigenvalues(&prepared)?,
+        })
+    } else {
+        None
+    };
+    let report = build_report(
+        settings.method,
+        settings.time_domain,
+        settings.pattern,
+        settings.trials,
+        settings.shard,
+        settings.seed,
+        prepared.observed_snr,
+        prepared.observed_amplitude2,
+        settings.match_threshold,
+        settings.mutual_match,
+        &trials,
+        trials.iter().map(|t| t.attempts).sum(),
+        analytic.as_ref(),
+        serde_json::to_value(Provenance::new(release, settings)).unwrap_or_default(),
+    )?;
+    write_outputs(out, &report, &trials, analytic.as_ref())?;
+    let _ = std::fs::remove_dir_all(&partial);
+    Ok(report)
+}
+
+/// Write trials.csv, the eigenvalues and (last, marking completion) null.json.
+pub fn write_outputs(
+    out: &Path,
+    report: &NullReport,
+    trials: &[Trial],
+    analytic: Option<&AnalyticNull>,
+) -> Result<()> {
+    write_atomic(&out.join("trials.csv"), trials_csv(trials).as_bytes())?;
+    if let Some(a) = analytic {
+        let mut s = String::from("eigenvalue\n");
+        for e in &a.eigenvalues {
+            let _ = writeln!(s, "{}", fmt_f64(*e));
+        }
+        write_atomic(&out.join(EIGENVALUES_FILE), s.as_bytes())?;
+    }
+    write_json(&out.join("null.json"), report)
+}
+
+#[cfg(test)]
+pub(crate) mod testdata;
+
+#[cfg(test)]
+mod tests;
