@@ -148,9 +148,9 @@ fn print_report(r: &NullReport, out: &Path) {
         "  {} trials at least as extreme: p = {:.3e} (95% interval of k/N {:.2e} .. {:.2e}), {} sigma one-sided",
         r.n_at_least_as_extreme,
         r.p_value,
-        r.p_value_interval_95[0],
-        r.p_value_interval_95[1],
-        r.sigma_equivalent
+        r.p_value_ci95[0],
+        r.p_value_ci95[1],
+        r.gaussian_sigma
             .map_or("-".to_string(), |z| format!("{z:.2}"))
     );
     if let Some(a) = r.acceptance_rate {
@@ -160,11 +160,11 @@ fn print_report(r: &NullReport, out: &Path) {
             r.match_threshold.unwrap_or(1.0)
         );
     }
-    if let Some(p) = r.analytic_p_value {
+    if let Some(a) = &r.analytic {
         println!(
             "  analytic null (generalised chi-square): p = {:.3e}, {} sigma",
-            p,
-            r.analytic_sigma_equivalent
+            a.p_value,
+            a.gaussian_sigma
                 .map_or("-".to_string(), |z| format!("{z:.2}"))
         );
     }

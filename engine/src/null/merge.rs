@@ -24,7 +24,7 @@ fn read_part(dir: &Path) -> Result<Part> {
     let tpath = dir.join("trials.csv");
     let ttext = std::fs::read_to_string(&tpath).map_err(|e| Error::io(&tpath, e))?;
     let trials = parse_trials(&ttext, &tpath)?;
-    let eigen_text = if report.analytic_p_value.is_some() {
+    let eigen_text = if report.analytic.is_some() {
         let e = dir.join(EIGENVALUES_FILE);
         Some(std::fs::read_to_string(&e).map_err(|err| Error::io(&e, err))?)
     } else {

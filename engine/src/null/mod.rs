@@ -322,6 +322,17 @@ pub struct DensityGrid {
     pub density: Vec<f64>,
 }
 
+/// The generalised chi-square null of the observed SNR (Imhof 1961; Hazboun et al. 2023).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct AnalyticTail {
+    /// P(SNR >= observed) under the null.
+    pub p_value: f64,
+    /// The one-sided Gaussian-equivalent significance; null when infinite.
+    pub gaussian_sigma: Option<f64>,
+    /// Number of eigenvalues of the quadratic form.
+    pub n_eigenvalues: usize,
+}
+
 /// The contents of `null.json`.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct NullReport {
@@ -342,18 +353,16 @@ pub struct NullReport {
     /// (k + 1)/(N + 1).
     pub p_value: f64,
     /// Clopper-Pearson 95% interval of k/N.
-    pub p_value_interval_95: [f64; 2],
+    pub p_value_ci95: [f64; 2],
     /// -Phi^-1(p); null when infinite.
-    pub sigma_equivalent: Option<f64>,
+    pub gaussian_sigma: Option<f64>,
     pub match_threshold: Option<f64>,
     pub mutual_match: bool,
     /// Accepted scrambles / draws.
     pub acceptance_rate: Option<f64>,
     pub attempts: u64,
-    /// P(SNR >= observed) under the generalised chi-square null (Imhof 1961).
-    pub analytic_p_value: Option<f64>,
-    pub analytic_sigma_equivalent: Option<f64>,
-    pub analytic_n_eigenvalues: Option<usize>,
+    /// The analytic null, when computed.
+    pub analytic: Option<AnalyticTail>,
     pub analytic_density: Option<DensityGrid>,
     pub assumptions: String,
     pub provenance: serde_json::Value,
@@ -428,16 +437,18 @@ pub fn build_report(
         observed_amplitude2,
         n_at_least_as_extreme: k,
         p_value: p,
-        p_value_interval_95: [lo, hi],
-        sigma_equivalent: sigma(p),
+        p_value_ci95: [lo, hi],
+        gaussian_sigma: sigma(p),
         match_threshold,
         mutual_match,
         acceptance_rate: (method == Method::Scramble && attempts > 0)
             .then(|| n as f64 / attempts as f64),
         attempts,
-        analytic_p_value: ap,
-        analytic_sigma_equivalent: asig,
-        analytic_n_eigenvalues: neig,
+        analytic: ap.map(|p_value| AnalyticTail {
+            p_value,
+            gaussian_sigma: asig,
+            n_eigenvalues: neig.unwrap_or(0),
+        }),
         analytic_density: dens,
         assumptions: assumptions(method, time_domain, n),
         provenance,

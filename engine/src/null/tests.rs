@@ -397,11 +397,11 @@ fn null_demo_array_simulated_analytic_agree_and_scrambles_are_significant() {
         Control::default(),
     )
     .unwrap();
-    let a = sim.analytic_p_value.unwrap();
+    let a = sim.analytic.as_ref().unwrap().p_value;
     assert!(
-        a <= sim.p_value_interval_95[1],
+        a <= sim.p_value_ci95[1],
         "analytic {a} vs {:?}",
-        sim.p_value_interval_95
+        sim.p_value_ci95
     );
     std::fs::remove_dir_all(&out).unwrap();
 }
