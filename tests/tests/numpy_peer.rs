@@ -12,29 +12,44 @@ use std::process::Command;
 /// The Python with NumPy: $PTACORR_PYTHON, else the repository's .venv (made by `./run test`).
 /// Under CI its absence is a failure; elsewhere the check is skipped with a note.
 fn python() -> Option<PathBuf> {
-    let repo = Path::new(env!("CARGO_MANIFEST_DIR")).parent().unwrap().to_path_buf();
+    let repo = Path::new(env!("CARGO_MANIFEST_DIR"))
+        .parent()
+        .unwrap()
+        .to_path_buf();
     let candidates = std::env::var_os("PTACORR_PYTHON")
         .map(PathBuf::from)
         .into_iter()
         .chain([repo.join(".venv/bin/python")]);
     for c in candidates {
-        let ok = Command::new(&c).args(["-c", "import numpy"]).status().is_ok_and(|s| s.success());
+        let ok = Command::new(&c)
+            .args(["-c", "import numpy"])
+            .status()
+            .is_ok_and(|s| s.success());
         if ok {
             return Some(c);
         }
     }
-    assert!(std::env::var_os("CI").is_none(), "CI must provide NumPy for the peer check (./run test makes .venv)");
+    assert!(
+        std::env::var_os("CI").is_none(),
+        "CI must provide NumPy for the peer check (./run test makes .venv)"
+    );
     eprintln!("skipping the NumPy peer check: no Python with NumPy (run ./run setup)");
     None
 }
 
 fn reference(file: &str) -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("reference").join(file)
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("reference")
+        .join(file)
 }
 
 fn run(py: &Path, args: &[OsString]) -> String {
     let o = Command::new(py).args(args).output().expect("python runs");
-    let text = format!("{}{}", String::from_utf8_lossy(&o.stdout), String::from_utf8_lossy(&o.stderr));
+    let text = format!(
+        "{}{}",
+        String::from_utf8_lossy(&o.stdout),
+        String::from_utf8_lossy(&o.stderr)
+    );
     assert!(o.status.success(), "{args:?} failed:\n{text}");
     text
 }
@@ -45,10 +60,16 @@ fn check(scenario: &str, seed: u64, k: usize, dense: bool, name: &str) {
     let rel_dir = dir.join("release");
     simulate_release(scenario, &rel_dir, seed);
     let rel = read_release(&rel_dir).unwrap();
-    let settings = CorrelateSettings { n_frequencies: k, ..Default::default() };
+    let settings = CorrelateSettings {
+        n_frequencies: k,
+        ..Default::default()
+    };
     let ours = dir.join("ours");
     let peer = dir.join("peer");
-    correlate(&rel, &settings).unwrap().write(&ours, &rel, &settings).unwrap();
+    correlate(&rel, &settings)
+        .unwrap()
+        .write(&ours, &rel, &settings)
+        .unwrap();
     let mut args: Vec<OsString> = vec![
         reference("ptacorr_ref.py").into(),
         rel_dir.into(),
@@ -61,7 +82,16 @@ fn check(scenario: &str, seed: u64, k: usize, dense: bool, name: &str) {
         args.push("--dense".into());
     }
     run(&py, &args);
-    let out = run(&py, &[reference("compare.py").into(), ours.into(), peer.into(), "--rtol".into(), "1e-8".into()]);
+    let out = run(
+        &py,
+        &[
+            reference("compare.py").into(),
+            ours.into(),
+            peer.into(),
+            "--rtol".into(),
+            "1e-8".into(),
+        ],
+    );
     eprintln!("{out}");
     std::fs::remove_dir_all(&dir).ok();
 }
@@ -117,6 +147,9 @@ fn agrees_with_the_numpy_peer_dense_form() {
 
 #[test]
 fn agrees_with_the_numpy_peer_on_the_demo_array() {
-    let demo = std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("../simulations/demo.toml")).unwrap();
+    let demo = std::fs::read_to_string(
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("../simulations/demo.toml"),
+    )
+    .unwrap();
     check(&demo, 2026, 14, false, "peer-demo");
 }
