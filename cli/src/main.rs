@@ -3,9 +3,10 @@
 
 use anyhow::{Context, Result};
 use clap::{Parser, Subcommand};
-use ptacorr::analysis::{correlate, CommonAutoPower, CorrelateSettings, Correlation};
+use ptacorr::analysis::{correlate_reduced, CommonAutoPower, CorrelateSettings, Correlation};
 use ptacorr::bins::Binning;
 use ptacorr::orf::Pattern;
+use ptacorr::reduce::{reduce_release, FrequencyGrid};
 use ptacorr::release::{read_release, Release};
 use ptacorr::scenario::{lay_out, Scenario};
 use ptacorr::simulate::simulate_scenario;
@@ -173,22 +174,44 @@ fn run(cli: Cli) -> Result<()> {
     }
 }
 
-/// Read and analyse a release, timing each stage on stderr.
+/// Read and analyse a release, timing each stage on stderr (wall and CPU seconds of the
+/// process; `benchmarks/run` reads this line).
 pub(crate) fn correlate_release(
     path: &Path,
     settings: &CorrelateSettings,
 ) -> Result<(Release, Correlation)> {
-    let t = Instant::now();
+    let (t, cpu) = (Instant::now(), cpu_seconds());
     let rel = read_release(path).with_context(|| format!("reading release {}", path.display()))?;
-    let read_s = t.elapsed().as_secs_f64();
-    let c = correlate(&rel, settings)?;
+    let (read_s, read_cpu) = (t.elapsed().as_secs_f64(), cpu_seconds() - cpu);
+    settings.validate()?;
+    let grid = FrequencyGrid::for_release(&rel, settings.n_frequencies)?;
+    let common = settings.common_power_law(&rel);
+    let (t, cpu) = (Instant::now(), cpu_seconds());
+    let reduced = reduce_release(&rel, &rel.noise, &grid, common.as_ref())?;
+    let (reduce_s, reduce_cpu) = (t.elapsed().as_secs_f64(), cpu_seconds() - cpu);
+    let flops: f64 = reduced.iter().map(|r| r.flops).sum();
+    let t = Instant::now();
+    let c = correlate_reduced(reduced, grid, settings, common)?;
+    let pairs_s = t.elapsed().as_secs_f64();
     eprintln!(
-        "read {} TOAs in {:.2} s, analysed in {:.2} s",
+        "read {} TOAs in {read_s:.3} s (cpu {read_cpu:.3} s); reduced {} pulsars in {reduce_s:.3} s \
+         (cpu {reduce_cpu:.3} s, {:.3} GFlop counted); pairs and fits in {pairs_s:.3} s",
         rel.n_toa(),
-        read_s,
-        t.elapsed().as_secs_f64() - read_s
+        rel.pulsars.len(),
+        flops * 1e-9,
     );
     Ok((rel, c))
+}
+
+/// User plus system CPU seconds of this process so far (all threads).
+fn cpu_seconds() -> f64 {
+    // SAFETY: getrusage only writes the struct it is given.
+    let mut u: libc::rusage = unsafe { std::mem::zeroed() };
+    if unsafe { libc::getrusage(libc::RUSAGE_SELF, &mut u) } != 0 {
+        return f64::NAN;
+    }
+    let tv = |t: libc::timeval| t.tv_sec as f64 + t.tv_usec as f64 * 1e-6;
+    tv(u.ru_utime) + tv(u.ru_stime)
 }
 
 /// A short human summary of a correlation analysis.

@@ -160,24 +160,82 @@ fn demo_runs_and_names_its_folder() {
 #[test]
 fn null_and_inject_folders_plot_and_gather_into_one_report() {
     let rel = temp("chain-rel");
-    let st = ptacorr().arg("simulate").arg(repo().join("simulations/quiet.toml")).arg("--out").arg(&rel).args(["--seed", "4"]).status().unwrap();
+    let st = ptacorr()
+        .arg("simulate")
+        .arg(repo().join("simulations/quiet.toml"))
+        .arg("--out")
+        .arg(&rel)
+        .args(["--seed", "4"])
+        .status()
+        .unwrap();
     assert!(st.success());
-    let (cor, nul, inj, rep) = (temp("chain-cor"), temp("chain-null"), temp("chain-inj"), temp("chain-rep"));
+    let (cor, nul, inj, rep) = (
+        temp("chain-cor"),
+        temp("chain-null"),
+        temp("chain-inj"),
+        temp("chain-rep"),
+    );
     let ok = |args: &[&std::ffi::OsStr]| {
         let o = ptacorr().args(args).output().unwrap();
-        assert!(o.status.success(), "{args:?}: {}", String::from_utf8_lossy(&o.stderr));
+        assert!(
+            o.status.success(),
+            "{args:?}: {}",
+            String::from_utf8_lossy(&o.stderr)
+        );
         String::from_utf8_lossy(&o.stdout).into_owned()
     };
-    ok(&["correlate".as_ref(), rel.as_os_str(), "--out".as_ref(), cor.as_os_str()]);
-    let text = ok(&["null".as_ref(), rel.as_os_str(), "--method".as_ref(), "simulate".as_ref(), "--trials".as_ref(), "300".as_ref(), "--out".as_ref(), nul.as_os_str()]);
+    ok(&[
+        "correlate".as_ref(),
+        rel.as_os_str(),
+        "--out".as_ref(),
+        cor.as_os_str(),
+    ]);
+    let text = ok(&[
+        "null".as_ref(),
+        rel.as_os_str(),
+        "--method".as_ref(),
+        "simulate".as_ref(),
+        "--trials".as_ref(),
+        "300".as_ref(),
+        "--out".as_ref(),
+        nul.as_os_str(),
+    ]);
     assert!(text.contains("assume the noise model"), "{text}");
-    ok(&["inject".as_ref(), rel.as_os_str(), "--amplitudes".as_ref(), "0,1e-14".as_ref(), "--realizations".as_ref(), "40".as_ref(), "--null-trials".as_ref(), "200".as_ref(), "--out".as_ref(), inj.as_os_str()]);
+    ok(&[
+        "inject".as_ref(),
+        rel.as_os_str(),
+        "--amplitudes".as_ref(),
+        "0,1e-14".as_ref(),
+        "--realizations".as_ref(),
+        "40".as_ref(),
+        "--null-trials".as_ref(),
+        "200".as_ref(),
+        "--out".as_ref(),
+        inj.as_os_str(),
+    ]);
     for d in [&cor, &nul, &inj] {
-        ok(&["plot".as_ref(), d.as_os_str(), "--format".as_ref(), "png".as_ref()]);
+        ok(&[
+            "plot".as_ref(),
+            d.as_os_str(),
+            "--format".as_ref(),
+            "png".as_ref(),
+        ]);
     }
-    ok(&["report".as_ref(), cor.as_os_str(), nul.as_os_str(), inj.as_os_str(), "--out".as_ref(), rep.as_os_str()]);
+    ok(&[
+        "report".as_ref(),
+        cor.as_os_str(),
+        nul.as_os_str(),
+        inj.as_os_str(),
+        "--out".as_ref(),
+        rep.as_os_str(),
+    ]);
     let md = std::fs::read_to_string(rep.join("report.md")).unwrap();
-    for needle in ["null-distribution", "injection-recovery", "angular-correlation", "one-sided"] {
+    for needle in [
+        "null-distribution",
+        "injection-recovery",
+        "angular-correlation",
+        "one-sided",
+    ] {
         assert!(md.contains(needle), "report lacks {needle}");
     }
     for d in [rel, cor, nul, inj, rep] {

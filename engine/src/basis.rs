@@ -21,6 +21,21 @@ pub fn fourier_basis(t: &[f64], freqs: &[f64]) -> Array2<f64> {
     f
 }
 
+/// One row of the Fourier basis on the uniform ladder f_j = j f_1 (j = 1..out.len()/2), in the
+/// interleaved order of [`fourier_basis`], by the angle-addition recurrence
+/// sin((j+1)x) = sin(jx) cos(x) + cos(jx) sin(x), cos((j+1)x) = cos(jx) cos(x) - sin(jx) sin(x)
+/// (Abramowitz & Stegun 1964, 4.3.16-17): one sin_cos per TOA instead of one per frequency.
+/// The rounding error grows about linearly with j, to ~1e-13 at j = 1000.
+pub fn fourier_row_ladder(t: f64, f1: f64, out: &mut [f64]) {
+    let (s1, c1) = (2.0 * PI * f1 * t).sin_cos();
+    let (mut s, mut c) = (s1, c1);
+    for pair in out.chunks_exact_mut(2) {
+        pair[0] = s;
+        pair[1] = c;
+        (s, c) = (s * c1 + c * s1, c * c1 - s * s1);
+    }
+}
+
 /// Row scale of the chromatic (DM) basis, (nu_ref / nu)^2 with nu_ref = 1400 MHz: the
 /// cold-plasma delay D DM / nu^2 (Lorimer & Kramer 2004) relative to its value at nu_ref.
 pub fn chromatic_scale(freq_mhz: &[f64]) -> Vec<f64> {
@@ -116,6 +131,21 @@ mod tests {
         assert!((f[[1, 0]] - 1.0).abs() < 1e-15); // sin(pi/2)
         assert!(f[[1, 1]].abs() < 1e-15); // cos(pi/2)
         assert!((f[[2, 3]] - 1.0).abs() < 1e-15); // cos(2 pi 2 0.5)
+    }
+
+    #[test]
+    fn ladder_rows_match_the_direct_basis() {
+        let t_span = 3.2e8;
+        let freqs: Vec<f64> = (1..=60).map(|j| j as f64 / t_span).collect();
+        let t: Vec<f64> = (0..50).map(|i| i as f64 * t_span / 49.0).collect();
+        let f = fourier_basis(&t, &freqs);
+        let mut row = vec![0.0; 120];
+        for (i, &ti) in t.iter().enumerate() {
+            fourier_row_ladder(ti, freqs[0], &mut row);
+            for (j, v) in row.iter().enumerate() {
+                assert!((v - f[[i, j]]).abs() < 1e-12, "row {i} column {j}");
+            }
+        }
     }
 
     #[test]

@@ -7,6 +7,77 @@ use ndarray_linalg::{Cholesky, Diag, SolveTriangular, UPLO};
 
 extern "C" {
     fn openblas_set_num_threads(n: std::ffi::c_int);
+    fn cblas_dsyrk(
+        order: std::ffi::c_int,
+        uplo: std::ffi::c_int,
+        trans: std::ffi::c_int,
+        n: std::ffi::c_int,
+        k: std::ffi::c_int,
+        alpha: f64,
+        a: *const f64,
+        lda: std::ffi::c_int,
+        beta: f64,
+        c: *mut f64,
+        ldc: std::ffi::c_int,
+    );
+}
+
+const CBLAS_ROW_MAJOR: std::ffi::c_int = 101;
+const CBLAS_TRANS: std::ffi::c_int = 112;
+const CBLAS_UPPER: std::ffi::c_int = 121;
+
+/// Floating-point operations of `syrk_tn` on an `rows x cols` matrix: the upper triangle of
+/// A^T A, cols (cols + 1) / 2 inner products of length rows, each rows multiplies and adds.
+pub fn syrk_flops(rows: usize, cols: usize) -> f64 {
+    rows as f64 * cols as f64 * (cols as f64 + 1.0)
+}
+
+/// c <- alpha A^T A + beta c on the upper triangle only (BLAS dsyrk, Dongarra et al. 1990):
+/// half the work of the general product, since A^T A is symmetric. `a` is rows x cols in
+/// standard (row-major) layout, `c` is cols x cols in standard layout. Call [`mirror_upper`]
+/// once the last update is done.
+pub fn syrk_tn(alpha: f64, a: &Array2<f64>, beta: f64, c: &mut Array2<f64>) {
+    let (rows, cols) = a.dim();
+    assert_eq!(c.dim(), (cols, cols), "syrk_tn: c must be cols x cols");
+    if rows == 0 || cols == 0 {
+        if beta != 1.0 {
+            c.mapv_inplace(|v| v * beta);
+        }
+        return;
+    }
+    let a = a.as_standard_layout();
+    assert!(
+        c.is_standard_layout(),
+        "syrk_tn: c must be in standard layout"
+    );
+    let to_int = |v: usize| std::ffi::c_int::try_from(v).expect("matrix dimension fits a BLAS int");
+    // SAFETY: both buffers are contiguous row-major with the leading dimensions given; dsyrk
+    // reads rows x cols of `a` and writes the upper triangle of the cols x cols `c`.
+    unsafe {
+        cblas_dsyrk(
+            CBLAS_ROW_MAJOR,
+            CBLAS_UPPER,
+            CBLAS_TRANS,
+            to_int(cols),
+            to_int(rows),
+            alpha,
+            a.as_ptr(),
+            to_int(cols),
+            beta,
+            c.as_mut_ptr(),
+            to_int(cols),
+        );
+    }
+}
+
+/// Copy the upper triangle of a square matrix into its lower triangle.
+pub fn mirror_upper(c: &mut Array2<f64>) {
+    let n = c.nrows();
+    for i in 0..n {
+        for j in 0..i {
+            c[[i, j]] = c[[j, i]];
+        }
+    }
 }
 
 /// Make OpenBLAS single-threaded (once per process). The engine parallelises over pulsars and
@@ -16,6 +87,14 @@ pub fn single_threaded_blas() {
     static ONCE: std::sync::Once = std::sync::Once::new();
     // SAFETY: a plain setter of OpenBLAS's thread count, called before any parallel BLAS use.
     ONCE.call_once(|| unsafe { openblas_set_num_threads(1) });
+}
+
+/// Set OpenBLAS's thread count (for measurements such as `examples/peak_gemm.rs`; the engine
+/// itself uses [`single_threaded_blas`]).
+pub fn set_blas_threads(n: usize) {
+    let n = std::ffi::c_int::try_from(n.max(1)).unwrap_or(1);
+    // SAFETY: a plain setter of OpenBLAS's thread count.
+    unsafe { openblas_set_num_threads(n) };
 }
 
 /// Cholesky factor of a symmetric positive-definite S, computed as S = D L L^T D with
@@ -89,4 +168,24 @@ pub fn cholesky_lower(s: &Array2<f64>, what: &str) -> Result<Array2<f64>> {
             what: what.to_string(),
             pivot: 0,
         })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn syrk_matches_the_general_product() {
+        let a = Array2::from_shape_fn((7, 4), |(i, j)| ((i * 5 + j * 3) % 11) as f64 - 4.5);
+        let v = Array2::from_shape_fn((3, 4), |(i, j)| (i as f64 + 1.0) * (j as f64 - 1.5));
+        let mut g = Array2::zeros((4, 4));
+        syrk_tn(1.0, &a, 0.0, &mut g);
+        syrk_tn(-0.5, &v, 1.0, &mut g);
+        mirror_upper(&mut g);
+        let want = a.t().dot(&a) - v.t().dot(&v) * 0.5;
+        for (x, y) in g.iter().zip(want.iter()) {
+            assert!((x - y).abs() < 1e-12 * y.abs().max(1.0), "{x} vs {y}");
+        }
+        assert_eq!(syrk_flops(7, 4), 140.0);
+    }
 }

@@ -3,15 +3,17 @@
 //! Fourier basis (van Haasteren & Vallisneri 2014; Chamberlin et al. 2015). Everything the
 //! correlation analysis needs afterwards is X, Z and the sky direction.
 
-use crate::basis::{chromatic_scale, ecorr_epochs, fourier_basis, timing_model, ECORR_EPOCH_GAP_S};
+use crate::basis::{
+    chromatic_scale, ecorr_epochs, fourier_row_ladder, timing_model, ECORR_EPOCH_GAP_S,
+};
 use crate::constants::SECONDS_PER_DAY;
 use crate::error::{Error, Result};
-use crate::linalg::ScaledCholesky;
+use crate::linalg::{mirror_upper, syrk_flops, syrk_tn, ScaledCholesky};
 use crate::noise::{NoiseModel, PulsarNoise};
 use crate::release::{Pulsar, Release};
 use crate::sky::Direction;
 use crate::spectrum::{frequencies, PowerLaw};
-use ndarray::{s, Array1, Array2, Axis};
+use ndarray::{s, Array1, Array2};
 use rayon::prelude::*;
 
 /// The shared time origin and analysis frequencies of an array.
@@ -78,6 +80,9 @@ pub struct Reduced {
     pub x: Array1<f64>,
     /// Z = F^T P^-1 F (2K x 2K, symmetric positive semi-definite).
     pub z: Array2<f64>,
+    /// Floating-point operations of the reduction as counted by [`PulsarModel::flops`] plus
+    /// the 2 n c of X (docs/performance.md).
+    pub flops: f64,
 }
 
 /// The Woodbury-factored model of one pulsar, kept so that new residual vectors (simulations,
@@ -87,22 +92,32 @@ pub struct Reduced {
 /// diagonal (one block D_I + c^2 1 1^T per epoch I), and the Sherman-Morrison formula
 /// (Sherman & Morrison 1950) gives N_I^-1 = D_I^-1 - beta D_I^-1 1 1^T D_I^-1 with
 /// beta = c^2 / (1 + c^2 1^T D_I^-1 1). The cost then does not grow with the number of epochs.
+///
+/// The columns of T = [M | F_red | F_dm] and of the analysis basis F are drawn from one set of
+/// distinct columns U = [M | Fourier over max(K, K_r) | chromatic Fourier over K_dm]: F_red and
+/// F are both leading columns of the same Fourier basis, so each inner product is computed once
+/// (one symmetric rank-k update U^T N^-1 U) and the blocks of S, T^T N^-1 F and F^T N^-1 F are
+/// picked out of it by column index.
 pub struct PulsarModel {
     /// D^-1/2 per TOA (D: the diagonal white noise).
     sqrt_dinv: Vec<f64>,
-    /// D^-1/2 [T | F] (n x (cols + 2K)): the whitened model basis and analysis basis.
+    /// D^-1/2 U (n x cols of U), row-major.
     wa: Array2<f64>,
-    /// Number of columns of T.
-    n_t: usize,
-    /// ECORR epochs: TOA indices and beta.
+    /// Columns of U that make up T, in the order of T.
+    t_cols: Vec<usize>,
+    /// Columns of U that make up F (contiguous, 2K of them).
+    f_cols: std::ops::Range<usize>,
+    /// ECORR epochs: TOA indices and beta^(1/2).
     epochs: Vec<(Vec<usize>, f64)>,
-    /// Row e: sum over epoch e of D^-1/2 times the rows of `wa` (E x (cols + 2K)).
+    /// Row e: beta_e^(1/2) times the sum over epoch e of D^-1/2 times the rows of `wa`.
     v: Array2<f64>,
     chol: ScaledCholesky,
-    /// L^-1 D_S^-1 T^T N^-1 F (cols x 2K).
+    /// L^-1 D_S^-1 T^T N^-1 F (cols of T x 2K).
     qf: Array2<f64>,
     /// Z = F^T P^-1 F.
     pub z: Array2<f64>,
+    /// Floating-point operations counted in `build` (see [`PulsarModel::flops`]).
+    flops: f64,
 }
 
 /// Which processes enter a pulsar's covariance besides its white noise.
@@ -140,16 +155,47 @@ impl PulsarModel {
         let k_red = noise.red.map_or(0, |r| r.n_frequencies.unwrap_or(k));
         let k_r = k_common.max(k_red);
         let k_dm = noise.dm.map_or(0, |d| d.n_frequencies.unwrap_or(k));
-        let k_max = k.max(k_r).max(k_dm);
-        let ladder = grid.ladder(k_max);
-        let fourier = fourier_basis(&t, &ladder);
+        let k_f = k.max(k_r);
+        let k_all = k_f.max(k_dm);
+        let ladder = grid.ladder(k_all);
 
-        // Columns of [T | F] and the prior inverses of T (0 for the timing model's flat prior).
+        // The distinct columns U = [M | Fourier (k_f) | chromatic Fourier (k_dm)], whitened,
+        // written row by row in one pass.
         let m = timing_model(p, &t)?;
-        let mut blocks: Vec<Array2<f64>> = vec![m];
-        let mut binv: Vec<f64> = vec![0.0; blocks[0].ncols()];
+        let n_m = m.ncols();
+        let (c_four, c_dm) = (n_m, n_m + 2 * k_f);
+        let n_cols = c_dm + 2 * k_dm;
+        let dm_scale = if k_dm > 0 {
+            chromatic_scale(&p.freq_mhz)
+        } else {
+            Vec::new()
+        };
+        let mut wa = Array2::<f64>::zeros((n, n_cols));
+        let mut trig = vec![0.0; 2 * k_all];
+        for (i, mut row) in wa.rows_mut().into_iter().enumerate() {
+            let row = row.as_slice_mut().expect("standard layout");
+            let w = sqrt_dinv[i];
+            fourier_row_ladder(t[i], ladder[0], &mut trig);
+            for (dst, &src) in row[..n_m].iter_mut().zip(m.row(i)) {
+                *dst = w * src;
+            }
+            for (dst, &src) in row[c_four..c_dm].iter_mut().zip(&trig) {
+                *dst = w * src;
+            }
+            if k_dm > 0 {
+                let wd = w * dm_scale[i];
+                for (dst, &src) in row[c_dm..].iter_mut().zip(&trig) {
+                    *dst = wd * src;
+                }
+            }
+        }
+        drop(m);
+
+        // T's columns in U and the prior inverses of T (0 for the timing model's flat prior).
+        let mut t_cols: Vec<usize> = (0..n_m).collect();
+        let mut binv: Vec<f64> = vec![0.0; n_m];
         if k_r > 0 {
-            blocks.push(fourier.slice(s![.., ..2 * k_r]).to_owned());
+            t_cols.extend(c_four..c_four + 2 * k_r);
             for (j, &f) in ladder[..k_r].iter().enumerate() {
                 let mut phi = 0.0;
                 if let Some(c) = auto.common.filter(|_| j < k_common) {
@@ -162,26 +208,16 @@ impl PulsarModel {
             }
         }
         if let Some(dm) = noise.dm {
-            let mut fd = fourier.slice(s![.., ..2 * k_dm]).to_owned();
-            for (mut row, sc) in fd.rows_mut().into_iter().zip(chromatic_scale(&p.freq_mhz)) {
-                row *= sc;
-            }
-            blocks.push(fd);
+            t_cols.extend(c_dm..c_dm + 2 * k_dm);
             for &f in &ladder[..k_dm] {
                 let phi = dm.power_law().coefficient_variance(f, grid.t_span);
                 binv.extend([1.0 / phi, 1.0 / phi]);
             }
         }
-        let n_t = binv.len();
-        blocks.push(fourier.slice(s![.., ..2 * k]).to_owned());
-        let views: Vec<_> = blocks.iter().map(|b| b.view()).collect();
-        let mut wa = ndarray::concatenate(Axis(1), &views).expect("blocks share rows");
-        drop(blocks);
-        for (mut row, &w) in wa.rows_mut().into_iter().zip(&sqrt_dinv) {
-            row *= w;
-        }
+        let f_cols = c_four..c_four + 2 * k;
+        let n_t = t_cols.len();
 
-        // ECORR epochs and their Sherman-Morrison terms.
+        // ECORR epochs and their Sherman-Morrison terms; V's rows carry beta^(1/2).
         let use_ecorr: Vec<bool> = whites.iter().map(|w| w.ecorr().is_some()).collect();
         let epochs: Vec<(Vec<usize>, f64)> = if use_ecorr.iter().any(|&u| u) {
             ecorr_epochs(&t, &p.backend, &use_ecorr, ECORR_EPOCH_GAP_S)
@@ -189,50 +225,71 @@ impl PulsarModel {
                 .map(|(b, idx)| {
                     let c2 = whites[b].ecorr().expect("ecorr backend").powi(2);
                     let sum_dinv: f64 = idx.iter().map(|&i| sqrt_dinv[i] * sqrt_dinv[i]).sum();
-                    (idx, c2 / (1.0 + c2 * sum_dinv))
+                    (idx, (c2 / (1.0 + c2 * sum_dinv)).sqrt())
                 })
                 .collect()
         } else {
             Vec::new()
         };
-        let mut v = Array2::<f64>::zeros((epochs.len(), wa.ncols()));
-        for (e, (idx, _)) in epochs.iter().enumerate() {
+        let mut v = Array2::<f64>::zeros((epochs.len(), n_cols));
+        for (e, (idx, sqrt_beta)) in epochs.iter().enumerate() {
             let mut row = v.row_mut(e);
             for &i in idx {
-                row.scaled_add(sqrt_dinv[i], &wa.row(i));
+                row.scaled_add(sqrt_beta * sqrt_dinv[i], &wa.row(i));
             }
         }
 
-        // [T | F]^T N^-1 [T | F] in one GEMM, less the ECORR correction V^T diag(beta) V.
-        let mut gram = wa.t().dot(&wa);
+        // U^T N^-1 U = U^T D^-1 U - V^T V: two symmetric rank-k updates (upper triangle).
+        let mut gram = Array2::<f64>::zeros((n_cols, n_cols));
+        syrk_tn(1.0, &wa, 0.0, &mut gram);
         if !epochs.is_empty() {
-            let mut bv = v.clone();
-            for (mut row, (_, beta)) in bv.rows_mut().into_iter().zip(&epochs) {
-                row *= *beta;
-            }
-            gram -= &v.t().dot(&bv);
+            syrk_tn(-1.0, &v, 1.0, &mut gram);
         }
-        let mut smat = gram.slice(s![..n_t, ..n_t]).to_owned();
-        for (i, b) in binv.iter().enumerate() {
-            smat[[i, i]] += b;
+        mirror_upper(&mut gram);
+
+        let mut smat = Array2::<f64>::zeros((n_t, n_t));
+        let mut tnf = Array2::<f64>::zeros((n_t, 2 * k));
+        for (a, &ca) in t_cols.iter().enumerate() {
+            for (b, &cb) in t_cols.iter().enumerate() {
+                smat[[a, b]] = gram[[ca, cb]];
+            }
+            smat[[a, a]] += binv[a];
+            for (j, cf) in f_cols.clone().enumerate() {
+                tnf[[a, j]] = gram[[ca, cf]];
+            }
         }
         let chol = ScaledCholesky::new(
             &smat,
             &format!("S = B^-1 + T^T N^-1 T of pulsar {}", p.label),
         )?;
-        let tnf = gram.slice(s![..n_t, n_t..]).to_owned();
         let qf = chol.whiten(&tnf);
-        let fnf = gram.slice(s![n_t.., n_t..]).to_owned();
+        let fnf = gram.slice(s![f_cols.clone(), f_cols.clone()]).to_owned();
         let z = symmetrise(&fnf - &qf.t().dot(&qf));
+
+        // Counted work: the two rank-k updates, building V, the Cholesky factor (n^3/3), the
+        // triangular solve (n_t^2 per right-hand side) and Q^T Q (general product).
+        let (nt, kf) = (n_t as f64, 2.0 * k as f64);
+        let flops = syrk_flops(n, n_cols)
+            + syrk_flops(epochs.len(), n_cols)
+            + if epochs.is_empty() {
+                0.0
+            } else {
+                2.0 * n as f64 * n_cols as f64
+            }
+            + nt * nt * nt / 3.0
+            + nt * nt * kf
+            + 2.0 * nt * kf * kf;
         Ok(PulsarModel {
             sqrt_dinv,
             wa,
-            n_t,
+            t_cols,
+            f_cols,
             epochs,
             v,
             chol,
             qf,
             z,
+            flops,
         })
     }
 
@@ -244,15 +301,16 @@ impl PulsarModel {
             let s: Array1<f64> = self
                 .epochs
                 .iter()
-                .map(|(idx, beta)| {
-                    beta * idx.iter().map(|&i| self.sqrt_dinv[i] * wr[i]).sum::<f64>()
+                .map(|(idx, sqrt_beta)| {
+                    sqrt_beta * idx.iter().map(|&i| self.sqrt_dinv[i] * wr[i]).sum::<f64>()
                 })
                 .collect();
             g -= &self.v.t().dot(&s);
         }
-        let tnr = g.slice(s![..self.n_t]).to_owned();
-        let fnr = g.slice(s![self.n_t..]).to_owned();
-        let q = self.chol.whiten(&tnr.insert_axis(Axis(1)));
+        let tnr: Array2<f64> =
+            Array2::from_shape_fn((self.t_cols.len(), 1), |(a, _)| g[self.t_cols[a]]);
+        let fnr = g.slice(s![self.f_cols.clone()]).to_owned();
+        let q = self.chol.whiten(&tnr);
         fnr - self.qf.t().dot(&q.slice(s![.., 0]))
     }
 
@@ -264,6 +322,12 @@ impl PulsarModel {
     /// log det S (for likelihood evaluations).
     pub fn log_det_s(&self) -> f64 {
         self.chol.log_det()
+    }
+
+    /// Floating-point operations of `build` as counted (docs/performance.md): the rank-k
+    /// updates U^T D^-1 U (n c (c + 1)) and V^T V, V itself, and the small dense steps.
+    pub fn flops(&self) -> f64 {
+        self.flops
     }
 }
 
@@ -281,6 +345,7 @@ pub fn reduce_pulsar(
 ) -> Result<Reduced> {
     let model = PulsarModel::build(p, noise, grid, auto)?;
     let x = model.reduce(&p.residual);
+    let flops = model.flops() + 2.0 * p.n_toa() as f64 * model.wa.ncols() as f64;
     if x.iter().chain(model.z.iter()).any(|v| !v.is_finite()) {
         return Err(Error::NonFinite {
             what: format!("the reduction of pulsar {}", p.label),
@@ -291,6 +356,7 @@ pub fn reduce_pulsar(
         direction: p.direction,
         x,
         z: model.z,
+        flops,
     })
 }
 
