@@ -161,12 +161,19 @@ fn print_report(r: &NullReport, out: &Path) {
         );
     }
     if let Some(a) = &r.analytic {
-        println!(
-            "  analytic null (generalised chi-square): p = {:.3e}, {} sigma",
-            a.p_value,
-            a.gaussian_sigma
-                .map_or("-".to_string(), |z| format!("{z:.2}"))
-        );
+        if a.p_value < a.absolute_accuracy {
+            println!(
+                "  analytic null (generalised chi-square): p < {:.0e} (below the inversion's accuracy)",
+                a.absolute_accuracy
+            );
+        } else {
+            println!(
+                "  analytic null (generalised chi-square): p = {:.3e}, {} sigma",
+                a.p_value,
+                a.gaussian_sigma
+                    .map_or("-".to_string(), |z| format!("{z:.2}"))
+            );
+        }
     }
     println!("  the p-values assume the noise model; a detection claim needs the collaboration's full analysis");
     println!("wrote {}/null.json, trials.csv", out.display());

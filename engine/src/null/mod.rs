@@ -331,7 +331,13 @@ pub struct AnalyticTail {
     pub gaussian_sigma: Option<f64>,
     /// Number of eigenvalues of the quadratic form.
     pub n_eigenvalues: usize,
+    /// Absolute accuracy of the numerical inversion: a p_value below it only says the tail is
+    /// smaller than this.
+    pub absolute_accuracy: f64,
 }
+
+/// Absolute accuracy of the analytic tail (Imhof inversion on shared nodes, null/analytic.rs).
+pub const ANALYTIC_ABSOLUTE_ACCURACY: f64 = 1e-12;
 
 /// The contents of `null.json`.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -448,6 +454,7 @@ pub fn build_report(
             p_value,
             gaussian_sigma: asig,
             n_eigenvalues: neig.unwrap_or(0),
+            absolute_accuracy: ANALYTIC_ABSOLUTE_ACCURACY,
         }),
         analytic_density: dens,
         assumptions: assumptions(method, time_domain, n),
