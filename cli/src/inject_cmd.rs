@@ -50,7 +50,7 @@ pub struct InjectArgs {
     pattern: String,
     #[arg(long, default_value_t = 1)]
     seed: u64,
-    /// Run realizations i with i % N == I - 1 only (I/N, 1-based).
+    /// Run shard I of N only (a contiguous block of realizations; I/N, 1-based).
     #[arg(long)]
     shard: Option<String>,
     #[arg(long, value_enum, default_value = "reduced")]

@@ -84,40 +84,7 @@ pub enum AutoPowerChoice {
     Fixed,
 }
 
-/// Realizations i of a shard: those with i % count == index - 1 (round-robin).
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
-pub struct Shard {
-    /// 1-based shard number.
-    pub index: u64,
-    pub count: u64,
-}
-
-impl Shard {
-    /// The whole campaign in one shard.
-    pub const ALL: Shard = Shard { index: 1, count: 1 };
-
-    /// Parse `I/N` with 1 <= I <= N.
-    pub fn parse(text: &str) -> Result<Shard> {
-        let bad = || {
-            Error::setting(
-                "shard",
-                format!("expected I/N with 1 <= I <= N, got {text:?}"),
-            )
-        };
-        let (i, n) = text.split_once('/').ok_or_else(bad)?;
-        let index: u64 = i.trim().parse().map_err(|_| bad())?;
-        let count: u64 = n.trim().parse().map_err(|_| bad())?;
-        if index == 0 || count == 0 || index > count {
-            return Err(bad());
-        }
-        Ok(Shard { index, count })
-    }
-
-    /// Whether realization `i` belongs to this shard.
-    pub fn contains(&self, i: u64) -> bool {
-        i % self.count == self.index - 1
-    }
-}
+pub use crate::shard::Shard;
 
 /// Parse an amplitude list: comma-separated items, each a number (`0`, `1e-15`) or a
 /// log-spaced range `log:LO:HI:N` (N >= 2 values from LO to HI inclusive, LO, HI > 0).
@@ -295,9 +262,7 @@ impl InjectSettings {
 
     /// The realization indices of this shard, ascending.
     pub fn shard_realizations(&self) -> Vec<u64> {
-        (0..self.realizations)
-            .filter(|&i| self.shard.contains(i))
-            .collect()
+        self.shard.range(self.realizations).collect()
     }
 }
 
@@ -1439,13 +1404,9 @@ span_factor = 1
     }
 
     #[test]
-    fn shards_split_realizations_round_robin() {
+    fn shards_take_contiguous_blocks_of_realizations() {
         let s = Shard::parse("2/3").unwrap();
-        let mine: Vec<u64> = (0..8).filter(|&i| s.contains(i)).collect();
-        assert_eq!(mine, vec![1, 4, 7]);
-        for bad in ["0/3", "4/3", "1", "a/b", "1/0"] {
-            assert!(Shard::parse(bad).is_err());
-        }
+        assert_eq!(s.range(8).collect::<Vec<u64>>(), vec![2, 3, 4]);
     }
 
     #[test]

@@ -33,6 +33,7 @@ pub mod release;
 pub mod report;
 pub mod rng;
 pub mod scenario;
+pub mod shard;
 pub mod simulate;
 pub mod sky;
 pub mod spectrum;

@@ -54,39 +54,7 @@ impl Method {
     }
 }
 
-/// Shard `index` (1-based) of `count`: a contiguous block of the global trial indices.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
-pub struct Shard {
-    pub index: u64,
-    pub count: u64,
-}
-
-impl Shard {
-    /// Parse `I/N` with 1 <= I <= N.
-    pub fn parse(text: &str) -> Result<Shard> {
-        let bad = || {
-            Error::setting(
-                "shard",
-                format!("expected I/N with 1 <= I <= N, got {text:?}"),
-            )
-        };
-        let (i, n) = text.split_once('/').ok_or_else(bad)?;
-        let index: u64 = i.trim().parse().map_err(|_| bad())?;
-        let count: u64 = n.trim().parse().map_err(|_| bad())?;
-        if index == 0 || index > count {
-            return Err(bad());
-        }
-        Ok(Shard { index, count })
-    }
-
-    /// The global trial indices of this shard out of `trials`:
-    /// [floor((I-1) N / n), floor(I N / n)).
-    pub fn range(&self, trials: u64) -> Range<u64> {
-        let lo = ((self.index - 1) as u128 * trials as u128 / self.count as u128) as u64;
-        let hi = (self.index as u128 * trials as u128 / self.count as u128) as u64;
-        lo..hi
-    }
-}
+pub use crate::shard::Shard;
 
 /// Everything that defines a null run (recorded in its provenance).
 #[derive(Clone, Debug, Serialize)]
