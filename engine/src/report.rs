@@ -503,7 +503,12 @@ fn null_section(b: &mut Vec<Block>, label: &str, d: &NullData) {
         ],
     ];
     if let Some((p, g)) = s.analytic {
-        rows.push(vec![Cell::Text("analytic p-value".into()), num_prob(p)]);
+        let label = if s.analytic_is_bound {
+            "analytic p-value (upper bound: below the inversion's accuracy)"
+        } else {
+            "analytic p-value"
+        };
+        rows.push(vec![Cell::Text(label.into()), num_prob(p)]);
         rows.push(vec![
             Cell::Text("analytic Gaussian-equivalent sigma".into()),
             opt_cell(g, |g| num_fixed(g, 2)),
@@ -695,7 +700,8 @@ fn caveats(inputs: &[Input]) -> Vec<Vec<Span>> {
         }];
         if let Some((ap, _)) = s.analytic {
             g.push(t(format!(
-                " The analytic p-value {} assumes Gaussian noise described exactly by the noise model and no common signal; it is a cross-check on the trials, not a replacement for them.",
+                " The analytic p-value {}{} assumes Gaussian noise described exactly by the noise model and no common signal; it is a cross-check on the trials, not a replacement for them.",
+                if s.analytic_is_bound { "below " } else { "" },
                 format::prob(ap, Style::Text)
             )));
         }

@@ -596,6 +596,9 @@ pub struct NullSummary {
     pub acceptance_rate: Option<f64>,
     /// Analytic p-value and its Gaussian-equivalent sigma.
     pub analytic: Option<(f64, Option<f64>)>,
+    /// The analytic p-value fell below the inversion's absolute accuracy: `analytic.0` is then
+    /// that accuracy, an upper bound, and no sigma is given.
+    pub analytic_is_bound: bool,
     /// Analytic null density: (snr, density) samples.
     pub analytic_density: Option<(Vec<f64>, Vec<f64>)>,
     pub assumptions: String,
@@ -638,12 +641,19 @@ impl NullData {
             v @ Value::Number(_) => v.to_string(),
             v => return Err(doc.invalid("seed", format!("expected a number, found {v}"))),
         };
+        let mut analytic_is_bound = false;
         let analytic = match doc.opt("analytic") {
             None => None,
-            Some(_) => Some((
-                probability(&doc, "analytic.p_value", doc.f64("analytic.p_value")?)?,
-                doc.opt_f64("analytic.gaussian_sigma")?,
-            )),
+            Some(_) => {
+                let p = probability(&doc, "analytic.p_value", doc.f64("analytic.p_value")?)?;
+                match doc.opt_f64("analytic.absolute_accuracy")? {
+                    Some(acc) if p < acc => {
+                        analytic_is_bound = true;
+                        Some((acc, None))
+                    }
+                    _ => Some((p, doc.opt_f64("analytic.gaussian_sigma")?)),
+                }
+            }
         };
         let analytic_density = match doc.opt("analytic_density") {
             None => None,
@@ -683,6 +693,7 @@ impl NullData {
             match_threshold: doc.opt_f64("match_threshold")?,
             acceptance_rate: doc.opt_f64("acceptance_rate")?,
             analytic,
+            analytic_is_bound,
             analytic_density,
             assumptions: doc.opt_string("assumptions")?.unwrap_or_default(),
             provenance: provenance(&doc)?,

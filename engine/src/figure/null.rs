@@ -180,8 +180,9 @@ pub(crate) fn draw(
         sigma
     );
     if let Some((p, g)) = s.analytic {
+        let rel = if s.analytic_is_bound { "<" } else { "=" };
         caption.push_str(&format!(
-            " Analytic: p = {}",
+            " Analytic: p {rel} {}",
             format::general(p, 2, Style::Figure)
         ));
         if let Some(g) = g {

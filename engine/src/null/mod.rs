@@ -305,7 +305,7 @@ pub struct AnalyticTail {
 }
 
 /// Absolute accuracy of the analytic tail (Imhof inversion on shared nodes, null/analytic.rs).
-pub const ANALYTIC_ABSOLUTE_ACCURACY: f64 = 1e-12;
+pub const ANALYTIC_ABSOLUTE_ACCURACY: f64 = 1e-10;
 
 /// The contents of `null.json`.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
