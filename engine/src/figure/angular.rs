@@ -6,10 +6,9 @@
 use serde::Serialize;
 
 use super::canvas::{
-    bottom_gutter, draw_axes, draw_caption, draw_legend, fixed_ticks, left_gutter, legend_height,
-    linear_ticks, superscript, wrap, LegendItem, LineStyle, Marker, MarkerStyle, Rect, Sample,
-    Scale, Stroke, Svg, BLACK, BLUE, CAPTION_LINE, FS_SMALL, GREEN, INK, MUTED, PAIR_GREY,
-    VERMILLION,
+    draw_axes, draw_caption, draw_legend, fixed_ticks, linear_ticks, single_panel, superscript,
+    LegendItem, LineStyle, Marker, MarkerStyle, PanelLayout, Sample, Scale, Stroke, Svg, BLACK,
+    BLUE, GREEN, INK, MUTED, PAIR_GREY, VERMILLION,
 };
 use super::format::{self, Style};
 use super::input::{CorrelateData, SUMMARY_JSON};
@@ -305,25 +304,19 @@ pub(crate) fn draw(
     }
 
     // Layout in points.
-    let w = opts.width.inches() * 72.0;
-    let pad = 4.0;
-    let plot_x = pad + left_gutter(&yt)?;
-    let plot_w = w - 9.0 - plot_x;
     let aspect = match opts.width {
         ColumnWidth::Single => 0.64,
         ColumnWidth::Double => 0.42,
     };
-    let legend_w = w - pad - plot_x;
-    let leg_h = legend_height(&items, legend_w)?;
-    let plot = Rect {
-        x: plot_x,
-        y: pad + leg_h + 5.0,
-        w: plot_w,
-        h: plot_w * aspect,
-    };
-    let lines = wrap(&caption, w - 2.0 * pad, FS_SMALL)?;
-    let cap_y = plot.bottom() + bottom_gutter() + 4.0;
-    let h = cap_y + lines.len() as f64 * CAPTION_LINE + pad;
+    let PanelLayout {
+        w,
+        h,
+        pad,
+        plot,
+        legend_w,
+        lines,
+        cap_y,
+    } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
 
     let xs = Scale {
         lo: 0.0,

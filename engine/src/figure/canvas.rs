@@ -1065,6 +1065,51 @@ pub(crate) fn draw_caption(
     })
 }
 
+/// The layout of a one-panel figure: legend strip on top, plot, caption below (sizes in pt).
+pub(crate) struct PanelLayout {
+    pub w: f64,
+    pub h: f64,
+    pub pad: f64,
+    pub plot: Rect,
+    pub legend_w: f64,
+    pub lines: Vec<String>,
+    pub cap_y: f64,
+}
+
+/// Lay out a one-panel figure `width_in` inches wide whose plot has height `aspect` x width.
+pub(crate) fn single_panel(
+    width_in: f64,
+    yt: &Ticks,
+    items: &[LegendItem],
+    caption: &str,
+    aspect: f64,
+) -> Result<PanelLayout, FigureError> {
+    let w = width_in * 72.0;
+    let pad = 4.0;
+    let plot_x = pad + left_gutter(yt)?;
+    let plot_w = w - 9.0 - plot_x;
+    let legend_w = w - pad - plot_x;
+    let leg_h = legend_height(items, legend_w)?;
+    let plot = Rect {
+        x: plot_x,
+        y: pad + leg_h + 5.0,
+        w: plot_w,
+        h: plot_w * aspect,
+    };
+    let lines = wrap(caption, w - 2.0 * pad, FS_SMALL)?;
+    let cap_y = plot.bottom() + bottom_gutter() + 4.0;
+    let h = cap_y + lines.len() as f64 * CAPTION_LINE + pad;
+    Ok(PanelLayout {
+        w,
+        h,
+        pad,
+        plot,
+        legend_w,
+        lines,
+        cap_y,
+    })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

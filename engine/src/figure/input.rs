@@ -715,25 +715,8 @@ impl NullData {
     }
 }
 
-/// One row of recovery.csv: the results at one injected amplitude.
-#[derive(Clone, Debug, PartialEq)]
-pub struct RecoveryRow {
-    pub amplitude: f64,
-    pub amplitude2_injected: f64,
-    pub realizations: u64,
-    pub amplitude2_mean: f64,
-    pub amplitude2_std: f64,
-    pub amplitude2_sem: f64,
-    pub bias: f64,
-    pub bias_sem: f64,
-    pub snr_mean: f64,
-    pub snr_std: f64,
-    pub coverage68_weak: f64,
-    pub coverage95_weak: f64,
-    pub coverage68_full: f64,
-    pub coverage95_full: f64,
-    pub detection_probability: f64,
-}
+/// One row of recovery.csv: the same type the injection campaign writes.
+pub use crate::inject::RecoveryRow;
 
 /// Everything in an inject folder.
 #[derive(Clone, Debug, PartialEq)]

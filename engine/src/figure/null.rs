@@ -5,9 +5,9 @@
 use serde::Serialize;
 
 use super::canvas::{
-    bottom_gutter, draw_axes, draw_caption, draw_legend, left_gutter, legend_height, linear_ticks,
-    text_width, wrap, Anchor, LegendItem, LineStyle, Rect, Sample, Scale, Stroke, Svg, BLACK, BLUE,
-    CAPTION_LINE, FS_SMALL, SKY, VERMILLION,
+    draw_axes, draw_caption, draw_legend, linear_ticks, single_panel, text_width, Anchor,
+    LegendItem, LineStyle, PanelLayout, Rect, Sample, Scale, Stroke, Svg, BLACK, BLUE, FS_SMALL,
+    SKY, VERMILLION,
 };
 use super::format::{self, Style};
 use super::input::NullData;
@@ -198,25 +198,19 @@ pub(crate) fn draw(
         ));
     }
 
-    let w = opts.width.inches() * 72.0;
-    let pad = 4.0;
-    let plot_x = pad + left_gutter(&yt)?;
-    let plot_w = w - 9.0 - plot_x;
     let aspect = match opts.width {
         ColumnWidth::Single => 0.62,
         ColumnWidth::Double => 0.40,
     };
-    let legend_w = w - pad - plot_x;
-    let leg_h = legend_height(&items, legend_w)?;
-    let plot = Rect {
-        x: plot_x,
-        y: pad + leg_h + 5.0,
-        w: plot_w,
-        h: plot_w * aspect,
-    };
-    let lines = wrap(&caption, w - 2.0 * pad, FS_SMALL)?;
-    let cap_y = plot.bottom() + bottom_gutter() + 4.0;
-    let h = cap_y + lines.len() as f64 * CAPTION_LINE + pad;
+    let PanelLayout {
+        w,
+        h,
+        pad,
+        plot,
+        legend_w,
+        lines,
+        cap_y,
+    } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
     let xs = Scale {
         lo: xt.lo,
         hi: xt.hi,
