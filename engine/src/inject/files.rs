@@ -1,0 +1,153 @@
+//! The files of a campaign: recovery.csv, recovery.json, realizations.csv,
+//! coverage_plugin.csv and campaign.json.
+
+use super::campaign::Record;
+use super::summary::{Outcome, RecoveryRow};
+use crate::error::{Error, Result};
+use crate::output::{fmt_f64, write_atomic, write_json};
+use serde::{Deserialize, Serialize};
+use std::fmt::Write as _;
+use std::path::Path;
+
+/// recovery.json.
+#[derive(Serialize, Deserialize)]
+pub(super) struct RecoveryFile {
+    pub(super) pattern: String,
+    pub(super) false_alarm_probability: f64,
+    pub(super) detection_threshold_snr: f64,
+    pub(super) realizations: u64,
+    pub(super) mode: String,
+    pub(super) rows: Vec<RecoveryRow>,
+    pub(super) assumptions: String,
+    pub(super) provenance: serde_json::Value,
+}
+
+impl Outcome {
+    /// Write recovery.csv, recovery.json, realizations.csv, coverage_plugin.csv and
+    /// campaign.json into `dir` (each atomically).
+    pub fn write(&self, dir: &Path) -> Result<()> {
+        let mut csv = String::from(RECOVERY_HEADER);
+        csv.push('\n');
+        for r in &self.rows {
+            let vals = [
+                r.amplitude,
+                r.amplitude2_injected,
+                r.realizations as f64,
+                r.amplitude2_mean,
+                r.amplitude2_std,
+                r.amplitude2_sem,
+                r.bias,
+                r.bias_sem,
+                r.snr_mean,
+                r.snr_std,
+                r.coverage68_weak,
+                r.coverage95_weak,
+                r.coverage68_full,
+                r.coverage95_full,
+                r.detection_probability,
+            ];
+            let cells: Vec<String> = vals
+                .iter()
+                .enumerate()
+                .map(|(i, v)| {
+                    if i == 2 {
+                        r.realizations.to_string()
+                    } else {
+                        fmt_f64(*v)
+                    }
+                })
+                .collect();
+            csv.push_str(&cells.join(","));
+            csv.push('\n');
+        }
+        let mut real = String::from(REALIZATIONS_HEADER);
+        real.push('\n');
+        for r in &self.records {
+            let _ = writeln!(
+                real,
+                "{},{},{},{},{},{}",
+                fmt_f64(r.amplitude),
+                r.realization,
+                fmt_f64(r.amplitude2),
+                fmt_f64(r.sigma_weak),
+                fmt_f64(r.sigma_full),
+                fmt_f64(r.snr)
+            );
+        }
+        let mut plug = String::from("amplitude,coverage68_plugin,coverage95_plugin\n");
+        for p in &self.plugin {
+            let _ = writeln!(
+                plug,
+                "{},{},{}",
+                fmt_f64(p.amplitude),
+                fmt_f64(p.coverage68_plugin),
+                fmt_f64(p.coverage95_plugin)
+            );
+        }
+        let json = RecoveryFile {
+            pattern: self.state.pattern.name().to_string(),
+            false_alarm_probability: self.state.false_alarm_probability,
+            detection_threshold_snr: self.state.detection_threshold_snr,
+            realizations: self.realizations(),
+            mode: self.state.mode.name().to_string(),
+            rows: self.rows.clone(),
+            assumptions: self.assumptions.clone(),
+            provenance: self.provenance.clone(),
+        };
+        write_atomic(&dir.join("realizations.csv"), real.as_bytes())?;
+        write_atomic(&dir.join("coverage_plugin.csv"), plug.as_bytes())?;
+        write_json(&dir.join("campaign.json"), &self.state)?;
+        write_atomic(&dir.join("recovery.csv"), csv.as_bytes())?;
+        write_json(&dir.join("recovery.json"), &json)
+    }
+}
+
+/// Header of recovery.csv.
+pub const RECOVERY_HEADER: &str = "amplitude,amplitude2_injected,realizations,amplitude2_mean,amplitude2_std,amplitude2_sem,bias,bias_sem,snr_mean,snr_std,coverage68_weak,coverage95_weak,coverage68_full,coverage95_full,detection_probability";
+
+/// Header of realizations.csv.
+pub const REALIZATIONS_HEADER: &str =
+    "amplitude,realization,amplitude2,amplitude2_sigma_weak,amplitude2_sigma_full,snr";
+
+/// Parse realizations.csv (as written by [`Outcome::write`]).
+pub fn read_realizations(path: &Path) -> Result<Vec<Record>> {
+    let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, e))?;
+    let mut lines = text.lines().enumerate();
+    match lines.next() {
+        Some((_, h)) if h.trim() == REALIZATIONS_HEADER => {}
+        _ => {
+            return Err(Error::input(
+                path,
+                Some(1),
+                None,
+                format!("expected the header {REALIZATIONS_HEADER}"),
+            ))
+        }
+    }
+    let mut out = Vec::new();
+    for (ln, line) in lines {
+        if line.trim().is_empty() || line.trim() == REALIZATIONS_HEADER {
+            continue; // concatenated shard files may repeat the header
+        }
+        let f: Vec<&str> = line.split(',').map(str::trim).collect();
+        let num = |k: usize, name: &str| -> Result<f64> {
+            f.get(k)
+                .and_then(|s| s.parse::<f64>().ok())
+                .ok_or_else(|| Error::input(path, Some(ln + 1), Some(name), "not a number"))
+        };
+        let realization = f
+            .get(1)
+            .and_then(|s| s.parse::<u64>().ok())
+            .ok_or_else(|| Error::input(path, Some(ln + 1), Some("realization"), "not an index"))?;
+        out.push(Record {
+            amplitude: num(0, "amplitude")?,
+            realization,
+            amplitude2: num(2, "amplitude2")?,
+            sigma_weak: num(3, "amplitude2_sigma_weak")?,
+            sigma_full: num(4, "amplitude2_sigma_full")?,
+            sigma_plugin: f64::NAN,
+            snr: num(5, "snr")?,
+        });
+    }
+    Ok(out)
+}

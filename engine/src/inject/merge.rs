@@ -1,0 +1,93 @@
+//! Merging the shard folders of one campaign.
+
+use super::files::{read_realizations, RecoveryFile};
+use super::summary::{CampaignState, Outcome};
+use crate::error::{Error, Result};
+use crate::shard::Shard;
+use std::path::PathBuf;
+
+/// Merge shard folders (each with campaign.json, recovery.json and realizations.csv) of one
+/// campaign: check they agree, concatenate the realizations (no index twice), summarise.
+pub fn merge_shards(dirs: &[PathBuf]) -> Result<Outcome> {
+    if dirs.is_empty() {
+        return Err(Error::setting("merge", "give at least one shard folder"));
+    }
+    let mut first: Option<(CampaignState, RecoveryFile)> = None;
+    let mut records = Vec::new();
+    for d in dirs {
+        let read_json = |name: &str| -> Result<serde_json::Value> {
+            let p = d.join(name);
+            let text = std::fs::read_to_string(&p).map_err(|e| Error::io(&p, e))?;
+            serde_json::from_str(&text)
+                .map_err(|e| Error::input(&p, Some(e.line()), None, e.to_string()))
+        };
+        let state: CampaignState = serde_json::from_value(read_json("campaign.json")?)
+            .map_err(|e| Error::input(&d.join("campaign.json"), None, None, e.to_string()))?;
+        let rec: RecoveryFile = serde_json::from_value(read_json("recovery.json")?)
+            .map_err(|e| Error::input(&d.join("recovery.json"), None, None, e.to_string()))?;
+        let mut rs = read_realizations(&d.join("realizations.csv"))?;
+        // The plug-in sigma from the shard's variance polynomial at the recovered amplitude.
+        for r in &mut rs {
+            let k = state
+                .amplitudes
+                .iter()
+                .position(|&a| a == r.amplitude)
+                .ok_or_else(|| {
+                    Error::input(
+                        &d.join("realizations.csv"),
+                        None,
+                        Some("amplitude"),
+                        format!("{} is not an amplitude of the campaign", r.amplitude),
+                    )
+                })?;
+            r.sigma_plugin = state.variance_polynomials[k].amplitude2_sigma(r.amplitude2);
+        }
+        records.extend(rs);
+        match &first {
+            None => first = Some((state, rec)),
+            Some((s0, _)) => {
+                let same = s0.mode == state.mode
+                    && s0.pattern == state.pattern
+                    && s0.seed == state.seed
+                    && s0.amplitudes == state.amplitudes
+                    && s0.realizations_total == state.realizations_total
+                    && s0.input_hash == state.input_hash
+                    && s0.detection_threshold_snr == state.detection_threshold_snr
+                    && s0.shard.count == state.shard.count;
+                if !same {
+                    return Err(Error::setting(
+                        "merge",
+                        format!(
+                            "{} is not a shard of the same campaign (mode, pattern, seed, amplitudes, realizations, input, threshold and shard count must agree)",
+                            d.display()
+                        ),
+                    ));
+                }
+            }
+        }
+    }
+    let (mut state, rec) = first.expect("at least one shard");
+    records.sort_by(|a, b| {
+        let ka = state.amplitudes.iter().position(|&x| x == a.amplitude);
+        let kb = state.amplitudes.iter().position(|&x| x == b.amplitude);
+        ka.cmp(&kb).then(a.realization.cmp(&b.realization))
+    });
+    for w in records.windows(2) {
+        if w[0].amplitude == w[1].amplitude && w[0].realization == w[1].realization {
+            return Err(Error::setting(
+                "merge",
+                format!(
+                    "realization {} at amplitude {} appears twice (a shard given twice?)",
+                    w[0].realization, w[0].amplitude
+                ),
+            ));
+        }
+    }
+    state.shard = Shard::ALL;
+    Ok(Outcome::new(
+        state,
+        records,
+        rec.assumptions,
+        rec.provenance,
+    ))
+}
