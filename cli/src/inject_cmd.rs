@@ -1,13 +1,13 @@
 //! `ptacorr inject`: injection campaigns (argument parsing and presentation only; every number
 //! comes from the engine's `inject` module).
 
+use crate::PatternArg;
 use anyhow::{bail, Context, Result};
-use ptacorr::analysis::CommonAutoPower;
+use ptacorr::analysis::{CommonAutoPower, DEFAULT_FREQUENCIES, DEFAULT_SPECTRAL_INDEX};
 use ptacorr::inject::{
     merge_shards, parse_amplitudes, run_campaign, AutoPowerChoice, InjectSettings, Mode, Outcome,
-    Shard, Target,
+    Shard, Target, DEFAULT_NULL_TRIALS, DEFAULT_REALIZATIONS,
 };
-use ptacorr::orf::Pattern;
 use ptacorr::release::read_release;
 use ptacorr::scenario::{Scenario, SimulationSpec};
 use ptacorr::spectrum::PowerLaw;
@@ -40,14 +40,14 @@ pub struct InjectArgs {
     #[arg(long)]
     amplitudes: Option<String>,
     /// Realizations per amplitude (over all shards).
-    #[arg(long, default_value_t = 200)]
+    #[arg(long, default_value_t = DEFAULT_REALIZATIONS)]
     realizations: u64,
     /// Spectral index of the injected background and of the template.
-    #[arg(long, default_value_t = 13.0 / 3.0)]
+    #[arg(long, default_value_t = DEFAULT_SPECTRAL_INDEX)]
     spectral_index: f64,
     /// Correlation pattern of the injection and of the fit: hd, monopole or dipole.
-    #[arg(long, default_value = "hd")]
-    pattern: String,
+    #[arg(long, value_enum, default_value = "hd")]
+    pattern: PatternArg,
     #[arg(long, default_value_t = 1)]
     seed: u64,
     /// Run shard I of N only (a contiguous block of realizations; I/N, 1-based).
@@ -65,14 +65,14 @@ pub struct InjectArgs {
     #[arg(long)]
     no_common: bool,
     /// Number of analysis frequencies f_j = j / T_span.
-    #[arg(long, default_value_t = 14)]
+    #[arg(long, default_value_t = DEFAULT_FREQUENCIES)]
     frequencies: usize,
     /// False-alarm probability of the detection threshold (default: 0.001, raised to leave at
     /// least 10 null trials above the threshold).
     #[arg(long)]
     false_alarm: Option<f64>,
     /// Simulated null trials for the threshold (when no --null is given).
-    #[arg(long, default_value_t = 1000)]
+    #[arg(long, default_value_t = DEFAULT_NULL_TRIALS)]
     null_trials: usize,
     /// A null folder whose trials.csv gives the threshold.
     #[arg(long)]
@@ -111,8 +111,7 @@ pub fn run(args: InjectArgs) -> Result<()> {
     let Some(amps) = &args.amplitudes else {
         bail!("give --amplitudes, e.g. 0,log:1e-16:1e-14:7");
     };
-    let pattern = Pattern::from_name(&args.pattern)
-        .with_context(|| format!("unknown pattern {:?} (hd, monopole, dipole)", args.pattern))?;
+    let pattern = args.pattern.pattern();
     let is_release = path.is_dir() || path.file_name().is_some_and(|n| n == "release.toml");
     let target = if is_release {
         let rel =

@@ -3,10 +3,12 @@
 
 use anyhow::{Context, Result};
 use clap::{Parser, Subcommand};
-use ptacorr::analysis::{correlate_reduced, CommonAutoPower, CorrelateSettings, Correlation};
+use ptacorr::analysis::{
+    correlate_observed, CommonAutoPower, CorrelateSettings, Correlation, Stage, DEFAULT_BINS,
+    DEFAULT_FREQUENCIES, DEFAULT_SPECTRAL_INDEX,
+};
 use ptacorr::bins::Binning;
 use ptacorr::orf::Pattern;
-use ptacorr::reduce::{reduce_release, FrequencyGrid};
 use ptacorr::release::{read_release, Release};
 use ptacorr::scenario::{lay_out, Scenario};
 use ptacorr::simulate::simulate_scenario;
@@ -77,13 +79,13 @@ enum Command {
 #[derive(clap::Args, Clone)]
 pub(crate) struct AnalysisArgs {
     /// Number of analysis frequencies f_j = j / T_span.
-    #[arg(long, default_value_t = 14)]
+    #[arg(long, default_value_t = DEFAULT_FREQUENCIES)]
     frequencies: usize,
     /// Spectral index of the template (13/3 for a background of binaries).
-    #[arg(long, default_value_t = 13.0 / 3.0)]
+    #[arg(long, default_value_t = DEFAULT_SPECTRAL_INDEX)]
     spectral_index: f64,
     /// Number of angular bins.
-    #[arg(long, default_value_t = 10)]
+    #[arg(long, default_value_t = DEFAULT_BINS)]
     bins: usize,
     /// Bins of equal width in angle instead of equal pair count.
     #[arg(long)]
@@ -94,6 +96,24 @@ pub(crate) struct AnalysisArgs {
     /// Leave the common process out of the auto-power.
     #[arg(long)]
     no_common: bool,
+}
+
+/// A correlation pattern on the command line.
+#[derive(Clone, Copy, clap::ValueEnum)]
+pub(crate) enum PatternArg {
+    Hd,
+    Monopole,
+    Dipole,
+}
+
+impl PatternArg {
+    pub(crate) fn pattern(self) -> Pattern {
+        match self {
+            PatternArg::Hd => Pattern::Hd,
+            PatternArg::Monopole => Pattern::Monopole,
+            PatternArg::Dipole => Pattern::Dipole,
+        }
+    }
 }
 
 impl AnalysisArgs {
@@ -183,22 +203,26 @@ pub(crate) fn correlate_release(
     let (t, cpu) = (Instant::now(), cpu_seconds());
     let rel = read_release(path).with_context(|| format!("reading release {}", path.display()))?;
     let (read_s, read_cpu) = (t.elapsed().as_secs_f64(), cpu_seconds() - cpu);
-    settings.validate()?;
-    let grid = FrequencyGrid::for_release(&rel, settings.n_frequencies)?;
-    let common = settings.common_power_law(&rel);
-    let (t, cpu) = (Instant::now(), cpu_seconds());
-    let reduced = reduce_release(&rel, &rel.noise, &grid, common.as_ref())?;
-    let (reduce_s, reduce_cpu) = (t.elapsed().as_secs_f64(), cpu_seconds() - cpu);
-    let flops: f64 = reduced.iter().map(|r| r.flops).sum();
-    let t = Instant::now();
-    let c = correlate_reduced(reduced, grid, settings, common)?;
-    let pairs_s = t.elapsed().as_secs_f64();
+    // Wall and CPU clock at the start of each stage of the engine's analysis.
+    let mut marks: Vec<(Stage, Instant, f64)> = Vec::with_capacity(3);
+    let c = correlate_observed(&rel, settings, &mut |stage| {
+        marks.push((stage, Instant::now(), cpu_seconds()))
+    })?;
+    let mark = |s: Stage| marks.iter().find(|m| m.0 == s).map(|m| (m.1, m.2));
+    let (Some(reduce), Some(pairs), Some(done)) =
+        (mark(Stage::Reduce), mark(Stage::Pairs), mark(Stage::Done))
+    else {
+        anyhow::bail!("the analysis did not report its stages");
+    };
+    let reduce_s = (pairs.0 - reduce.0).as_secs_f64();
+    let reduce_cpu = pairs.1 - reduce.1;
+    let pairs_s = (done.0 - pairs.0).as_secs_f64();
     eprintln!(
         "read {} TOAs in {read_s:.3} s (cpu {read_cpu:.3} s); reduced {} pulsars in {reduce_s:.3} s \
          (cpu {reduce_cpu:.3} s, {:.3} GFlop counted); pairs and fits in {pairs_s:.3} s",
         rel.n_toa(),
         rel.pulsars.len(),
-        flops * 1e-9,
+        c.reduction_flops() * 1e-9,
     );
     Ok((rel, c))
 }

@@ -1,16 +1,23 @@
 //! `ptacorr null` and `ptacorr merge`: argument handling, the progress bar and Ctrl-C. Every
 //! number comes from the engine (ptacorr::null).
 
-use crate::AnalysisArgs;
+use crate::{AnalysisArgs, PatternArg};
 use anyhow::{Context, Result};
 use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
 use ptacorr::null::{self, merge::merge, Control, Method, NullReport, NullSettings, Shard};
-use ptacorr::orf::Pattern;
 use ptacorr::release::read_release;
 use std::io::IsTerminal;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
+
+/// How null trials are made, on the command line.
+#[derive(Clone, Copy, clap::ValueEnum)]
+pub enum MethodArg {
+    Scramble,
+    Phase,
+    Simulate,
+}
 
 /// Arguments of `ptacorr null`.
 #[derive(clap::Args)]
@@ -18,16 +25,16 @@ pub struct NullArgs {
     /// The release folder.
     pub release: PathBuf,
     /// scramble (sky positions), phase (Fourier phases) or simulate (draws from the noise model).
-    #[arg(long, value_parser = ["scramble", "phase", "simulate"])]
-    pub method: String,
+    #[arg(long, value_enum)]
+    pub method: MethodArg,
     /// Number of trials N (over all shards).
     #[arg(long)]
     pub trials: u64,
     #[arg(long, default_value_t = 1)]
     pub seed: u64,
     /// The correlation pattern whose OS is tested: hd, dipole or monopole.
-    #[arg(long, default_value = "hd", value_parser = ["hd", "dipole", "monopole"])]
-    pub pattern: String,
+    #[arg(long, value_enum, default_value = "hd")]
+    pub pattern: PatternArg,
     /// Scrambles: keep those whose |match| with the true pattern is below this.
     #[arg(long)]
     pub match_threshold: Option<f64>,
@@ -53,10 +60,13 @@ pub struct NullArgs {
 
 impl NullArgs {
     fn settings(&self) -> Result<NullSettings> {
-        let method = Method::from_name(&self.method).context("unknown --method")?;
-        let pattern = Pattern::from_name(&self.pattern).context("unknown --pattern")?;
+        let method = match self.method {
+            MethodArg::Scramble => Method::Scramble,
+            MethodArg::Phase => Method::Phase,
+            MethodArg::Simulate => Method::Simulate,
+        };
         let mut s = NullSettings::new(method, self.trials, self.seed);
-        s.pattern = pattern;
+        s.pattern = self.pattern.pattern();
         if self.match_threshold.is_some() {
             s.match_threshold = self.match_threshold;
         }

@@ -44,12 +44,22 @@ pub struct CorrelateSettings {
     pub common: CommonAutoPower,
 }
 
+/// Default number of analysis frequencies K (f_j = j / T_span, j = 1..K).
+pub const DEFAULT_FREQUENCIES: usize = 14;
+
+/// Default number of angular bins.
+pub const DEFAULT_BINS: usize = 10;
+
+/// Default spectral index of the template: 13/3, a background of circular binaries driven by
+/// gravitational-wave emission (Phinney 2001).
+pub const DEFAULT_SPECTRAL_INDEX: f64 = GAMMA_BINARIES;
+
 impl Default for CorrelateSettings {
     fn default() -> Self {
         CorrelateSettings {
-            n_frequencies: 14,
-            spectral_index: GAMMA_BINARIES,
-            n_bins: 10,
+            n_frequencies: DEFAULT_FREQUENCIES,
+            spectral_index: DEFAULT_SPECTRAL_INDEX,
+            n_bins: DEFAULT_BINS,
             binning: Binning::EqualCount,
             common: CommonAutoPower::FromNoiseModel,
         }
@@ -111,11 +121,36 @@ pub struct Correlation {
 
 /// Run the correlation analysis of a release.
 pub fn correlate(release: &Release, settings: &CorrelateSettings) -> Result<Correlation> {
+    correlate_observed(release, settings, &mut |_| {})
+}
+
+/// The stages of [`correlate`], announced to an observer as each one begins.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Stage {
+    /// Per-pulsar reduction (Woodbury form), after the settings are checked.
+    Reduce,
+    /// Every pair's rho and sigma, the pattern fits and the bins.
+    Pairs,
+    /// The analysis is complete.
+    Done,
+}
+
+/// [`correlate`], calling `observe` at the start of each [`Stage`] (so a caller can time the
+/// stages without re-wiring the pipeline; the results are the same).
+pub fn correlate_observed(
+    release: &Release,
+    settings: &CorrelateSettings,
+    observe: &mut dyn FnMut(Stage),
+) -> Result<Correlation> {
     settings.validate()?;
     let grid = FrequencyGrid::for_release(release, settings.n_frequencies)?;
     let common = settings.common_power_law(release);
+    observe(Stage::Reduce);
     let reduced = reduce_release(release, &release.noise, &grid, common.as_ref())?;
-    correlate_reduced(reduced, grid, settings, common)
+    observe(Stage::Pairs);
+    let c = correlate_reduced(reduced, grid, settings, common)?;
+    observe(Stage::Done);
+    Ok(c)
 }
 
 /// The pair stage of the analysis from already reduced pulsars.
@@ -136,7 +171,14 @@ pub fn correlate_reduced(
             )
         })
         .collect();
-    let multi = multiple_component(&pairs, &Pattern::ALL).ok();
+    // The joint fit needs the patterns to be linearly independent over the array's pairs; when
+    // they are not (a handful of pulsars) its Fisher matrix is singular, and summary.json
+    // records `multiple_component: null` instead of failing the whole analysis.
+    let multi = match multiple_component(&pairs, &Pattern::ALL) {
+        Ok(m) => Some(m),
+        Err(Error::NotPositiveDefinite { .. }) => None,
+        Err(e) => return Err(e),
+    };
     let bins = bin_pairs(&pairs, settings.n_bins, settings.binning);
     Ok(Correlation {
         labels: reduced.iter().map(|r| r.label.clone()).collect(),
@@ -198,6 +240,12 @@ impl Correlation {
     /// Number of pulsars.
     pub fn n_pulsars(&self) -> usize {
         self.labels.len()
+    }
+
+    /// Floating-point operations of the per-pulsar reductions, as counted by
+    /// [`crate::reduce::PulsarModel::flops`].
+    pub fn reduction_flops(&self) -> f64 {
+        self.reduced.iter().map(|r| r.flops).sum()
     }
 
     /// Write summary.json, pairs.csv and bins.csv into `dir` (each file atomically).

@@ -8,7 +8,7 @@ use crate::basis::{
 };
 use crate::constants::SECONDS_PER_DAY;
 use crate::error::{Error, Result};
-use crate::linalg::{mirror_upper, syrk_flops, syrk_tn, ScaledCholesky};
+use crate::linalg::{mirror_upper, symmetrise, syrk_flops, syrk_tn, ScaledCholesky};
 use crate::noise::{NoiseModel, PulsarNoise};
 use crate::release::{Pulsar, Release};
 use crate::sky::Direction;
@@ -329,11 +329,6 @@ impl PulsarModel {
     pub fn flops(&self) -> f64 {
         self.flops
     }
-}
-
-fn symmetrise(z: Array2<f64>) -> Array2<f64> {
-    let zt = z.t().to_owned();
-    (z + zt) * 0.5
 }
 
 /// Reduce one pulsar: build its model and apply it to its residuals.

@@ -6,6 +6,7 @@
 use crate::basis::{chromatic_scale, ecorr_epochs, fourier_basis, timing_model, ECORR_EPOCH_GAP_S};
 use crate::constants::SECONDS_PER_DAY;
 use crate::error::{Error, Result};
+use crate::linalg::PsdRoot;
 use crate::noise::NoiseModel;
 use crate::orf::pattern_matrix;
 use crate::output::{fmt_f64, write_atomic};
@@ -14,7 +15,7 @@ use crate::rng::{stream, Purpose};
 use crate::scenario::{BackgroundPattern, BackgroundSpec, Layout, SimulationSpec};
 use crate::spectrum::{power_law_phi, PowerLaw};
 use ndarray::{Array1, Array2};
-use ndarray_linalg::{Eigh, Solve, UPLO};
+use ndarray_linalg::Solve;
 use rand::Rng;
 use rand_distr::StandardNormal;
 use rayon::prelude::*;
@@ -36,27 +37,10 @@ pub fn simulation_ladder(sim: &SimulationSpec, t_span: f64) -> (Vec<f64>, f64) {
     ((1..=n).map(|j| j as f64 / t_sim).collect(), t_sim)
 }
 
-/// A lower-triangular-like square root L with L L^T = G for a symmetric positive semi-definite
-/// pattern matrix (eigen-decomposition, so rank-deficient monopole and dipole matrices work).
+/// A square root L with L L^T = G of a symmetric positive semi-definite pattern matrix
+/// ([`PsdRoot`], so rank-deficient monopole and dipole matrices work).
 pub fn pattern_root(g: &Array2<f64>) -> Result<Array2<f64>> {
-    let (vals, vecs) = g
-        .eigh(UPLO::Lower)
-        .map_err(|_| Error::NotPositiveDefinite {
-            what: "the background's correlation matrix".into(),
-            pivot: 0,
-        })?;
-    let mut root = vecs;
-    for (j, &l) in vals.iter().enumerate() {
-        if l < -1e-8 * vals.iter().cloned().fold(0.0, f64::max) {
-            return Err(Error::NotPositiveDefinite {
-                what: "the background's correlation matrix".into(),
-                pivot: j + 1,
-            });
-        }
-        let s = l.max(0.0).sqrt();
-        root.column_mut(j).mapv_inplace(|v| v * s);
-    }
-    Ok(root)
+    PsdRoot::new(g, "the background's correlation matrix").map(PsdRoot::into_factor)
 }
 
 /// What to put into simulated residuals.

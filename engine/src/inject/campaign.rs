@@ -8,6 +8,7 @@ use super::threshold::{default_false_alarm, detection_threshold, read_null_trial
 use super::{NULL_STREAM_BASE, REFERENCE_AMPLITUDE, Z68, Z95};
 use crate::analysis::CommonAutoPower;
 use crate::error::{Error, Result};
+use crate::linalg::{symmetrise, PsdRoot};
 use crate::noise::RedProcess;
 use crate::orf::{pattern_matrix, Pattern};
 use crate::paircov::{variance_polynomial, VariancePolynomial};
@@ -17,7 +18,7 @@ use crate::scenario::{BackgroundPattern, BackgroundSpec, SimulationSpec};
 use crate::simulate::{pattern_root, simulate_residuals, Ingredients};
 use crate::spectrum::{template, PowerLaw};
 use ndarray::{Array1, Array2};
-use ndarray_linalg::{Eigh, Inverse, UPLO};
+use ndarray_linalg::Inverse;
 use rand::Rng;
 use rand_distr::StandardNormal;
 use rayon::prelude::*;
@@ -69,29 +70,6 @@ pub struct Campaign {
     pub baseline: Vec<f64>,
 }
 
-/// A symmetric square root of a symmetric positive semi-definite matrix (eigen-decomposition,
-/// tiny negative eigenvalues from rounding clipped to 0).
-fn psd_root(m: &Array2<f64>, what: &str) -> Result<Array2<f64>> {
-    let (vals, vecs) = m
-        .eigh(UPLO::Lower)
-        .map_err(|_| Error::NotPositiveDefinite {
-            what: what.to_string(),
-            pivot: 0,
-        })?;
-    let top = vals.iter().cloned().fold(0.0, f64::max);
-    let mut scaled = vecs.clone();
-    for (j, &l) in vals.iter().enumerate() {
-        if l < -1e-8 * top {
-            return Err(Error::NotPositiveDefinite {
-                what: what.to_string(),
-                pivot: j + 1,
-            });
-        }
-        scaled.column_mut(j).mapv_inplace(|v| v * l.max(0.0).sqrt());
-    }
-    Ok(scaled.dot(&vecs.t()))
-}
-
 /// Small dense kernels of the per-realization hot loop, written out so that no multithreaded
 /// BLAS call runs inside the rayon workers (OpenBLAS threads inside rayon tasks oversubscribe
 /// the cores).
@@ -105,11 +83,6 @@ fn matvec(m: &Array2<f64>, v: ndarray::ArrayView1<f64>) -> Array1<f64> {
             .collect(),
         None => m.dot(&Array1::from(v)),
     }
-}
-
-pub(super) fn symmetrise(z: Array2<f64>) -> Array2<f64> {
-    let zt = z.t().to_owned();
-    (z + zt) * 0.5
 }
 
 impl Campaign {
@@ -170,7 +143,7 @@ impl Campaign {
         let z0_root = z0
             .iter()
             .zip(&target.pulsars)
-            .map(|(z, p)| psd_root(z, &format!("Z of pulsar {}", p.label)))
+            .map(|(z, p)| Ok(PsdRoot::new(z, &format!("Z of pulsar {}", p.label))?.symmetric()))
             .collect::<Result<Vec<_>>>()?;
         let data = match target.kind {
             TargetKind::Release => {

@@ -35,7 +35,9 @@ pub use amplitudes::parse_amplitudes;
 pub use campaign::{assumptions, run_campaign, Campaign, Record};
 pub use files::{read_realizations, REALIZATIONS_HEADER, RECOVERY_HEADER};
 pub use merge::merge_shards;
-pub use settings::{AutoPowerChoice, InjectSettings, Mode};
+pub use settings::{
+    AutoPowerChoice, InjectSettings, Mode, DEFAULT_NULL_TRIALS, DEFAULT_REALIZATIONS,
+};
 pub use summary::{summarise, CampaignState, Outcome, PluginRow, RecoveryRow, Z68, Z95};
 pub use target::{Target, TargetKind};
 pub use threshold::{default_false_alarm, detection_threshold, read_null_trials};

@@ -1,7 +1,9 @@
 //! The settings of an injection campaign and their checks.
 
 use super::NULL_STREAM_BASE;
-use crate::analysis::CommonAutoPower;
+use crate::analysis::{
+    CommonAutoPower, CorrelateSettings, DEFAULT_FREQUENCIES, DEFAULT_SPECTRAL_INDEX,
+};
 use crate::error::{Error, Result};
 use crate::orf::Pattern;
 use crate::scenario::SimulationSpec;
@@ -38,6 +40,12 @@ pub enum AutoPowerChoice {
     Fixed,
 }
 
+/// Default realizations per amplitude (over all shards).
+pub const DEFAULT_REALIZATIONS: u64 = 100;
+
+/// Default number of simulated null trials for the detection threshold.
+pub const DEFAULT_NULL_TRIALS: usize = 1000;
+
 /// Settings of an injection campaign.
 #[derive(Clone, Debug, Serialize)]
 pub struct InjectSettings {
@@ -70,17 +78,17 @@ impl Default for InjectSettings {
     fn default() -> Self {
         InjectSettings {
             amplitudes: vec![0.0],
-            realizations: 100,
-            spectral_index: crate::constants::GAMMA_BINARIES,
+            realizations: DEFAULT_REALIZATIONS,
+            spectral_index: DEFAULT_SPECTRAL_INDEX,
             pattern: Pattern::Hd,
             seed: 1,
             shard: Shard::ALL,
             mode: Mode::Reduced,
             auto_power: AutoPowerChoice::Injected,
             common: CommonAutoPower::FromNoiseModel,
-            n_frequencies: 14,
+            n_frequencies: DEFAULT_FREQUENCIES,
             false_alarm: None,
-            null_trials: 1000,
+            null_trials: DEFAULT_NULL_TRIALS,
             null_dir: None,
             signal_simulation: None,
         }
@@ -117,18 +125,7 @@ impl InjectSettings {
                 ),
             ));
         }
-        if !(self.spectral_index.is_finite()
-            && self.spectral_index > 0.0
-            && self.spectral_index <= 10.0)
-        {
-            return Err(Error::setting(
-                "spectral-index",
-                format!("must be in (0, 10], got {}", self.spectral_index),
-            ));
-        }
-        if self.n_frequencies == 0 || self.n_frequencies > 1000 {
-            return Err(Error::setting("frequencies", "must be in 1..=1000"));
-        }
+        self.analysis_settings().validate()?;
         if let Some(p) = self.false_alarm {
             if !(p > 0.0 && p < 0.5) {
                 return Err(Error::setting(
@@ -149,6 +146,17 @@ impl InjectSettings {
             }
         }
         Ok(())
+    }
+
+    /// The analysis settings shared with `correlate` (frequencies, spectral index, the common
+    /// auto-power; default bins), so that both are checked by one validator.
+    pub fn analysis_settings(&self) -> CorrelateSettings {
+        CorrelateSettings {
+            n_frequencies: self.n_frequencies,
+            spectral_index: self.spectral_index,
+            common: self.common,
+            ..CorrelateSettings::default()
+        }
     }
 
     /// The realization indices of this shard, ascending.

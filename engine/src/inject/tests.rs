@@ -1,9 +1,9 @@
 //! Checks of whole campaigns: the Woodbury transform, the joint covariance of the draws,
 //! independence of shards and threads, the files and their merging, and Monte Carlo recovery.
 
-use super::campaign::symmetrise;
 use super::*;
 use crate::analysis::CommonAutoPower;
+use crate::linalg::symmetrise;
 use crate::reduce::{AutoPower, PulsarModel};
 use crate::scenario::{lay_out, Scenario};
 use crate::spectrum::PowerLaw;

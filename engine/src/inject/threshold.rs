@@ -2,34 +2,15 @@
 //! false-alarm probability.
 
 use crate::error::{Error, Result};
+use crate::null::parse_trials;
 use std::path::Path;
 
-/// Read the `snr` column of a null folder's `trials.csv` (header `trial,snr,amplitude2`).
+/// The SNRs of a null folder's `trials.csv` (read by [`crate::null::parse_trials`]); at least
+/// 10 trials.
 pub fn read_null_trials(dir: &Path) -> Result<Vec<f64>> {
     let path = dir.join("trials.csv");
     let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
-    let mut lines = text.lines().enumerate();
-    let (_, header) = lines
-        .next()
-        .ok_or_else(|| Error::input(&path, Some(1), None, "empty file"))?;
-    let cols: Vec<&str> = header.split(',').map(str::trim).collect();
-    let k = cols
-        .iter()
-        .position(|c| *c == "snr")
-        .ok_or_else(|| Error::input(&path, Some(1), None, "no snr column in the header"))?;
-    let mut out = Vec::new();
-    for (ln, line) in lines {
-        if line.trim().is_empty() {
-            continue;
-        }
-        let v = line
-            .split(',')
-            .nth(k)
-            .and_then(|s| s.trim().parse::<f64>().ok())
-            .filter(|v| v.is_finite())
-            .ok_or_else(|| Error::input(&path, Some(ln + 1), Some("snr"), "not a finite number"))?;
-        out.push(v);
-    }
+    let out: Vec<f64> = parse_trials(&text, &path)?.iter().map(|t| t.snr).collect();
     if out.len() < 10 {
         return Err(Error::input(
             &path,

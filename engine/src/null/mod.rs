@@ -447,7 +447,8 @@ pub fn trials_csv(trials: &[Trial]) -> String {
 }
 
 /// Parse a trials file (`trial,snr,amplitude2`, or the checkpoint form with a fourth column
-/// `attempts`).
+/// `attempts`): the one reader of trials files in the engine (null merging, resuming, and the
+/// injection threshold). SNR and amplitude2 must be finite.
 pub fn parse_trials(text: &str, path: &Path) -> Result<Vec<Trial>> {
     let mut lines = text.lines().enumerate();
     let header = lines.next().map(|(_, h)| h).unwrap_or("");
@@ -478,10 +479,16 @@ pub fn parse_trials(text: &str, path: &Path) -> Result<Vec<Trial>> {
                 "wrong number of columns",
             ));
         }
+        let finite = |k: usize, field: &str| {
+            f[k].parse::<f64>()
+                .ok()
+                .filter(|v| v.is_finite())
+                .ok_or_else(|| Error::input(path, Some(i + 1), Some(field), "not a finite number"))
+        };
         out.push(Trial {
             index: f[0].parse().map_err(|_| bad("trial"))?,
-            snr: f[1].parse().map_err(|_| bad("snr"))?,
-            amplitude2: f[2].parse().map_err(|_| bad("amplitude2"))?,
+            snr: finite(1, "snr")?,
+            amplitude2: finite(2, "amplitude2")?,
             attempts: if with_attempts {
                 f[3].parse().map_err(|_| bad("attempts"))?
             } else {

@@ -8,42 +8,22 @@
 
 use super::{Prepared, Trial, TrialSource};
 use crate::analysis::{CorrelateSettings, Correlation};
-use crate::error::{Error, Result};
+use crate::error::Result;
+use crate::linalg::PsdRoot;
 use crate::reduce::{AutoPower, PulsarModel};
 use crate::release::Release;
 use crate::rng::{stream, Purpose};
 use crate::scenario::{BackgroundPattern, BackgroundSpec, SimulationSpec};
 use crate::simulate::{simulate_residuals, Ingredients};
 use ndarray::Array2;
-use ndarray_linalg::{Eigh, UPLO};
 use rand::Rng;
 use rand_distr::StandardNormal;
 
-/// A square root L with L L^T = Z of a symmetric positive semi-definite matrix, from its
-/// eigen-decomposition Z = V diag(e) V^T, L = V diag(sqrt(e)) (works when Z is singular, e.g. a
-/// pulsar without data at some analysis frequency). Eigenvalues below -1e-10 max(e) are an
-/// error; smaller negative ones (rounding) are set to zero. Row-major, dim x dim.
+/// A square root L with L L^T = Z of a symmetric positive semi-definite matrix
+/// ([`crate::linalg::PsdRoot`]: works when Z is singular, e.g. a pulsar without data at some
+/// analysis frequency). Row-major, dim x dim.
 pub fn psd_root(z: &Array2<f64>, what: &str) -> Result<Vec<f64>> {
-    let not_psd = |pivot| Error::NotPositiveDefinite {
-        what: what.to_string(),
-        pivot,
-    };
-    if z.iter().any(|v| !v.is_finite()) {
-        return Err(Error::NonFinite {
-            what: what.to_string(),
-        });
-    }
-    let (vals, vecs) = z.eigh(UPLO::Lower).map_err(|_| not_psd(0))?;
-    let top = vals.iter().cloned().fold(0.0, f64::max);
-    let mut root = vecs;
-    for (j, &e) in vals.iter().enumerate() {
-        if e < -1e-10 * top {
-            return Err(not_psd(j + 1));
-        }
-        let s = e.max(0.0).sqrt();
-        root.column_mut(j).mapv_inplace(|v| v * s);
-    }
-    Ok(root.iter().copied().collect())
+    Ok(PsdRoot::new(z, what)?.factor().iter().copied().collect())
 }
 
 /// Reduced-space simulated nulls.
