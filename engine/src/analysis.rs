@@ -282,7 +282,7 @@ impl Correlation {
                 "{},{},{},{},{},{}",
                 self.labels[p.a[i]],
                 self.labels[p.b[i]],
-                fmt_f64(p.cos_angle[i].acos().to_degrees()),
+                fmt_f64(p.angle[i].to_degrees()),
                 fmt_f64(p.rho[i]),
                 fmt_f64(p.sigma[i]),
                 fmt_f64(hellings_downs(p.cos_angle[i]))

@@ -38,11 +38,7 @@ pub fn bin_pairs(pairs: &PairCorrelations, n_bins: usize, binning: Binning) -> V
     if n == 0 || n_bins == 0 {
         return Vec::new();
     }
-    let angles: Vec<f64> = pairs
-        .cos_angle
-        .iter()
-        .map(|c| c.acos().to_degrees())
-        .collect();
+    let angles: Vec<f64> = pairs.angle.iter().map(|a| a.to_degrees()).collect();
     let mut order: Vec<usize> = (0..n).collect();
     order.sort_by(|&i, &j| angles[i].total_cmp(&angles[j]));
     let groups: Vec<(f64, f64, Vec<usize>)> = match binning {

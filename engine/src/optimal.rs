@@ -5,7 +5,7 @@
 use crate::error::{Error, Result};
 use crate::orf::Pattern;
 use crate::reduce::Reduced;
-use crate::sky::{cos_angle, Direction};
+use crate::sky::{angle, cos_angle, Direction};
 use ndarray::{Array1, Array2};
 use ndarray_linalg::Inverse;
 use rayon::prelude::*;
@@ -36,6 +36,9 @@ pub struct PairCorrelations {
     pub a: Vec<usize>,
     pub b: Vec<usize>,
     pub cos_angle: Vec<f64>,
+    /// Separation zeta_ab in radians by [`angle`] (atan2 of |p_a x p_b| and p_a . p_b), accurate
+    /// at all separations where acos(cos_angle) is not (docs/optimal-statistic.md).
+    pub angle: Vec<f64>,
     /// rho_ab = X_a^T Phi X_b / tr(Z_a Phi Z_b Phi), an estimate of A^2 G_ab (s^2... in units
     /// of A^2).
     pub rho: Vec<f64>,
@@ -99,6 +102,7 @@ pub fn pair_correlations(reduced: &[Reduced], phi: &[f64]) -> Result<PairCorrela
             out.b.push(b);
             out.cos_angle
                 .push(cos_angle(&directions[a], &directions[b]));
+            out.angle.push(angle(&directions[a], &directions[b]));
             out.rho.push(nums[k] / tr);
             out.sigma.push(tr.powf(-0.5));
             k += 1;

@@ -1,6 +1,6 @@
 //! The covariance of the pair correlations with a signal present, and from it the honest
 //! uncertainty of the optimal-statistic amplitude (Allen & Romano 2023, PRD 108, 043026;
-//! science notes section 5).
+//! docs/pair-covariance.md).
 //!
 //! Everything is in the template-weighted space of [`crate::optimal::weight`]:
 //! x~_a = Phi^(1/2) X_a, Z~_a = Phi^(1/2) Z_a Phi^(1/2). For a Gaussian background of amplitude
@@ -12,7 +12,8 @@
 //!
 //! where D_c = Phi_c / Phi is the common auto-power already inside the analysis covariance P_a,
 //! in units of the template (0 when P_a has no common process; A^2 when it holds exactly the
-//! injected one, which gives the familiar C~_aa = Z~_a of the notes). The diagonal block follows
+//! injected one, which gives the familiar C~_aa = Z~_a; docs/pair-covariance.md). The diagonal
+//! block follows
 //! from Cov(X_a) = F^T P_a^-1 C_true P_a^-1 F with C_true = P_a - F Phi_c F^T + A^2 F Phi F^T.
 //! The form is linear in a2 = A^2: C~ = C0 + a2 C1 with C0 = blockdiag(Z~_a - Z~_a D_c Z~_a) and
 //! C1_ab = G_ab Z~_a Z~_b (G_aa = 1).
@@ -20,7 +21,7 @@
 //! The OS numerator is the quadratic form Q = sum_{a<b} G_ab x~_a . x~_b = x^T M x with
 //! M = (1/2) (G' (x) I), G' = G with zero diagonal, and A2_hat = Q / S with
 //! S = sum_{a<b} G_ab^2 tr(Z~_a Z~_b) = sigma_0^-2 (Chamberlin et al. 2015). For Gaussian x,
-//! Var(x^T M x) = 2 tr(M C M C) (Isserlis 1918; the pairwise form of the notes,
+//! Var(x^T M x) = 2 tr(M C M C) (Isserlis 1918; the pairwise form of docs/pair-covariance.md,
 //! Cov(X_a^T Phi X_b, X_c^T Phi X_d) = tr(Phi C_bd Phi C_ac^T) + tr(Phi C_bc Phi C_ad^T), summed
 //! with the weights G_ab G_cd). Expanding C = C0 + a2 C1 gives a quadratic polynomial in a2:
 //!
@@ -227,7 +228,8 @@ pub fn joint_covariance(
     Ok(c)
 }
 
-/// Var(A2_hat) by the explicit sum over pairs of pairs of the notes' Isserlis form
+/// Var(A2_hat) by the explicit sum over pairs of pairs of the Isserlis form
+/// (docs/pair-covariance.md),
 /// Cov(n_ab, n_cd) = <C~_ac, C~_bd> + <C~_ad, C~_bc> (Allen & Romano 2023), with n_ab = x~_a.x~_b.
 /// O(N^4 (2K)^2): for checks only.
 pub fn amplitude2_variance_by_pairs(
@@ -284,8 +286,8 @@ mod tests {
         (z, g)
     }
 
-    /// Closed form (notes section 5; Chamberlin et al. 2015): with no signal and no common
-    /// auto-power, Var(A2_hat) = sigma_0^2 = 1 / sum G_ab^2 / sigma_ab^2.
+    /// Closed form (docs/pair-covariance.md; Chamberlin et al. 2015): with no signal and no
+    /// common auto-power, Var(A2_hat) = sigma_0^2 = 1 / sum G_ab^2 / sigma_ab^2.
     #[test]
     fn variance_without_signal_is_sigma0_squared() {
         let (z, g) = toy(6, 4, 3);
@@ -301,8 +303,9 @@ mod tests {
         assert!(poly.v1 > 0.0 && poly.v2 > 0.0);
     }
 
-    /// The fast trace expansion equals the explicit sum over pairs of pairs of the notes'
-    /// Isserlis form (Allen & Romano 2023), with and without common auto-power in P.
+    /// The fast trace expansion equals the explicit sum over pairs of pairs of the
+    /// Isserlis form (Allen & Romano 2023; docs/pair-covariance.md), with and without common
+    /// auto-power in P.
     #[test]
     fn trace_expansion_matches_the_sum_over_pairs() {
         let (z, g) = toy(5, 4, 11);

@@ -1,4 +1,4 @@
-//! Time-domain simulation of residuals (science notes section 7): white noise with ECORR, red and
+//! Time-domain simulation of residuals (docs/simulation.md): white noise with ECORR, red and
 //! chromatic noise from Fourier coefficients drawn from their power-law priors, a common
 //! background correlated across pulsars, then the timing model fitted out by weighted least
 //! squares as a timing package would.

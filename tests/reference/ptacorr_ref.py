@@ -327,7 +327,7 @@ class Settings:
 
 @dataclass
 class PulsarModel:
-    """r = M e + F_red c + F_dm d + U j + n (science notes section 2)."""
+    """r = M e + F_red c + F_dm d + U j + n (docs/reduction.md, section 1)."""
     residual: np.ndarray
     white_variance: np.ndarray       # N diagonal
     M: np.ndarray                    # normalised timing model (flat improper prior)
@@ -390,7 +390,7 @@ def spd_solve(A: np.ndarray, B: np.ndarray) -> np.ndarray:
 
 
 # ----------------------------------------------------------------------------------------------
-# Reducing one pulsar to X = F^T P^-1 r, Z = F^T P^-1 F (science notes section 3)
+# Reducing one pulsar to X = F^T P^-1 r, Z = F^T P^-1 F (docs/reduction.md, sections 2-4)
 # ----------------------------------------------------------------------------------------------
 def reduce_pulsar(model: PulsarModel) -> tuple[np.ndarray, np.ndarray]:
     """Woodbury form (van Haasteren & Vallisneri 2014; Lentati et al. 2013):

@@ -1,7 +1,7 @@
 //! The Woodbury engine against the dense textbook form: explicit n x n covariance matrices and
 //! the projection that marginalises the timing model (van Haasteren et al. 2009;
 //! van Haasteren & Vallisneri 2014). Every matrix here is built independently of the engine's
-//! basis code, from the formulas in the science notes.
+//! basis code, from the formulas of docs/reduction.md.
 
 use ndarray::{Array1, Array2};
 use ndarray_linalg::Inverse;

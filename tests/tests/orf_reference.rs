@@ -36,23 +36,32 @@ fn closed_form_matches_the_legendre_series() {
 }
 
 #[test]
-fn derived_values_of_the_science_notes() {
-    // Values computed with SciPy from the closed form (science notes section 4).
+fn extremes_and_zeros_of_the_closed_form() {
+    // Limits of the closed form (Hellings & Downs 1983; docs/optimal-statistic.md): G -> 1/2 at
+    // zero separation without the pulsar term, G = 1/4 at 180 deg. Tolerance: a few ulp.
     assert!((hellings_downs(1.0) - 0.5).abs() < 1e-15);
     assert!((hellings_downs(-1.0) - 0.25).abs() < 1e-15);
-    // Minimum -0.15190 at 82.48 deg: find it on a fine grid.
-    let (mut best, mut at) = (f64::INFINITY, 0.0);
-    for i in 0..=180_000 {
-        let deg = i as f64 * 1e-3;
-        let g = hellings_downs(deg.to_radians().cos());
-        if g < best {
-            best = g;
-            at = deg;
-        }
+    // The minimum, derived by hand from G(x) = 1/2 - x/4 + (3/2) x ln x with
+    // x = (1 - cos zeta)/2: dG/dx = -1/4 + (3/2)(ln x + 1) = 0 at x* = e^(-5/6), where
+    // G(x*) = 1/2 - (3/2) e^(-5/6) = -0.1518973... (at zeta = 82.484 deg).
+    let x_star = (-5.0f64 / 6.0).exp();
+    let g_min = 0.5 - 1.5 * x_star;
+    let c_star = 1.0 - 2.0 * x_star;
+    // The engine's value there: a few roundings of terms of size 0.5 (1e-15 absolute).
+    assert!(
+        (hellings_downs(c_star) - g_min).abs() < 1e-15,
+        "{}",
+        hellings_downs(c_star)
+    );
+    assert!((c_star.acos().to_degrees() - 82.484).abs() < 1e-3);
+    // It is the minimum: d2G/dx2 = 3 / (2 x*) > 0, so G rises by ~ (3/(4 x*)) dx^2 on each
+    // side; at dx = 1e-3 that is 1.7e-6, far above rounding (1e-16).
+    for dx in [-1e-3, 1e-3] {
+        let g = hellings_downs(1.0 - 2.0 * (x_star + dx));
+        assert!(g - g_min > 1e-6, "not a minimum: G(x* + {dx}) = {g}");
     }
-    assert!((best + 0.15190).abs() < 5e-6, "minimum {best}");
-    assert!((at - 82.48).abs() < 5e-3, "minimum at {at} deg");
-    // Zeros at 49.32 and 121.79 deg: sign changes bracket them.
+    // Zeros near 49.32 and 121.79 deg (values recalled from memory, commonly quoted): the
+    // closed form must change sign within +-0.01 deg of each.
     for zero in [49.32f64, 121.79] {
         let lo = hellings_downs((zero - 0.01).to_radians().cos());
         let hi = hellings_downs((zero + 0.01).to_radians().cos());

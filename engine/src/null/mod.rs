@@ -1,5 +1,5 @@
 //! Null distributions of the optimal statistic and the false-alarm probability of an observed
-//! SNR (science notes section 6): sky scrambles (Cornish & Sampson 2016; Taylor et al. 2017),
+//! SNR (docs/null.md): sky scrambles (Cornish & Sampson 2016; Taylor et al. 2017),
 //! phase shifts (Taylor et al. 2017), simulated nulls in the reduced space or the time domain,
 //! and the analytic generalised chi-square null (Hazboun et al. 2023; Imhof 1961).
 //!

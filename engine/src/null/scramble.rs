@@ -2,7 +2,7 @@
 //! random position and recompute the optimal statistic with the same rho_ab and sigma_ab. Only
 //! the pattern values G'_ab change, so a trial costs O(pairs):
 //!     SNR' = sum G' rho/sigma^2 / (sum G'^2 / sigma^2)^(1/2)      (Chamberlin et al. 2015)
-//! A scramble is kept when its match with the true pattern (science notes section 6),
+//! A scramble is kept when its match with the true pattern (docs/null.md),
 //!     M = sum G G' / (sum G^2 sum G'^2)^(1/2)       (unweighted, as in Taylor et al. 2017)
 //! has |M| below the threshold: an anti-matching scramble carries the true pattern as much as a
 //! matching one (our choice, documented in docs/null.md).
@@ -315,8 +315,8 @@ mod tests {
             let c = -1.0 + i as f64 / 1000.0;
             assert!((hd_fast(c) - hellings_downs(c)).abs() < 1e-15, "{c}");
         }
-        // Science notes section 4 (computed with SciPy): 0.5 at 0 deg, 0.25 at 180 deg,
-        // minimum -0.15190 at 82.48 deg.
+        // Closed-form values (docs/optimal-statistic.md): 0.5 at 0 deg, 0.25 at 180 deg,
+        // minimum 1/2 - (3/2) e^(-5/6) = -0.15190 at 82.48 deg.
         assert_eq!(hd_fast(1.0), 0.5);
         assert!((hd_fast(-1.0) - 0.25).abs() < 1e-15);
         assert!((hd_fast(82.48f64.to_radians().cos()) + 0.15190).abs() < 1e-5);

@@ -1,4 +1,4 @@
-//! Simulated nulls (science notes section 6). Under the null with the noise model right, the
+//! Simulated nulls (docs/null.md). Under the null with the noise model right, the
 //! reduced data X_a = F^T P_a^-1 r_a of independent pulsars are independent with
 //! Cov(X_a) = F^T P_a^-1 P_a P_a^-1 F = Z_a (van Haasteren & Vallisneri 2014), so the weighted
 //! x~_a = Phi^(1/2) X_a ~ N(0, Z~_a) with Z~_a = Phi^(1/2) Z_a Phi^(1/2). A reduced-space trial
