@@ -35,9 +35,9 @@ pub struct WhiteNoise {
     #[serde(default = "one")]
     pub efac: f64,
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub log10_equad: Option<f64>,
+    pub equad_log10_s: Option<f64>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub log10_ecorr: Option<f64>,
+    pub ecorr_log10_s: Option<f64>,
 }
 
 fn one() -> f64 {
@@ -47,11 +47,11 @@ fn one() -> f64 {
 impl WhiteNoise {
     /// EQUAD in seconds (0 when absent).
     pub fn equad(&self) -> f64 {
-        self.log10_equad.map_or(0.0, |l| 10f64.powf(l))
+        self.equad_log10_s.map_or(0.0, |l| 10f64.powf(l))
     }
     /// ECORR in seconds, if the backend has jitter.
     pub fn ecorr(&self) -> Option<f64> {
-        self.log10_ecorr.map(|l| 10f64.powf(l))
+        self.ecorr_log10_s.map(|l| 10f64.powf(l))
     }
 }
 
@@ -77,8 +77,8 @@ impl PulsarNoise {
             .unwrap_or(WhiteNoise {
                 backend: backend.to_string(),
                 efac: 1.0,
-                log10_equad: None,
-                log10_ecorr: None,
+                equad_log10_s: None,
+                ecorr_log10_s: None,
             })
     }
 }
@@ -127,8 +127,8 @@ impl NoiseModel {
                     ));
                 }
                 for (name, v) in [
-                    ("log10_equad", w.log10_equad),
-                    ("log10_ecorr", w.log10_ecorr),
+                    ("equad_log10_s", w.equad_log10_s),
+                    ("ecorr_log10_s", w.ecorr_log10_s),
                 ] {
                     if let Some(v) = v {
                         if !v.is_finite() || v > 0.0 {
@@ -257,7 +257,7 @@ log10_amplitude = -14.5
 spectral_index = 4.333333333333333
 
 [pulsar.P01]
-white = [{ backend = "KAR-L", efac = 1.1, log10_equad = -7.0, log10_ecorr = -6.5 }]
+white = [{ backend = "KAR-L", efac = 1.1, equad_log10_s = -7.0, ecorr_log10_s = -6.5 }]
 red = { log10_amplitude = -13.8, spectral_index = 3.0, n_frequencies = 30 }
 "#;
         let m = NoiseModel::parse(text, Path::new("noise.toml")).unwrap();

@@ -93,10 +93,10 @@ pub struct WhiteSpec {
     pub efac: [f64; 2],
     /// Range of log10 EQUAD (s) per (pulsar, backend), uniform; none if absent.
     #[serde(default)]
-    pub log10_equad: Option<[f64; 2]>,
+    pub equad_log10_s: Option<[f64; 2]>,
     /// Range of log10 ECORR (s) per (pulsar, backend), uniform; none if absent.
     #[serde(default)]
-    pub log10_ecorr: Option<[f64; 2]>,
+    pub ecorr_log10_s: Option<[f64; 2]>,
 }
 
 fn unit_range() -> [f64; 2] {
@@ -407,8 +407,8 @@ pub fn lay_out(s: &Scenario, seed: u64) -> Layout {
             pn.white.push(WhiteNoise {
                 backend: spec.name.clone(),
                 efac: round6(efac),
-                log10_equad: s.white.log10_equad.map(|q| round6(uniform(&mut r, q))),
-                log10_ecorr: s.white.log10_ecorr.map(|q| round6(uniform(&mut r, q))),
+                equad_log10_s: s.white.equad_log10_s.map(|q| round6(uniform(&mut r, q))),
+                ecorr_log10_s: s.white.ecorr_log10_s.map(|q| round6(uniform(&mut r, q))),
             });
         }
         // Make sure the span of the whole array is exactly the scenario's.
