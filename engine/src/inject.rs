@@ -25,7 +25,7 @@ use crate::analysis::CommonAutoPower;
 use crate::error::{Error, Result};
 use crate::noise::{NoiseModel, RedProcess};
 use crate::orf::{pattern_matrix, Pattern};
-use crate::output::{fmt_f64, write_atomic, write_json};
+use crate::output::fmt_f64;
 use crate::paircov::{variance_polynomial, VariancePolynomial};
 use crate::reduce::{AutoPower, FrequencyGrid, PulsarModel};
 use crate::release::{Pulsar, Release};
@@ -238,6 +238,7 @@ impl InjectSettings {
         if self.n_frequencies == 0 || self.n_frequencies > 1000 {
             return Err(Error::setting("frequencies", "must be in 1..=1000"));
         }
+        crate::noise::check_common_setting(&self.common)?;
         if let Some(p) = self.false_alarm {
             if !(p > 0.0 && p < 0.5) {
                 return Err(Error::setting(
@@ -802,6 +803,7 @@ impl Campaign {
 
 /// Read the `snr` column of a null folder's `trials.csv` (header `trial,snr,amplitude2`).
 pub fn read_null_trials(dir: &Path) -> Result<Vec<f64>> {
+    crate::output::check_manifest(dir)?;
     let path = dir.join("trials.csv");
     let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
     let mut lines = text.lines().enumerate();
@@ -1096,11 +1098,14 @@ impl Outcome {
             assumptions: self.assumptions.clone(),
             provenance: self.provenance.clone(),
         };
-        write_atomic(&dir.join("realizations.csv"), real.as_bytes())?;
-        write_atomic(&dir.join("coverage_plugin.csv"), plug.as_bytes())?;
-        write_json(&dir.join("campaign.json"), &self.state)?;
-        write_atomic(&dir.join("recovery.csv"), csv.as_bytes())?;
-        write_json(&dir.join("recovery.json"), &json)
+        // One output set: all five files or none (output.rs).
+        let mut set = crate::output::OutputSet::begin(dir, "inject")?;
+        set.write("realizations.csv", real.as_bytes())?;
+        set.write("coverage_plugin.csv", plug.as_bytes())?;
+        set.write_json("campaign.json", &self.state)?;
+        set.write("recovery.csv", csv.as_bytes())?;
+        set.write_json("recovery.json", &json)?;
+        set.commit().map(|_| ())
     }
 }
 
@@ -1154,6 +1159,23 @@ pub fn run_campaign(target: Target, settings: InjectSettings) -> Result<Outcome>
             ),
         ),
     };
+    // A threshold from the null of another release is legal but suspicious (release.rs).
+    let mut warnings = Vec::new();
+    if let Some(d) = &campaign.settings.null_dir {
+        let nj = d.join("null.json");
+        let other =
+            crate::release::recorded_input_hash(&nj).filter(|h| *h != campaign.target.input_hash);
+        if let Some(h) = other {
+            let w = format!(
+                    "{}: the null trials come from a different release (input hash {}, the target's is {}); the detection threshold may not apply",
+                    nj.display(),
+                    crate::output::truncate(&h, 20),
+                    crate::output::truncate(&campaign.target.input_hash, 20)
+                );
+            crate::release::emit_warning(&w, &nj)?;
+            warnings.push(w);
+        }
+    }
     let fap = campaign
         .settings
         .false_alarm
@@ -1186,6 +1208,10 @@ pub fn run_campaign(target: Target, settings: InjectSettings) -> Result<Outcome>
         "input_hash": campaign.target.input_hash,
         "settings": serde_json::to_value(s).unwrap_or(serde_json::Value::Null),
     });
+    let mut provenance = provenance;
+    if !warnings.is_empty() {
+        provenance["warnings"] = serde_json::json!(warnings);
+    }
     let text = assumptions(&campaign, &source);
     Ok(Outcome::new(state, records, text, provenance))
 }
@@ -1241,7 +1267,9 @@ pub fn merge_shards(dirs: &[PathBuf]) -> Result<Outcome> {
     }
     let mut first: Option<(CampaignState, RecoveryFile)> = None;
     let mut records = Vec::new();
+    let mut shard_indices = Vec::new();
     for d in dirs {
+        crate::output::check_manifest(d)?;
         let read_json = |name: &str| -> Result<serde_json::Value> {
             let p = d.join(name);
             let text = std::fs::read_to_string(&p).map_err(|e| Error::io(&p, e))?;
@@ -1270,6 +1298,7 @@ pub fn merge_shards(dirs: &[PathBuf]) -> Result<Outcome> {
             r.sigma_plugin = state.variance_polynomials[k].amplitude2_sigma(r.amplitude2);
         }
         records.extend(rs);
+        shard_indices.push(state.shard.index);
         match &first {
             None => first = Some((state, rec)),
             Some((s0, _)) => {
@@ -1309,6 +1338,25 @@ pub fn merge_shards(dirs: &[PathBuf]) -> Result<Outcome> {
                 ),
             ));
         }
+    }
+    // A merge is complete only with every realization of every amplitude (issue: a missing
+    // shard must not be labelled complete).
+    let expected = state.amplitudes.len() as u64 * state.realizations_total;
+    if records.len() as u64 != expected {
+        let count = state.shard.count;
+        let missing: Vec<String> = (1..=count.min(1000))
+            .filter(|i| !shard_indices.contains(i))
+            .take(10)
+            .map(|i| format!("{i}/{count}"))
+            .collect();
+        return Err(Error::setting(
+            "merge",
+            format!(
+                "the shards hold {} of the campaign's {expected} realizations (missing shards: {}); give every shard 1/{count} .. {count}/{count}",
+                records.len(),
+                if missing.is_empty() { "?".to_string() } else { missing.join(", ") }
+            ),
+        ));
     }
     state.shard = Shard::ALL;
     Ok(Outcome::new(
