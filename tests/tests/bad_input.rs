@@ -728,8 +728,10 @@ fn command_options_are_checked_before_any_work() {
             &["spectral-index"],
         ),
     );
-    let mut inj = ptacorr::inject::InjectSettings::default();
-    inj.common = given(10.0, 4.33);
+    let inj = ptacorr::inject::InjectSettings {
+        common: given(10.0, 4.33),
+        ..Default::default()
+    };
     t.add(
         "inject common 10",
         judge(
