@@ -48,7 +48,7 @@ pub struct InjectArgs {
     /// Correlation pattern of the injection and of the fit: hd, monopole or dipole.
     #[arg(long, value_enum, default_value = "hd")]
     pattern: PatternArg,
-    #[arg(long, default_value_t = 1)]
+    #[arg(long, default_value_t = 1, allow_negative_numbers = true, value_parser = crate::seed_arg)]
     seed: u64,
     /// Run shard I of N only (a contiguous block of realizations; I/N, 1-based).
     #[arg(long)]

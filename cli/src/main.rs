@@ -11,7 +11,6 @@ use ptacorr::bins::Binning;
 use ptacorr::orf::Pattern;
 use ptacorr::release::{read_release, Release};
 use ptacorr::scenario::{lay_out, Scenario};
-use ptacorr::simulate::simulate_scenario;
 use ptacorr::spectrum::PowerLaw;
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
@@ -31,6 +30,25 @@ mod null_cmd;
 struct Cli {
     #[command(subcommand)]
     command: Command,
+    /// Treat warnings about the data (an isolated TOA, duplicate rows, two pulsars on one
+    /// file, a null from another release) as errors.
+    #[arg(long, global = true)]
+    strict: bool,
+    /// Read releases whose residual or design-matrix paths leave the release folder.
+    #[arg(long, global = true)]
+    allow_outside_paths: bool,
+}
+
+/// Print a data warning to stderr (it is also recorded in the output's provenance).
+fn print_warning(w: &str) {
+    eprintln!("warning: {w}");
+}
+
+/// A seed: a whole number in 0..=2^64-1 (negative numbers reach here and get this message).
+pub fn seed_arg(s: &str) -> std::result::Result<u64, String> {
+    s.trim()
+        .parse::<u64>()
+        .map_err(|_| format!("a seed is a whole number from 0 to {}, got {s:?}", u64::MAX))
 }
 
 #[derive(Subcommand)]
@@ -40,7 +58,7 @@ enum Command {
         /// Folder for the simulated release and the analysis.
         #[arg(long, default_value = "ptacorr-demo")]
         out: PathBuf,
-        #[arg(long, default_value_t = 2026)]
+        #[arg(long, default_value_t = 2026, allow_negative_numbers = true, value_parser = seed_arg)]
         seed: u64,
     },
     /// Simulate an array from a scenario file and write it as a release.
@@ -48,8 +66,11 @@ enum Command {
         scenario: PathBuf,
         #[arg(long)]
         out: PathBuf,
-        #[arg(long)]
+        #[arg(long, allow_negative_numbers = true, value_parser = seed_arg)]
         seed: Option<u64>,
+        /// Replace the release already in --out, as a whole.
+        #[arg(long)]
+        replace_release: bool,
     },
     /// Cross-correlate every pair of pulsars of a release with the optimal statistic.
     Correlate {
@@ -141,6 +162,11 @@ impl AnalysisArgs {
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
+    ptacorr::release::set_default_read_options(ptacorr::release::ReadOptions {
+        allow_outside_paths: cli.allow_outside_paths,
+        strict: cli.strict,
+        on_warning: Some(print_warning),
+    });
     match run(cli) {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
@@ -160,11 +186,14 @@ fn run(cli: Cli) -> Result<()> {
             scenario,
             out,
             seed,
+            replace_release,
         } => {
             let s = Scenario::read(&scenario)?;
             let seed = s.seed(seed);
+            ptacorr::output::check_release_target(&out, replace_release)?;
             let layout = lay_out(&s, seed);
-            let pulsars = simulate_scenario(&layout, seed, &out)?;
+            let pulsars =
+                ptacorr::simulate::simulate_release(&layout, seed, &out, replace_release)?;
             let n: usize = pulsars.iter().map(|p| p.n_toa()).sum();
             println!(
                 "simulated {} pulsars, {} TOAs (seed {seed}) -> {}",

@@ -30,7 +30,7 @@ pub struct NullArgs {
     /// Number of trials N (over all shards).
     #[arg(long)]
     pub trials: u64,
-    #[arg(long, default_value_t = 1)]
+    #[arg(long, default_value_t = 1, allow_negative_numbers = true, value_parser = crate::seed_arg)]
     pub seed: u64,
     /// The correlation pattern whose OS is tested: hd, dipole or monopole.
     #[arg(long, value_enum, default_value = "hd")]

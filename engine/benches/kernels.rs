@@ -55,8 +55,8 @@ fn noise(dm: bool) -> PulsarNoise {
         white: vec![WhiteNoise {
             backend: "KRK-L".into(),
             efac: 1.05,
-            log10_equad: Some(-7.5),
-            log10_ecorr: Some(-7.3),
+            equad_log10_s: Some(-7.5),
+            ecorr_log10_s: Some(-7.3),
         }],
         red: Some(proc(-14.0, 3.0)),
         dm: dm.then(|| proc(-13.5, 2.5)),

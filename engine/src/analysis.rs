@@ -10,7 +10,7 @@ use crate::optimal::{
     PairCorrelations,
 };
 use crate::orf::{hellings_downs, Pattern};
-use crate::output::{fmt_f64, write_atomic, write_json};
+use crate::output::fmt_f64;
 use crate::reduce::{reduce_release, FrequencyGrid, Reduced};
 use crate::release::Release;
 use crate::spectrum::{template, PowerLaw};
@@ -84,9 +84,13 @@ impl CorrelateSettings {
                 format!("must be in (0, 10], got {}", self.spectral_index),
             ));
         }
-        if self.n_bins == 0 {
-            return Err(Error::setting("bins", "need at least one bin"));
+        if self.n_bins == 0 || self.n_bins > 10_000 {
+            return Err(Error::setting(
+                "bins",
+                format!("must be in 1..=10000, got {}", self.n_bins),
+            ));
         }
+        crate::noise::check_common_setting(&self.common)?;
         Ok(())
     }
 
@@ -202,6 +206,9 @@ pub struct Provenance {
     pub release_title: String,
     pub input_hash: String,
     pub settings: serde_json::Value,
+    /// Warnings about the release (release.rs `residual_warnings`); absent when none.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub warnings: Vec<String>,
 }
 
 impl Provenance {
@@ -213,6 +220,7 @@ impl Provenance {
             release_title: release.title.clone(),
             input_hash: release.input_hash.clone(),
             settings: serde_json::to_value(settings).unwrap_or(serde_json::Value::Null),
+            warnings: release.warnings.clone(),
         }
     }
 }
@@ -248,7 +256,7 @@ impl Correlation {
         self.reduced.iter().map(|r| r.flops).sum()
     }
 
-    /// Write summary.json, pairs.csv and bins.csv into `dir` (each file atomically).
+    /// Write summary.json, pairs.csv and bins.csv into `dir` as one output set (with manifest.json).
     pub fn write(&self, dir: &Path, release: &Release, settings: &CorrelateSettings) -> Result<()> {
         let provenance = Provenance::new(release, settings);
         let summary = Summary {
@@ -267,9 +275,12 @@ impl Correlation {
         };
         let pairs = self.pairs_csv();
         let bins = bins_csv(&self.bins);
-        write_json(&dir.join("summary.json"), &summary)?;
-        write_atomic(&dir.join("pairs.csv"), pairs.as_bytes())?;
-        write_atomic(&dir.join("bins.csv"), bins.as_bytes())
+        // One output set: all three files or none (output.rs).
+        let mut set = crate::output::OutputSet::begin(dir, "correlate")?;
+        set.write_json("summary.json", &summary)?;
+        set.write("pairs.csv", pairs.as_bytes())?;
+        set.write("bins.csv", bins.as_bytes())?;
+        set.commit().map(|_| ())
     }
 
     /// `pulsar_a,pulsar_b,angle_deg,rho,sigma,hd`.

@@ -32,6 +32,9 @@ pub enum Error {
     NonFinite { what: String },
 }
 
+/// Longest message of an input error, in characters.
+pub const MAX_MESSAGE_CHARS: usize = 600;
+
 /// Result type of the engine.
 pub type Result<T> = std::result::Result<T, Error>;
 
@@ -43,11 +46,13 @@ impl Error {
         field: Option<&str>,
         message: impl Into<String>,
     ) -> Self {
+        // A safety net under the quoting rule (at most ~80 characters of offending text
+        // per message, output.rs `quote`): no message grows without bound.
         Error::Input {
             path: path.to_path_buf(),
             line,
-            field: field.map(str::to_string),
-            message: message.into(),
+            field: field.map(|f| crate::output::truncate(f, 120)),
+            message: crate::output::truncate(&message.into(), MAX_MESSAGE_CHARS),
         }
     }
 
@@ -63,7 +68,7 @@ impl Error {
     pub fn setting(name: &str, message: impl Into<String>) -> Self {
         Error::Setting {
             name: name.to_string(),
-            message: message.into(),
+            message: crate::output::truncate(&message.into(), MAX_MESSAGE_CHARS),
         }
     }
 }

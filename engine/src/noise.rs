@@ -35,9 +35,9 @@ pub struct WhiteNoise {
     #[serde(default = "one")]
     pub efac: f64,
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub log10_equad: Option<f64>,
+    pub equad_log10_s: Option<f64>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub log10_ecorr: Option<f64>,
+    pub ecorr_log10_s: Option<f64>,
 }
 
 fn one() -> f64 {
@@ -47,11 +47,11 @@ fn one() -> f64 {
 impl WhiteNoise {
     /// EQUAD in seconds (0 when absent).
     pub fn equad(&self) -> f64 {
-        self.log10_equad.map_or(0.0, |l| 10f64.powf(l))
+        self.equad_log10_s.map_or(0.0, |l| 10f64.powf(l))
     }
     /// ECORR in seconds, if the backend has jitter.
     pub fn ecorr(&self) -> Option<f64> {
-        self.log10_ecorr.map(|l| 10f64.powf(l))
+        self.ecorr_log10_s.map(|l| 10f64.powf(l))
     }
 }
 
@@ -77,8 +77,8 @@ impl PulsarNoise {
             .unwrap_or(WhiteNoise {
                 backend: backend.to_string(),
                 efac: 1.0,
-                log10_equad: None,
-                log10_ecorr: None,
+                equad_log10_s: None,
+                ecorr_log10_s: None,
             })
     }
 }
@@ -118,23 +118,26 @@ impl NoiseModel {
             check_red(c, "common").map_err(|(f, m)| at(f, m))?;
         }
         for (label, p) in &self.pulsars {
+            check_label(label).map_err(|m| at(format!("pulsar.{label}"), m))?;
             for (i, w) in p.white.iter().enumerate() {
                 let field = format!("pulsar.{label}.white[{i}]");
-                if !(w.efac.is_finite() && w.efac > 0.0) {
+                let [elo, ehi] = EFAC_RANGE;
+                if !(w.efac.is_finite() && w.efac > elo && w.efac <= ehi) {
                     return Err(at(
                         format!("{field}.efac"),
-                        format!("EFAC must be a positive number, got {}", w.efac),
+                        format!("EFAC must be in ({elo}, {ehi}], got {}", w.efac),
                     ));
                 }
                 for (name, v) in [
-                    ("log10_equad", w.log10_equad),
-                    ("log10_ecorr", w.log10_ecorr),
+                    ("equad_log10_s", w.equad_log10_s),
+                    ("ecorr_log10_s", w.ecorr_log10_s),
                 ] {
                     if let Some(v) = v {
-                        if !v.is_finite() || v > 0.0 {
+                        let [lo, hi] = WHITE_LOG10_S_RANGE;
+                        if !(v.is_finite() && (lo..=hi).contains(&v)) {
                             return Err(at(
                                 format!("{field}.{name}"),
-                                format!("must be a finite log10 of seconds (<= 0), got {v}"),
+                                format!("must be a log10 of seconds in [{lo}, {hi}], got {v}"),
                             ));
                         }
                     }
@@ -156,27 +159,91 @@ impl NoiseModel {
     }
 }
 
+/// Allowed log10 amplitudes of red, DM and common power laws (dimensionless strain at
+/// 1/yr). Every amplitude seen or predicted for pulsar timing lies far inside; the bounds
+/// only catch typing errors (a sign dropped, a unit confused).
+pub const LOG10_AMPLITUDE_RANGE: [f64; 2] = [-20.0, -8.0];
+
+/// Allowed spectral indices gamma of a power law (open below, closed above).
+pub const SPECTRAL_INDEX_RANGE: [f64; 2] = [0.0, 10.0];
+
+/// Allowed log10 EQUAD and ECORR in seconds: 1e-10 s (0.1 ns) to 1e-3 s (1 ms).
+pub const WHITE_LOG10_S_RANGE: [f64; 2] = [-10.0, -3.0];
+
+/// Allowed EFAC (a multiplier of the stated uncertainties).
+pub const EFAC_RANGE: [f64; 2] = [0.0, 100.0];
+
+/// Most Fourier frequencies of any one process (each adds two columns to every pulsar's
+/// basis; 1000 frequencies over 20,000 TOAs is already 0.3 GB per pulsar).
+pub const MAX_FREQUENCIES: usize = 1000;
+
+/// Check a power law's amplitude and index; `Err((field suffix, message))`.
+pub fn check_power_law(
+    log10_amplitude: f64,
+    spectral_index: f64,
+) -> std::result::Result<(), (&'static str, String)> {
+    let [alo, ahi] = LOG10_AMPLITUDE_RANGE;
+    if !(log10_amplitude.is_finite() && (alo..=ahi).contains(&log10_amplitude)) {
+        return Err((
+            "log10_amplitude",
+            format!("must be a log10 amplitude in [{alo}, {ahi}], got {log10_amplitude}"),
+        ));
+    }
+    let [glo, ghi] = SPECTRAL_INDEX_RANGE;
+    if !(spectral_index.is_finite() && spectral_index > glo && spectral_index <= ghi) {
+        return Err((
+            "spectral_index",
+            format!("must be in ({glo}, {ghi}], got {spectral_index}"),
+        ));
+    }
+    Ok(())
+}
+
+/// Check a caller's common process (a command-line amplitude such as
+/// `--common-log10-amplitude`) against the physical ranges.
+pub fn check_common_setting(common: &crate::analysis::CommonAutoPower) -> Result<()> {
+    if let crate::analysis::CommonAutoPower::Given(p) = common {
+        check_power_law(p.log10_amplitude, p.spectral_index).map_err(|(f, m)| {
+            let name = if f == "log10_amplitude" {
+                "common-log10-amplitude"
+            } else {
+                "spectral-index"
+            };
+            Error::setting(name, m)
+        })?;
+    }
+    Ok(())
+}
+
+/// Check a label (pulsar or backend) is usable as a file name and a CSV cell: 1 to 64
+/// characters from letters, digits, `.`, `_`, `-`, `+`, not starting with `.`.
+pub fn check_label(label: &str) -> std::result::Result<(), String> {
+    let ok = !label.is_empty()
+        && label.chars().count() <= 64
+        && !label.starts_with('.')
+        && label
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || matches!(c, '.' | '_' | '-' | '+'));
+    if ok {
+        Ok(())
+    } else {
+        Err(format!(
+            "{} is not a usable label: 1 to 64 characters from letters, digits, '.', '_', '-', '+', not starting with '.'",
+            crate::output::quote(label)
+        ))
+    }
+}
+
 fn check_red(r: &RedProcess, field: &str) -> std::result::Result<(), (String, String)> {
-    if !r.log10_amplitude.is_finite() || r.log10_amplitude > 0.0 {
-        return Err((
-            format!("{field}.log10_amplitude"),
-            format!(
-                "must be a finite log10 amplitude (<= 0), got {}",
-                r.log10_amplitude
-            ),
-        ));
-    }
-    if !r.spectral_index.is_finite() || r.spectral_index <= 0.0 || r.spectral_index > 10.0 {
-        return Err((
-            format!("{field}.spectral_index"),
-            format!("must be in (0, 10], got {}", r.spectral_index),
-        ));
-    }
-    if r.n_frequencies == Some(0) {
-        return Err((
-            format!("{field}.n_frequencies"),
-            "must be at least 1".to_string(),
-        ));
+    check_power_law(r.log10_amplitude, r.spectral_index)
+        .map_err(|(f, m)| (format!("{field}.{f}"), m))?;
+    if let Some(n) = r.n_frequencies {
+        if n == 0 || n > MAX_FREQUENCIES {
+            return Err((
+                format!("{field}.n_frequencies"),
+                format!("must be in 1..={MAX_FREQUENCIES}, got {n}"),
+            ));
+        }
     }
     Ok(())
 }
@@ -257,7 +324,7 @@ log10_amplitude = -14.5
 spectral_index = 4.333333333333333
 
 [pulsar.P01]
-white = [{ backend = "KAR-L", efac = 1.1, log10_equad = -7.0, log10_ecorr = -6.5 }]
+white = [{ backend = "KAR-L", efac = 1.1, equad_log10_s = -7.0, ecorr_log10_s = -6.5 }]
 red = { log10_amplitude = -13.8, spectral_index = 3.0, n_frequencies = 30 }
 "#;
         let m = NoiseModel::parse(text, Path::new("noise.toml")).unwrap();

@@ -338,12 +338,21 @@ pub fn reduce_pulsar(
     grid: &FrequencyGrid,
     auto: AutoPower,
 ) -> Result<Reduced> {
+    if let Some(why) = overflow_row(p, noise) {
+        return Err(Error::NonFinite {
+            what: format!("the reduction of pulsar {}: {why}", p.label),
+        });
+    }
     let model = PulsarModel::build(p, noise, grid, auto)?;
     let x = model.reduce(&p.residual);
     let flops = model.flops() + 2.0 * p.n_toa() as f64 * model.wa.ncols() as f64;
     if x.iter().chain(model.z.iter()).any(|v| !v.is_finite()) {
         return Err(Error::NonFinite {
-            what: format!("the reduction of pulsar {}", p.label),
+            what: format!(
+                "the reduction of pulsar {}: {}",
+                p.label,
+                diagnose_non_finite(p, noise)
+            ),
         });
     }
     Ok(Reduced {
@@ -353,6 +362,47 @@ pub fn reduce_pulsar(
         z: model.z,
         flops,
     })
+}
+
+/// The TOA row most likely to have made a reduction non-finite, and why: a weight
+/// 1/(EFAC sigma)^2 or a whitened residual r/sigma, or a design-matrix entry, beyond the range
+/// where products of a few thousand terms stay finite in f64 (about 1e150, the square root of
+/// the largest f64 with margin).
+pub fn diagnose_non_finite(p: &Pulsar, noise: &PulsarNoise) -> String {
+    overflow_row(p, noise).unwrap_or_else(|| "no single TOA stands out; likely a noise parameter (EQUAD, ECORR, red amplitude) or a design-matrix column scale far from the others".to_string())
+}
+
+/// The first TOA row whose weight, whitened residual or design-matrix entry would overflow.
+fn overflow_row(p: &Pulsar, noise: &PulsarNoise) -> Option<String> {
+    const LIMIT: f64 = 1e150;
+    let efacs: Vec<f64> = p.backends.iter().map(|b| noise.white_for(b).efac).collect();
+    for i in 0..p.n_toa() {
+        let efac = efacs[p.backend[i]];
+        let s = efac * p.sigma[i];
+        let row = format!("TOA row {} (line {} of the residual table)", i + 1, i + 2);
+        if !(1.0 / (s * s)).is_finite() || 1.0 / (s * s) > LIMIT {
+            return Some(format!("{row}: sigma_s = {} makes the weight 1/sigma^2 overflow; likely a unit error in sigma_s", p.sigma[i]));
+        }
+        let w = p.residual[i] / s;
+        if !w.is_finite() || w.abs() > LIMIT {
+            return Some(format!("{row}: residual_s / sigma_s = {w:e} overflows; likely a unit error in residual_s or sigma_s"));
+        }
+        if let Some(d) = &p.design {
+            if let Some((k, v)) = d
+                .values
+                .row(i)
+                .iter()
+                .enumerate()
+                .find(|(_, v)| !v.is_finite() || v.abs() > LIMIT)
+            {
+                return Some(format!(
+                    "{row}: design-matrix column {} = {v:e} is too large; rescale that column",
+                    d.names[k]
+                ));
+            }
+        }
+    }
+    None
 }
 
 /// Reduce every pulsar of a release in parallel (one rayon task per pulsar).

@@ -59,6 +59,9 @@ pub struct Release {
     pub dir: PathBuf,
     /// `sha256:` hash over the names and bytes of every input file, in reading order.
     pub input_hash: String,
+    /// Things that look wrong but are legal (an isolated TOA, duplicate rows, two pulsars on
+    /// one file); recorded in the provenance of every output, errors with `strict`.
+    pub warnings: Vec<String>,
 }
 
 impl Release {
@@ -116,8 +119,164 @@ struct PulsarEntry {
 /// Smallest number of pulsars for a correlation analysis.
 pub const MIN_PULSARS: usize = 3;
 
+/// How a release is read.
+#[derive(Clone, Copy, Debug, Default)]
+pub struct ReadOptions {
+    /// Accept residual and design-matrix paths that leave the release folder (absolute, or
+    /// with `..`). Off by default: a release is one self-contained folder.
+    pub allow_outside_paths: bool,
+    /// Treat every warning as an error.
+    pub strict: bool,
+    /// Called with each warning as it is found (the command line prints them to stderr).
+    pub on_warning: Option<fn(&str)>,
+}
+
+static DEFAULT_OPTIONS: std::sync::RwLock<ReadOptions> = std::sync::RwLock::new(ReadOptions {
+    allow_outside_paths: false,
+    strict: false,
+    on_warning: None,
+});
+
+/// Set the options [`read_release`] uses (the command line sets them once from its global
+/// `--strict` and `--allow-outside-paths` flags).
+pub fn set_default_read_options(options: ReadOptions) {
+    if let Ok(mut o) = DEFAULT_OPTIONS.write() {
+        *o = options;
+    }
+}
+
+/// The options [`read_release`] uses.
+pub fn default_read_options() -> ReadOptions {
+    DEFAULT_OPTIONS.read().map(|o| *o).unwrap_or_default()
+}
+
+/// Report a warning found outside the release reader (for example a null threshold taken from
+/// another release) with the default options: an error under `strict`, else passed to
+/// `on_warning`. `path` is the file the warning is about.
+pub fn emit_warning(warning: &str, path: &Path) -> Result<()> {
+    let o = default_read_options();
+    if o.strict {
+        return Err(Error::input(
+            path,
+            None,
+            None,
+            format!("--strict turns warnings into errors: {warning}"),
+        ));
+    }
+    if let Some(f) = o.on_warning {
+        f(warning);
+    }
+    Ok(())
+}
+
+/// The input hash recorded in an output folder's JSON (`null.json`, `summary.json`), if any.
+pub fn recorded_input_hash(file: &Path) -> Option<String> {
+    let text = std::fs::read_to_string(file).ok()?;
+    let v: serde_json::Value = serde_json::from_str(&text).ok()?;
+    v.get("provenance")?
+        .get("input_hash")?
+        .as_str()
+        .map(str::to_string)
+}
+
+/// A TOA is "isolated" when the gap to its nearest neighbour at either end of a pulsar's
+/// TOAs exceeds both this many days and half the span of the other TOAs (common practice
+/// for catching a mistyped MJD, our choice of numbers).
+pub const ISOLATED_TOA_GAP_DAYS: f64 = 365.25;
+
+/// Warnings about one pulsar's residual table: an isolated first or last TOA, exact
+/// duplicate rows.
+pub fn residual_warnings(p: &Pulsar, path: &Path) -> Vec<String> {
+    let mut out = Vec::new();
+    let n = p.n_toa();
+    if n >= 3 {
+        let mut order: Vec<usize> = (0..n).collect();
+        order.sort_by(|&a, &b| p.mjd[a].total_cmp(&p.mjd[b]));
+        let t = |k: usize| p.mjd[order[k]];
+        let (first_gap, last_gap) = (t(1) - t(0), t(n - 1) - t(n - 2));
+        let rest_first = t(n - 1) - t(1);
+        let rest_last = t(n - 2) - t(0);
+        for (gap, rest, k, end) in [
+            (first_gap, rest_first, order[0], "first"),
+            (last_gap, rest_last, order[n - 1], "last"),
+        ] {
+            if gap > ISOLATED_TOA_GAP_DAYS && gap > 0.5 * rest {
+                out.push(format!(
+                    "{}: pulsar {}: the {end} TOA (MJD {}, data row {}) lies {:.0} days from the others, which span {:.0} days; a mistyped MJD stretches the array's span and the frequency ladder",
+                    path.display(),
+                    p.label,
+                    p.mjd[k],
+                    k + 1,
+                    gap,
+                    rest
+                ));
+            }
+        }
+    }
+    let mut rows: Vec<(u64, u64, u64, u64, usize, usize)> = (0..n)
+        .map(|i| {
+            (
+                p.mjd[i].to_bits(),
+                p.residual[i].to_bits(),
+                p.sigma[i].to_bits(),
+                p.freq_mhz[i].to_bits(),
+                p.backend[i],
+                i,
+            )
+        })
+        .collect();
+    rows.sort_unstable();
+    let dups: Vec<usize> = rows
+        .windows(2)
+        .filter(|w| {
+            (w[0].0, w[0].1, w[0].2, w[0].3, w[0].4) == (w[1].0, w[1].1, w[1].2, w[1].3, w[1].4)
+        })
+        .map(|w| w[1].5 + 1)
+        .collect();
+    if !dups.is_empty() {
+        let shown: Vec<String> = dups.iter().take(5).map(usize::to_string).collect();
+        out.push(format!(
+            "{}: pulsar {}: {} exact duplicate row(s) (data rows {}{}); each counts as an independent TOA",
+            path.display(),
+            p.label,
+            dups.len(),
+            shown.join(", "),
+            if dups.len() > 5 { ", ..." } else { "" }
+        ));
+    }
+    out
+}
+
+/// Check a path given in release.toml stays inside the release folder (relative, no `..`),
+/// unless `allow` is set.
+pub fn check_inside(rel: &str, allow: bool) -> std::result::Result<(), String> {
+    if allow {
+        return Ok(());
+    }
+    let p = Path::new(rel);
+    let leaves = p.is_absolute()
+        || p.components().any(|c| {
+            !matches!(
+                c,
+                std::path::Component::Normal(_) | std::path::Component::CurDir
+            )
+        });
+    if rel.is_empty() || leaves {
+        return Err(format!(
+            "{} points outside the release folder; give a path relative to it without '..', or read the release with the option that allows outside paths",
+            crate::output::quote(rel)
+        ));
+    }
+    Ok(())
+}
+
 /// Read a release folder (or a path to its `release.toml`).
 pub fn read_release(path: &Path) -> Result<Release> {
+    read_release_with(path, default_read_options())
+}
+
+/// Read a release folder with options.
+pub fn read_release_with(path: &Path, options: ReadOptions) -> Result<Release> {
     let (dir, toml_path) = if path.is_dir() {
         (path.to_path_buf(), path.join("release.toml"))
     } else {
@@ -129,6 +288,26 @@ pub fn read_release(path: &Path) -> Result<Release> {
     let mut hasher = Sha256::new();
     let text = read_text(&toml_path, &mut hasher, "release.toml")?;
     let file: ReleaseFile = toml::from_str(&text).map_err(|e| toml_error(&toml_path, &text, &e))?;
+    // Labels and paths are checked for every entry before any residual file is opened.
+    for (i, spanned) in file.pulsar.iter().enumerate() {
+        let line = Some(line_of(&text, spanned.span().start));
+        let e = spanned.get_ref();
+        crate::noise::check_label(e.label.trim())
+            .map_err(|m| Error::input(&toml_path, line, Some(&format!("pulsar[{i}].label")), m))?;
+        check_inside(&e.residuals, options.allow_outside_paths).map_err(|m| {
+            Error::input(&toml_path, line, Some(&format!("pulsar[{i}].residuals")), m)
+        })?;
+        if let Some(d) = &e.design_matrix {
+            check_inside(d, options.allow_outside_paths).map_err(|m| {
+                Error::input(
+                    &toml_path,
+                    line,
+                    Some(&format!("pulsar[{i}].design_matrix")),
+                    m,
+                )
+            })?;
+        }
+    }
     if file.pulsar.len() < MIN_PULSARS {
         return Err(Error::input(
             &toml_path,
@@ -204,6 +383,47 @@ pub fn read_release(path: &Path) -> Result<Release> {
             pulsars.push(p);
         }
     }
+    let mut warnings = Vec::new();
+    for (spanned, p) in file.pulsar.iter().zip(&pulsars) {
+        warnings.extend(residual_warnings(
+            p,
+            &dir.join(&spanned.get_ref().residuals),
+        ));
+    }
+    for (i, a) in file.pulsar.iter().enumerate() {
+        for b in &file.pulsar[..i] {
+            let (pa, pb) = (
+                dir.join(&a.get_ref().residuals),
+                dir.join(&b.get_ref().residuals),
+            );
+            let same = pa == pb
+                || matches!((pa.canonicalize(), pb.canonicalize()), (Ok(x), Ok(y)) if x == y);
+            if same {
+                warnings.push(format!(
+                    "{}: pulsars {} and {} read the same residual file {}",
+                    toml_path.display(),
+                    b.get_ref().label.trim(),
+                    a.get_ref().label.trim(),
+                    pa.display()
+                ));
+            }
+        }
+    }
+    for w in &warnings {
+        if let Some(f) = options.on_warning {
+            f(w);
+        }
+    }
+    if options.strict {
+        if let Some(w) = warnings.first() {
+            return Err(Error::input(
+                &toml_path,
+                None,
+                None,
+                format!("--strict turns warnings into errors: {w}"),
+            ));
+        }
+    }
     let noise_path = dir.join("noise.toml");
     let noise = if noise_path.exists() {
         let t = read_text(&noise_path, &mut hasher, "noise.toml")?;
@@ -219,6 +439,7 @@ pub fn read_release(path: &Path) -> Result<Release> {
         noise,
         dir,
         input_hash: format!("sha256:{:x}", hasher.finalize()),
+        warnings,
     })
 }
 
@@ -310,7 +531,10 @@ fn read_bytes(path: &Path, hasher: &mut Sha256, name: &str) -> Result<Vec<u8>> {
 
 fn read_text(path: &Path, hasher: &mut Sha256, name: &str) -> Result<String> {
     let bytes = read_bytes(path, hasher, name)?;
-    String::from_utf8(bytes).map_err(|_| Error::input(path, None, None, "is not UTF-8 text"))
+    String::from_utf8(bytes).map_err(|e| {
+        let m = crate::output::non_utf8_message(e.as_bytes(), &e.utf8_error());
+        Error::input(path, None, None, m)
+    })
 }
 
 /// Read one residual table (`mjd,residual_s,sigma_s,freq_mhz,backend`).
@@ -338,7 +562,7 @@ fn parse_residuals(path: &Path, label: &str, bytes: &[u8]) -> Result<Pulsar> {
             format!(
                 "header must be exactly `{}`, found `{}`",
                 RESIDUAL_COLUMNS.join(","),
-                names.join(",")
+                crate::output::truncate(&names.join(","), crate::output::QUOTE_CHARS)
             ),
         ));
     }
@@ -402,7 +626,14 @@ fn parse_residuals(path: &Path, label: &str, bytes: &[u8]) -> Result<Pulsar> {
                 format!("{mjd} is not a plausible MJD"),
             ));
         }
-        let b = std::str::from_utf8(&rec[4]).unwrap_or("");
+        let b = std::str::from_utf8(&rec[4]).map_err(|_| {
+            Error::input(
+                path,
+                line,
+                Some("backend"),
+                "holds bytes that are not UTF-8; save the file as UTF-8",
+            )
+        })?;
         if b.is_empty() {
             return Err(Error::input(
                 path,
@@ -436,7 +667,18 @@ fn parse_residuals(path: &Path, label: &str, bytes: &[u8]) -> Result<Pulsar> {
 }
 
 fn parse_number(field: &[u8], path: &Path, line: Option<usize>, name: &str) -> Result<f64> {
-    let text = std::str::from_utf8(field).unwrap_or("");
+    let text = std::str::from_utf8(field).map_err(|e| {
+        Error::input(
+            path,
+            line,
+            Some(name),
+            format!(
+                "holds bytes that are not UTF-8 (byte 0x{:02x} at position {} of the field); save the file as UTF-8",
+                field.get(e.valid_up_to()).copied().unwrap_or(0),
+                e.valid_up_to() + 1
+            ),
+        )
+    })?;
     match text.parse::<f64>() {
         Ok(v) if v.is_finite() => Ok(v),
         Ok(v) => Err(Error::input(
@@ -449,7 +691,7 @@ fn parse_number(field: &[u8], path: &Path, line: Option<usize>, name: &str) -> R
             path,
             line,
             Some(name),
-            format!("\"{text}\" is not a number"),
+            format!("{} is not a number", crate::output::quote(text)),
         )),
     }
 }

@@ -93,10 +93,10 @@ pub struct WhiteSpec {
     pub efac: [f64; 2],
     /// Range of log10 EQUAD (s) per (pulsar, backend), uniform; none if absent.
     #[serde(default)]
-    pub log10_equad: Option<[f64; 2]>,
+    pub equad_log10_s: Option<[f64; 2]>,
     /// Range of log10 ECORR (s) per (pulsar, backend), uniform; none if absent.
     #[serde(default)]
-    pub log10_ecorr: Option<[f64; 2]>,
+    pub ecorr_log10_s: Option<[f64; 2]>,
 }
 
 fn unit_range() -> [f64; 2] {
@@ -315,6 +315,7 @@ impl Scenario {
                 "n_frequencies and span_factor must be at least 1".into(),
             ));
         }
+        check_ranges(&s).map_err(|(f, m)| bad(&f, m))?;
         Ok(s)
     }
 
@@ -322,6 +323,180 @@ impl Scenario {
     pub fn seed(&self, cli: Option<u64>) -> u64 {
         cli.or(self.array.seed).unwrap_or(1)
     }
+}
+
+/// Most pulsars in a scenario.
+pub const MAX_PULSARS: usize = 10_000;
+
+/// Most simulated TOAs of a whole scenario (about 100 bytes each while simulating and
+/// writing, so 10 GB at the limit).
+pub const MAX_TOAS: f64 = 1.0e8;
+
+/// Most residual-domain simulation frequencies (n_frequencies x span_factor).
+pub const MAX_SIMULATION_FREQUENCIES: usize = 4000;
+
+/// The checks of `Scenario::parse` beyond the first structural ones: every number finite and
+/// inside a physical range, every label safe, and the size within reach of memory.
+fn check_ranges(s: &Scenario) -> std::result::Result<(), (String, String)> {
+    use crate::noise::{
+        check_label, check_power_law, EFAC_RANGE, LOG10_AMPLITUDE_RANGE, WHITE_LOG10_S_RANGE,
+    };
+    let err = |f: &str, m: String| Err((f.to_string(), m));
+    let a = &s.array;
+    if let Some(n) = a.n_pulsars {
+        if n > MAX_PULSARS {
+            return err(
+                "array.n_pulsars",
+                format!("must be in 3..={MAX_PULSARS}, got {n}"),
+            );
+        }
+    }
+    if s.pulsars.len() > MAX_PULSARS {
+        return err(
+            "pulsar",
+            format!("at most {MAX_PULSARS} pulsars, got {}", s.pulsars.len()),
+        );
+    }
+    if !(a.start_mjd < 9.0e5 && a.start_mjd + a.span_years * 365.25 < 1.0e6) {
+        return err(
+            "array.start_mjd",
+            format!(
+                "{} is not a plausible MJD (the release reader takes MJDs below 1e6)",
+                a.start_mjd
+            ),
+        );
+    }
+    for (i, p) in s.pulsars.iter().enumerate() {
+        check_label(&p.label).map_err(|m| (format!("pulsar[{i}].label"), m))?;
+        if s.pulsars[..i].iter().any(|o| o.label == p.label) {
+            return err(
+                &format!("pulsar[{i}].label"),
+                format!("label {} is used twice", p.label),
+            );
+        }
+        if !(p.ra_deg.is_finite() && (0.0..360.0).contains(&p.ra_deg)) {
+            return err(
+                &format!("pulsar[{i}].ra_deg"),
+                format!("{} is outside [0, 360) deg", p.ra_deg),
+            );
+        }
+        if !(p.dec_deg.is_finite() && (-90.0..=90.0).contains(&p.dec_deg)) {
+            return err(
+                &format!("pulsar[{i}].dec_deg"),
+                format!("{} is outside [-90, 90] deg", p.dec_deg),
+            );
+        }
+    }
+    for (i, b) in s.backends.iter().enumerate() {
+        check_label(&b.name).map_err(|m| (format!("backend[{i}].name"), m))?;
+        if s.backends[..i].iter().any(|o| o.name == b.name) {
+            return err(
+                &format!("backend[{i}].name"),
+                format!("backend {} is given twice", b.name),
+            );
+        }
+        if b.freq_mhz.len() > 64 || b.freq_mhz.iter().any(|f| *f > 1.0e5) {
+            return err(
+                &format!("backend[{i}].freq_mhz"),
+                "give at most 64 channels between 10 and 100000 MHz".into(),
+            );
+        }
+        if !b.share.is_finite() {
+            return err(&format!("backend[{i}].share"), "must be in [0, 1]".into());
+        }
+    }
+    let range = |f: &str, r: [f64; 2], lo: f64, hi: f64, open_lo: bool| {
+        let in_range = |x: f64| x.is_finite() && x <= hi && if open_lo { x > lo } else { x >= lo };
+        if in_range(r[0]) && in_range(r[1]) && r[0] <= r[1] {
+            Ok(())
+        } else {
+            let open = if open_lo { "(" } else { "[" };
+            Err((
+                f.to_string(),
+                format!(
+                    "must be [low, high] with low <= high, both finite in {open}{lo}, {hi}], got [{}, {}]",
+                    r[0], r[1]
+                ),
+            ))
+        }
+    };
+    let w = &s.white;
+    range("white.sigma_us", w.sigma_us, 0.0, 1.0e4, true)?;
+    range("white.efac", w.efac, EFAC_RANGE[0], EFAC_RANGE[1], true)?;
+    let [wlo, whi] = WHITE_LOG10_S_RANGE;
+    if let Some(q) = w.equad_log10_s {
+        range("white.equad_log10_s", q, wlo, whi, false)?;
+    }
+    if let Some(q) = w.ecorr_log10_s {
+        range("white.ecorr_log10_s", q, wlo, whi, false)?;
+    }
+    if !(w.sigma_scatter_dex.is_finite() && (0.0..=1.0).contains(&w.sigma_scatter_dex)) {
+        return err(
+            "white.sigma_scatter_dex",
+            format!("must be in [0, 1] dex, got {}", w.sigma_scatter_dex),
+        );
+    }
+    let [alo, ahi] = LOG10_AMPLITUDE_RANGE;
+    for (name, r) in [("red", &s.red), ("dm", &s.dm)] {
+        if let Some(r) = r {
+            if !r.share.is_finite() {
+                return err(&format!("{name}.share"), "must be in [0, 1]".into());
+            }
+            range(
+                &format!("{name}.log10_amplitude"),
+                r.log10_amplitude,
+                alo,
+                ahi,
+                false,
+            )?;
+            range(
+                &format!("{name}.spectral_index"),
+                r.spectral_index,
+                0.0,
+                10.0,
+                true,
+            )?;
+        }
+    }
+    if let Some(b) = &s.background {
+        check_power_law(b.log10_amplitude, b.spectral_index)
+            .map_err(|(f, m)| (format!("background.{f}"), m))?;
+    }
+    let sim = &s.simulation;
+    if sim.n_frequencies.saturating_mul(sim.span_factor) > MAX_SIMULATION_FREQUENCIES {
+        return err(
+            "simulation.n_frequencies",
+            format!(
+                "n_frequencies x span_factor must be at most {MAX_SIMULATION_FREQUENCIES}, got {} x {}",
+                sim.n_frequencies, sim.span_factor
+            ),
+        );
+    }
+    // Size: every pulsar observed by every backend is an upper bound on the TOAs.
+    let n = if s.pulsars.is_empty() {
+        a.n_pulsars.unwrap_or(0)
+    } else {
+        s.pulsars.len()
+    } as f64;
+    let per_pulsar: f64 = s
+        .backends
+        .iter()
+        .map(|b| {
+            let [lo, hi] = b.active.unwrap_or([0.0, 1.0]);
+            (hi - lo) * a.span_years * 365.25 / (0.75 * a.cadence_days) * b.freq_mhz.len() as f64
+        })
+        .sum();
+    let toas = n * per_pulsar;
+    if toas > MAX_TOAS {
+        return err(
+            "array.n_pulsars",
+            format!(
+                "the array would hold up to {toas:.3e} TOAs (about {:.0} GB to simulate and write); the limit is {MAX_TOAS:.0e}: fewer pulsars, channels or a longer cadence",
+                toas * 100.0 / 1e9
+            ),
+        );
+    }
+    Ok(())
 }
 
 /// A laid-out array: pulsars with TOAs (residuals still zero) and their true noise model.
@@ -407,8 +582,8 @@ pub fn lay_out(s: &Scenario, seed: u64) -> Layout {
             pn.white.push(WhiteNoise {
                 backend: spec.name.clone(),
                 efac: round6(efac),
-                log10_equad: s.white.log10_equad.map(|q| round6(uniform(&mut r, q))),
-                log10_ecorr: s.white.log10_ecorr.map(|q| round6(uniform(&mut r, q))),
+                equad_log10_s: s.white.equad_log10_s.map(|q| round6(uniform(&mut r, q))),
+                ecorr_log10_s: s.white.ecorr_log10_s.map(|q| round6(uniform(&mut r, q))),
             });
         }
         // Make sure the span of the whole array is exactly the scenario's.

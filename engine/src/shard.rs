@@ -6,6 +6,9 @@ use crate::error::{Error, Result};
 use serde::{Deserialize, Serialize};
 use std::ops::Range;
 
+/// Most shards a campaign may be split into.
+pub const MAX_SHARDS: u64 = 1_000_000;
+
 /// Shard `index` (1-based) of `count`.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 pub struct Shard {
@@ -31,7 +34,32 @@ impl Shard {
         if index == 0 || count == 0 || index > count {
             return Err(bad());
         }
+        if count > MAX_SHARDS {
+            return Err(Error::setting(
+                "shard",
+                format!("at most {MAX_SHARDS} shards, got {count}"),
+            ));
+        }
         Ok(Shard { index, count })
+    }
+
+    /// Check a shard read back from a file against its campaign of `total` trials or
+    /// realizations: 1 <= I <= N <= min(total, MAX_SHARDS). The message gives the allowed range.
+    pub fn check(&self, total: u64) -> std::result::Result<(), String> {
+        let max = total.clamp(1, MAX_SHARDS);
+        if self.count == 0 || self.count > max {
+            return Err(format!(
+                "shard count {} is outside 1..={max} (at most one shard per trial, at most {MAX_SHARDS})",
+                self.count
+            ));
+        }
+        if self.index == 0 || self.index > self.count {
+            return Err(format!(
+                "shard index {} is outside 1..={}",
+                self.index, self.count
+            ));
+        }
+        Ok(())
     }
 
     /// The global indices of this shard out of `total`: [floor((I-1) n / N), floor(I n / N)).

@@ -238,6 +238,9 @@ pub fn write_release(
     noise: &NoiseModel,
     truth: Option<(&Layout, u64)>,
 ) -> Result<()> {
+    for p in pulsars {
+        crate::noise::check_label(&p.label).map_err(|m| Error::setting("pulsar label", m))?;
+    }
     let mut rel = String::new();
     let _ = writeln!(rel, "[release]\ntitle = {}\n", toml_string(title));
     for p in pulsars {
@@ -309,8 +312,42 @@ fn toml_string(s: &str) -> String {
     toml::Value::String(s.to_string()).to_string()
 }
 
-/// Simulate a scenario's array and write it as a release.
+/// Simulate a scenario's array and write it as a release, replacing a release already in
+/// `dir` (library callers; the command line asks first, see [`simulate_release`]).
 pub fn simulate_scenario(layout: &Layout, seed: u64, dir: &Path) -> Result<Vec<Pulsar>> {
+    simulate_release(layout, seed, dir, true)
+}
+
+/// Simulate a scenario's array and write it as a release in `dir`, as a whole: the release is
+/// written into a hidden sibling folder and moved into place only when every file is written.
+/// A folder already holding a release is replaced only with `replace`; a non-empty folder that
+/// is not a release is never touched. A failure leaves `dir` as it was.
+pub fn simulate_release(
+    layout: &Layout,
+    seed: u64,
+    dir: &Path,
+    replace: bool,
+) -> Result<Vec<Pulsar>> {
+    crate::output::check_release_target(dir, replace)?;
+    for p in &layout.pulsars {
+        if p.n_toa() < 8 {
+            return Err(Error::setting(
+                "scenario",
+                format!(
+                    "pulsar {} would have {} TOAs, too few for a release (its backends' active ranges or the cadence leave it almost unobserved)",
+                    p.label,
+                    p.n_toa()
+                ),
+            ));
+        }
+    }
+    let staging = crate::output::SiblingStaging::new(dir)?;
+    let pulsars = simulate_scenario_into(layout, seed, staging.path())?;
+    staging.replace(dir, replace)?;
+    Ok(pulsars)
+}
+
+fn simulate_scenario_into(layout: &Layout, seed: u64, dir: &Path) -> Result<Vec<Pulsar>> {
     let (lo, hi) = layout
         .pulsars
         .iter()

@@ -202,8 +202,8 @@ def main(argv=None):
             items = []
             for b, (ef, leq, lec) in white[label].items():
                 s = f'{{ backend = "{b}", efac = {ef!r}'
-                s += "" if leq is None else f", log10_equad = {leq!r}"
-                s += "" if lec is None else f", log10_ecorr = {lec!r}"
+                s += "" if leq is None else f", equad_log10_s = {leq!r}"
+                s += "" if lec is None else f", ecorr_log10_s = {lec!r}"
                 items.append(s + " }")
             nz.append("white = [\n  " + ",\n  ".join(items) + ",\n]")
         for name, table in (("red", red), ("dm", dm)):

@@ -67,8 +67,8 @@ class Pulsar:
 @dataclass
 class WhiteNoise:
     efac: float = 1.0
-    log10_equad: float | None = None
-    log10_ecorr: float | None = None
+    equad_log10_s: float | None = None
+    ecorr_log10_s: float | None = None
 
 
 @dataclass
@@ -242,8 +242,8 @@ def read_noise(release_dir: Path):
                 raise ReleaseError(f"{path} [pulsar.{label}] white: entry without backend")
             pn.white[w["backend"]] = WhiteNoise(
                 float(w.get("efac", 1.0)),
-                None if "log10_equad" not in w else float(w["log10_equad"]),
-                None if "log10_ecorr" not in w else float(w["log10_ecorr"]))
+                None if "equad_log10_s" not in w else float(w["equad_log10_s"]),
+                None if "ecorr_log10_s" not in w else float(w["ecorr_log10_s"]))
         if "red" in table:
             pn.red = _power_law(table["red"], f"{path} [pulsar.{label}] red")
         if "dm" in table:
@@ -296,7 +296,7 @@ def ecorr_basis(psr: Pulsar, t: np.ndarray, white: dict[str, WhiteNoise]):
     columns, prior = [], []
     for name in sorted(set(psr.backend)):
         w = white.get(name)
-        if w is None or w.log10_ecorr is None:
+        if w is None or w.ecorr_log10_s is None:
             continue
         idx = np.flatnonzero(backends == name)
         idx = idx[np.argsort(t[idx], kind="stable")]
@@ -306,7 +306,7 @@ def ecorr_basis(psr: Pulsar, t: np.ndarray, white: dict[str, WhiteNoise]):
             col = np.zeros(t.size)
             col[idx[epoch_of == e]] = 1.0
             columns.append(col)
-            prior.append((10.0 ** w.log10_ecorr) ** 2)
+            prior.append((10.0 ** w.ecorr_log10_s) ** 2)
     if not columns:
         return np.zeros((t.size, 0)), np.zeros(0)
     return np.column_stack(columns), np.array(prior)
@@ -341,8 +341,8 @@ def pulsar_model(psr: Pulsar, pn: PulsarNoise, st: Settings) -> PulsarModel:
 
     # White noise: N_ii = (EFAC_b sigma_i)^2 + EQUAD_b^2.
     efac = np.array([pn.white.get(b, WhiteNoise()).efac for b in psr.backend])
-    equad2 = np.array([0.0 if pn.white.get(b, WhiteNoise()).log10_equad is None
-                       else (10.0 ** pn.white[b].log10_equad) ** 2 for b in psr.backend])
+    equad2 = np.array([0.0 if pn.white.get(b, WhiteNoise()).equad_log10_s is None
+                       else (10.0 ** pn.white[b].equad_log10_s) ** 2 for b in psr.backend])
     white_variance = (efac * psr.sigma) ** 2 + equad2
 
     blocks = []

@@ -215,7 +215,7 @@ fn malformed_noise_files() {
                 format!("{}efac = -2.0{}", &t[..i], &t[j..])
             })
         },
-        &["noise.toml line", "efac", "EFAC must be a positive number"],
+        &["noise.toml line", "efac", "EFAC must be in (0, 100]"],
     );
 }
 
@@ -241,4 +241,729 @@ fn degenerate_timing_model_is_reported_as_not_positive_definite() {
     assert!(matches!(err, Error::NotPositiveDefinite { .. }), "{err}");
     assert!(err.to_string().contains("pulsar P01"), "{err}");
     fs::remove_dir_all(&dir).ok();
+}
+
+// ---------------------------------------------------------------------------------------------
+// The table-driven campaign: every class of bad input (scenario, noise model, release, options,
+// output folder, shards) for every reader and command, each classified as a clear error (the
+// message names what it should), an unclear error, a panic, or a silent accept. The tally is
+// printed (`cargo test -- --nocapture`) and every case must be a clear error.
+
+use ptacorr::analysis::CommonAutoPower;
+use ptacorr::noise::NoiseModel;
+use ptacorr::null::{self, Control, Method, NullSettings};
+use ptacorr::output::{check_manifest, OutputSet};
+use ptacorr::release::{read_release_with, ReadOptions};
+use ptacorr::scenario::Scenario;
+use ptacorr::shard::Shard;
+use ptacorr::spectrum::PowerLaw;
+use std::panic::{catch_unwind, AssertUnwindSafe};
+
+#[derive(Debug, PartialEq)]
+enum Verdict {
+    Clear,
+    Unclear(String),
+    Panic,
+    Accepted,
+}
+
+/// Run one case: `Err` whose message holds every `expect` is clear; no message may quote
+/// more than about 80 characters of input, so messages longer than 700 characters are unclear.
+fn judge<T>(f: impl FnOnce() -> Result<T, String>, expect: &[&str]) -> Verdict {
+    match catch_unwind(AssertUnwindSafe(f)) {
+        Err(_) => Verdict::Panic,
+        Ok(Ok(_)) => Verdict::Accepted,
+        Ok(Err(m)) if m.len() <= 700 && expect.iter().all(|e| m.contains(e)) => Verdict::Clear,
+        Ok(Err(m)) => Verdict::Unclear(m.chars().take(300).collect()),
+    }
+}
+
+struct Tally(Vec<(String, Verdict)>);
+
+impl Tally {
+    fn add(&mut self, name: &str, v: Verdict) {
+        self.0.push((name.to_string(), v));
+    }
+    fn finish(self, what: &str) {
+        let count = |p: fn(&Verdict) -> bool| self.0.iter().filter(|(_, v)| p(v)).count();
+        println!(
+            "{what}: {} cases, {} clear errors, {} unclear, {} panics, {} silent accepts",
+            self.0.len(),
+            count(|v| *v == Verdict::Clear),
+            count(|v| matches!(v, Verdict::Unclear(_))),
+            count(|v| *v == Verdict::Panic),
+            count(|v| *v == Verdict::Accepted)
+        );
+        let bad: Vec<_> = self
+            .0
+            .iter()
+            .filter(|(_, v)| *v != Verdict::Clear)
+            .collect();
+        assert!(bad.is_empty(), "{what}: {bad:#?}");
+    }
+}
+
+const SCENARIO: &str = r#"
+[array]
+title = "Bad-input array (fictional)"
+n_pulsars = 4
+start_mjd = 56000.0
+span_years = 3.0
+cadence_days = 30.0
+
+[[backend]]
+name = "KRK-L"
+observatory = "Karsk"
+freq_mhz = [1400.0]
+
+[white]
+sigma_us = [0.5, 1.0]
+efac = [1.0, 1.1]
+
+[red]
+share = 0.5
+log10_amplitude = [-14.0, -13.0]
+spectral_index = [2.0, 4.0]
+"#;
+
+#[test]
+fn scenario_settings_are_checked_before_any_work() {
+    let path = Path::new("bad.toml");
+    let run = |text: String| move || Scenario::parse(&text, path).map_err(|e| e.to_string());
+    let with = |a: &str, b: &str| SCENARIO.replace(a, b);
+    let pulsars = |label: &str| {
+        with("n_pulsars = 4\n", "")
+            + &(0..3)
+                .map(|i| {
+                    let l = if i == 0 {
+                        label.to_string()
+                    } else {
+                        format!("P{i}")
+                    };
+                    format!(
+                        "\n[[pulsar]]\nlabel = {l:?}\nra_deg = {}.0\ndec_deg = 0.0\n",
+                        10 * i
+                    )
+                })
+                .collect::<String>()
+    };
+    let cases: Vec<(&str, String, Vec<&str>)> = vec![
+        (
+            "efac inf",
+            with("efac = [1.0, 1.1]", "efac = [0.9, inf]"),
+            vec!["bad.toml", "white.efac", "(0, 100]"],
+        ),
+        (
+            "efac nan",
+            with("efac = [1.0, 1.1]", "efac = [nan, 1.0]"),
+            vec!["white.efac"],
+        ),
+        (
+            "sigma inf",
+            with("sigma_us = [0.5, 1.0]", "sigma_us = [0.5, inf]"),
+            vec!["white.sigma_us"],
+        ),
+        (
+            "scatter 1000",
+            with(
+                "efac = [1.0, 1.1]",
+                "efac = [1.0, 1.1]\nsigma_scatter_dex = 1000.0",
+            ),
+            vec!["white.sigma_scatter_dex", "[0, 1]"],
+        ),
+        (
+            "scatter nan",
+            with(
+                "efac = [1.0, 1.1]",
+                "efac = [1.0, 1.1]\nsigma_scatter_dex = nan",
+            ),
+            vec!["white.sigma_scatter_dex"],
+        ),
+        (
+            "equad positive",
+            with(
+                "efac = [1.0, 1.1]",
+                "efac = [1.0, 1.1]\nequad_log10_s = [-7.0, 2.0]",
+            ),
+            vec!["white.equad_log10_s", "[-10, -3]"],
+        ),
+        (
+            "ecorr inf",
+            with(
+                "efac = [1.0, 1.1]",
+                "efac = [1.0, 1.1]\necorr_log10_s = [-inf, -7.0]",
+            ),
+            vec!["white.ecorr_log10_s"],
+        ),
+        (
+            "n_pulsars 1e8",
+            with("n_pulsars = 4", "n_pulsars = 100000000"),
+            vec!["array.n_pulsars", "10000"],
+        ),
+        (
+            "too many toas",
+            with("n_pulsars = 4", "n_pulsars = 9000")
+                .replace("cadence_days = 30.0", "cadence_days = 1.0")
+                .replace(
+                    "[1400.0]",
+                    "[1400.0, 1500.0, 1600.0, 1700.0, 1800.0, 1900.0, 2000.0, 2100.0]",
+                ),
+            vec!["array.n_pulsars", "GB"],
+        ),
+        (
+            "red amplitude 10",
+            with(
+                "log10_amplitude = [-14.0, -13.0]",
+                "log10_amplitude = [-14.0, 10.0]",
+            ),
+            vec!["red.log10_amplitude", "[-20, -8]"],
+        ),
+        (
+            "red index nan",
+            with("spectral_index = [2.0, 4.0]", "spectral_index = [nan, 4.0]"),
+            vec!["red.spectral_index"],
+        ),
+        (
+            "background 10",
+            SCENARIO.to_string() + "\n[background]\nlog10_amplitude = 10.0\n",
+            vec!["background.log10_amplitude"],
+        ),
+        (
+            "background index inf",
+            SCENARIO.to_string()
+                + "\n[background]\nlog10_amplitude = -14.0\nspectral_index = inf\n",
+            vec!["background.spectral_index"],
+        ),
+        (
+            "simulation 1e5",
+            SCENARIO.to_string() + "\n[simulation]\nn_frequencies = 100000\n",
+            vec!["simulation.n_frequencies", "4000"],
+        ),
+        (
+            "label escape",
+            pulsars("../../escape"),
+            vec!["pulsar[0].label", "not a usable label"],
+        ),
+        (
+            "label absolute",
+            pulsars("/tmp/abs"),
+            vec!["pulsar[0].label"],
+        ),
+        ("label comma", pulsars("P,1"), vec!["pulsar[0].label"]),
+        ("label empty", pulsars(""), vec!["pulsar[0].label"]),
+        (
+            "ra inf",
+            pulsars("P9").replacen("ra_deg = 0.0", "ra_deg = inf", 1),
+            vec!["pulsar[0].ra_deg"],
+        ),
+        (
+            "backend name",
+            with("name = \"KRK-L\"", "name = \"KRK L/../x\""),
+            vec!["backend[0].name"],
+        ),
+        (
+            "start mjd huge",
+            with("start_mjd = 56000.0", "start_mjd = 999999.0"),
+            vec!["array.start_mjd"],
+        ),
+        (
+            "freq huge",
+            with("[1400.0]", "[1e9]"),
+            vec!["backend[0].freq_mhz"],
+        ),
+    ];
+    let mut t = Tally(Vec::new());
+    for (name, text, expect) in cases {
+        t.add(name, judge(run(text), &expect));
+    }
+    t.finish("scenario");
+}
+
+#[test]
+fn noise_model_settings_are_checked_before_any_work() {
+    let path = Path::new("noise.toml");
+    let good = "[common]\nlog10_amplitude = -14.5\nspectral_index = 4.33\n\n[pulsar.P01]\nwhite = [{ backend = \"KRK-L\", efac = 1.1, equad_log10_s = -7.0 }]\nred = { log10_amplitude = -13.8, spectral_index = 3.0, n_frequencies = 30 }\n";
+    NoiseModel::parse(good, path).unwrap();
+    let with = |a: &str, b: &str| good.replace(a, b);
+    let cases: Vec<(&str, String, Vec<&str>)> = vec![
+        (
+            "n_frequencies 1e5",
+            with("n_frequencies = 30", "n_frequencies = 100000"),
+            vec![
+                "noise.toml line 7",
+                "pulsar.P01.red.n_frequencies",
+                "1..=1000",
+            ],
+        ),
+        (
+            "red amplitude 10",
+            with("-13.8", "10.0"),
+            vec!["pulsar.P01.red.log10_amplitude", "[-20, -8]"],
+        ),
+        (
+            "common index nan",
+            with("4.33", "nan"),
+            vec!["common.spectral_index"],
+        ),
+        (
+            "equad 5",
+            with("-7.0", "5.0"),
+            vec!["white[0].equad_log10_s", "[-10, -3]"],
+        ),
+        (
+            "efac inf",
+            with("efac = 1.1", "efac = inf"),
+            vec!["white[0].efac"],
+        ),
+        (
+            "efac 1e6",
+            with("efac = 1.1", "efac = 1e6"),
+            vec!["white[0].efac", "(0, 100]"],
+        ),
+        (
+            "old key name",
+            with("equad_log10_s", "log10_equad"),
+            vec!["noise.toml line 6", "unknown field"],
+        ),
+        (
+            "label escape",
+            with("[pulsar.P01]", "[pulsar.\"../x\"]"),
+            vec!["pulsar.../x", "not a usable label"],
+        ),
+        (
+            "not toml",
+            "[common\n".to_string(),
+            vec!["noise.toml line 1"],
+        ),
+    ];
+    let mut t = Tally(Vec::new());
+    for (name, text, expect) in cases {
+        t.add(
+            name,
+            judge(
+                || NoiseModel::parse(&text, path).map_err(|e| e.to_string()),
+                &expect,
+            ),
+        );
+    }
+    t.finish("noise model");
+}
+
+#[test]
+fn release_labels_paths_and_bytes_are_checked() {
+    let mut t = Tally(Vec::new());
+    let mut run = |name: &str, breakit: &dyn Fn(&Path), expect: &[&str]| {
+        let dir = good_release(&format!("tbl-{}", name.replace(' ', "-")));
+        breakit(&dir);
+        t.add(name, judge(|| read_and_correlate(&dir), expect));
+        fs::remove_dir_all(&dir).ok();
+    };
+    let toml = |a: &'static str, b: &'static str| {
+        move |d: &Path| edit(&d.join("release.toml"), |t| t.replacen(a, b, 1))
+    };
+    run(
+        "residuals outside",
+        &toml("\"residuals/P01.csv\"", "\"../../../etc/passwd\""),
+        &[
+            "release.toml line",
+            "pulsar[0].residuals",
+            "outside the release folder",
+        ],
+    );
+    run(
+        "residuals absolute",
+        &toml("\"residuals/P01.csv\"", "\"/etc/passwd\""),
+        &["pulsar[0].residuals", "outside"],
+    );
+    run(
+        "label escape",
+        &toml("label = \"P01\"", "label = \"../../escape\""),
+        &["pulsar[0].label", "not a usable label"],
+    );
+    run(
+        "design outside",
+        &toml(
+            "residuals = \"residuals/P01.csv\"",
+            "residuals = \"residuals/P01.csv\"\ndesign_matrix = \"/tmp/dm.csv\"",
+        ),
+        &["pulsar[0].design_matrix"],
+    );
+    run(
+        "huge field",
+        &|d: &Path| {
+            set_line(
+                &d.join(P1),
+                3,
+                &format!("56100.0,{},1e-6,1400.0,KRK-L", "9x".repeat(500_000)),
+            )
+        },
+        &[
+            "P01.csv line 3",
+            "field residual_s",
+            "not a number",
+            "(1000000 characters)",
+        ],
+    );
+    run(
+        "huge header",
+        &|d: &Path| set_line(&d.join(P1), 1, &"h".repeat(1_000_000)),
+        &["P01.csv line 1", "header must be exactly"],
+    );
+    run(
+        "non-utf8 field",
+        &|d: &Path| {
+            let mut b = fs::read(d.join(P1)).unwrap();
+            let i = b.iter().position(|&c| c == b'\n').unwrap() + 3;
+            b[i] = 0xff;
+            fs::write(d.join(P1), b).unwrap();
+        },
+        &["P01.csv line 2", "field mjd", "not UTF-8"],
+    );
+    run(
+        "non-utf8 toml",
+        &|d: &Path| {
+            let mut b = fs::read(d.join("release.toml")).unwrap();
+            b[3] = 0xfe;
+            fs::write(d.join("release.toml"), b).unwrap();
+        },
+        &["release.toml", "not UTF-8 text: byte 0xfe at offset 3"],
+    );
+    run(
+        "tiny sigma",
+        &|d: &Path| set_line(&d.join(P1), 4, "56100.0,1e-7,1e-300,1400.0,KRK-L"),
+        &["pulsar P01", "TOA row 3", "sigma_s"],
+    );
+    // An outside path is read with the explicit option.
+    let dir = good_release("tbl-outside-ok");
+    let outside = dir
+        .parent()
+        .unwrap()
+        .join(format!("ptacorr-outside-{}.csv", std::process::id()));
+    fs::copy(dir.join(P1), &outside).unwrap();
+    edit(&dir.join("release.toml"), |t| {
+        t.replacen(
+            "\"residuals/P01.csv\"",
+            &format!("{:?}", outside.display().to_string()),
+            1,
+        )
+    });
+    assert!(read_release(&dir).is_err());
+    let opts = ReadOptions {
+        allow_outside_paths: true,
+        ..ReadOptions::default()
+    };
+    read_release_with(&dir, opts).unwrap();
+    fs::remove_file(&outside).ok();
+    fs::remove_dir_all(&dir).ok();
+    t.finish("release");
+}
+
+/// Read a release and run the analysis (bad values may only show in the reduction).
+fn read_and_correlate(dir: &Path) -> Result<(), String> {
+    let rel = read_release(dir).map_err(|e| e.to_string())?;
+    correlate(&rel, &CorrelateSettings::default())
+        .map(|_| ())
+        .map_err(|e| e.to_string())
+}
+
+#[test]
+fn non_finite_reductions_name_pulsar_row_and_cause() {
+    let dir = good_release("nonfinite");
+    set_line(&dir.join(P1), 4, "56100.0,1e-7,1e-300,1400.0,KRK-L");
+    let e = read_and_correlate(&dir).unwrap_err();
+    assert!(
+        e.contains("pulsar P01") && e.contains("TOA row 3") && e.contains("sigma_s"),
+        "{e}"
+    );
+    fs::remove_dir_all(&dir).ok();
+}
+
+#[test]
+fn command_options_are_checked_before_any_work() {
+    let mut t = Tally(Vec::new());
+    let settings = |f: &dyn Fn(&mut CorrelateSettings)| {
+        let mut s = CorrelateSettings::default();
+        f(&mut s);
+        s.validate().map_err(|e| e.to_string())
+    };
+    let given = |a: f64, g: f64| {
+        CommonAutoPower::Given(PowerLaw {
+            log10_amplitude: a,
+            spectral_index: g,
+        })
+    };
+    t.add(
+        "common amplitude 10",
+        judge(
+            || settings(&|s| s.common = given(10.0, 4.33)),
+            &["common-log10-amplitude", "[-20, -8]"],
+        ),
+    );
+    t.add(
+        "common amplitude nan",
+        judge(
+            || settings(&|s| s.common = given(f64::NAN, 4.33)),
+            &["common-log10-amplitude"],
+        ),
+    );
+    t.add(
+        "frequencies 0",
+        judge(
+            || settings(&|s| s.n_frequencies = 0),
+            &["frequencies", "1..=1000"],
+        ),
+    );
+    t.add(
+        "frequencies 1e5",
+        judge(
+            || settings(&|s| s.n_frequencies = 100_000),
+            &["frequencies"],
+        ),
+    );
+    t.add("bins 0", judge(|| settings(&|s| s.n_bins = 0), &["bins"]));
+    t.add(
+        "index inf",
+        judge(
+            || settings(&|s| s.spectral_index = f64::INFINITY),
+            &["spectral-index"],
+        ),
+    );
+    let inj = ptacorr::inject::InjectSettings {
+        common: given(10.0, 4.33),
+        ..Default::default()
+    };
+    t.add(
+        "inject common 10",
+        judge(
+            || inj.validate().map_err(|e| e.to_string()),
+            &["common-log10-amplitude"],
+        ),
+    );
+    for (text, expect) in [
+        ("0/3", "1 <= I <= N"),
+        ("4/3", "1 <= I <= N"),
+        ("1/1000000000000", "at most 1000000 shards"),
+        ("-1/3", "I/N"),
+        ("1/0", "I/N"),
+    ] {
+        t.add(
+            &format!("shard {text}"),
+            judge(|| Shard::parse(text).map_err(|e| e.to_string()), &[expect]),
+        );
+    }
+    let mut n = NullSettings::new(Method::Phase, 0, 1);
+    t.add(
+        "trials 0",
+        judge(|| n.validate().map_err(|e| e.to_string()), &["trials"]),
+    );
+    n.trials = 10;
+    n.time_domain = true;
+    t.add(
+        "time domain with phase",
+        judge(|| n.validate().map_err(|e| e.to_string()), &["time-domain"]),
+    );
+    t.finish("options");
+}
+
+#[test]
+fn data_that_look_wrong_warn_and_fail_under_strict() {
+    let strict = ReadOptions {
+        strict: true,
+        ..ReadOptions::default()
+    };
+    let mut t = Tally(Vec::new());
+    let mut run = |name: &str, breakit: &dyn Fn(&Path), expect: &[&str]| {
+        let dir = good_release(&format!("warn-{}", name.replace(' ', "-")));
+        breakit(&dir);
+        let rel = read_release(&dir).expect("legal data are read");
+        assert!(
+            rel.warnings
+                .iter()
+                .any(|w| expect.iter().all(|e| w.contains(e))),
+            "{name}: warnings {:?}",
+            rel.warnings
+        );
+        t.add(
+            name,
+            judge(
+                || read_release_with(&dir, strict).map_err(|e| e.to_string()),
+                &["--strict", expect[0]],
+            ),
+        );
+        fs::remove_dir_all(&dir).ok();
+    };
+    run(
+        "duplicate rows",
+        &|d: &Path| {
+            edit(&d.join(P1), |t| {
+                let row = t.lines().nth(5).unwrap().to_string();
+                t + &row + "\n"
+            })
+        },
+        &["exact duplicate row", "pulsar P01"],
+    );
+    run(
+        "isolated toa",
+        &|d: &Path| edit(&d.join(P1), |t| t + "99000.0,1e-7,1e-6,1310.0,KRK-L\n"),
+        &["lies", "days from the others", "MJD 99000"],
+    );
+    run(
+        "shared file",
+        &|d: &Path| {
+            edit(&d.join("release.toml"), |t| {
+                t.replace("residuals/P02.csv", "residuals/P01.csv")
+            })
+        },
+        &["read the same residual file"],
+    );
+    // The warnings are recorded in the provenance of the outputs.
+    let dir = good_release("warn-provenance");
+    edit(&dir.join(P1), |t| {
+        let row = t.lines().nth(5).unwrap().to_string();
+        t + &row + "\n"
+    });
+    let rel = read_release(&dir).unwrap();
+    let c = correlate(&rel, &CorrelateSettings::default()).unwrap();
+    let out = dir.join("out");
+    c.write(&out, &rel, &CorrelateSettings::default()).unwrap();
+    let s = fs::read_to_string(out.join("summary.json")).unwrap();
+    assert!(
+        s.contains("\"warnings\"") && s.contains("exact duplicate row"),
+        "{s}"
+    );
+    fs::remove_dir_all(&dir).ok();
+    t.finish("warnings");
+}
+
+/// Rewrite an output folder's file through an output set (so its manifest is valid again),
+/// as a hand edit by someone who also updated the manifest would.
+fn rewrite_with_manifest(dir: &Path, file: &str, f: impl Fn(String) -> String) {
+    let m = check_manifest(dir).unwrap();
+    let mut set = OutputSet::begin(dir, "edited").unwrap();
+    for e in &m.files {
+        let bytes = fs::read(dir.join(&e.name)).unwrap();
+        let bytes = if e.name == file {
+            f(String::from_utf8(bytes).unwrap()).into_bytes()
+        } else {
+            bytes
+        };
+        set.write(&e.name, &bytes).unwrap();
+    }
+    set.commit().unwrap();
+}
+
+#[test]
+fn output_folders_and_shards_are_checked() {
+    let base = temp_dir("outputs");
+    let rel_dir = base.join("rel");
+    let rel = simulate_release(&small_scenario(4, 3.0, 30.0, None), &rel_dir, 5);
+    let mut t = Tally(Vec::new());
+    let shard_run = |i: u64, n: u64, dir: &Path| {
+        let mut s = NullSettings::new(Method::Phase, 40, 3);
+        s.analytic = false;
+        s.shard = Some(Shard { index: i, count: n });
+        null::run_null(&rel, &s, dir, Control::default()).unwrap();
+    };
+    let (s1, s2) = (base.join("s1"), base.join("s2"));
+    shard_run(1, 2, &s1);
+    shard_run(2, 2, &s2);
+    let merged = base.join("merged");
+    null::merge::merge(&[s1.clone(), s2.clone()], &merged).unwrap();
+    // Missing shard, mixed folder, no manifest, hand-edited shard index 0 and count 1e12.
+    let merge =
+        |dirs: Vec<PathBuf>| null::merge::merge(&dirs, &base.join("m")).map_err(|e| e.to_string());
+    t.add(
+        "merge missing shard",
+        judge(|| merge(vec![s1.clone()]), &["missing shards: 2/2"]),
+    );
+    let mixed = base.join("mixed");
+    fs::create_dir_all(&mixed).unwrap();
+    for f in ["null.json", "trials.csv", "manifest.json"] {
+        fs::copy(s1.join(f), mixed.join(f)).unwrap();
+    }
+    fs::copy(s2.join("trials.csv"), mixed.join("trials.csv")).unwrap();
+    t.add(
+        "merge mixed folder",
+        judge(
+            || merge(vec![mixed.clone(), s2.clone()]),
+            &["trials.csv", "different runs"],
+        ),
+    );
+    fs::remove_file(mixed.join("manifest.json")).unwrap();
+    t.add(
+        "merge no manifest",
+        judge(
+            || merge(vec![mixed.clone(), s2.clone()]),
+            &["manifest.json", "missing"],
+        ),
+    );
+    for (name, from, to, expect) in [
+        (
+            "shard index 0",
+            "\"index\": 1",
+            "\"index\": 0",
+            "shard index 0 is outside 1..=2",
+        ),
+        (
+            "shard count 1e12",
+            "\"count\": 2",
+            "\"count\": 1000000000000",
+            "shard count 1000000000000 is outside 1..=40",
+        ),
+    ] {
+        let d = base.join(name.replace(' ', "-"));
+        fs::create_dir_all(&d).unwrap();
+        for f in ["null.json", "trials.csv", "manifest.json"] {
+            fs::copy(s1.join(f), d.join(f)).unwrap();
+        }
+        rewrite_with_manifest(&d, "null.json", |t| t.replacen(from, to, 1));
+        t.add(
+            name,
+            judge(
+                || merge(vec![d.clone(), s2.clone()]),
+                &["null.json", "field shard", expect],
+            ),
+        );
+    }
+    // A second run into a folder another run holds.
+    let held = base.join("held");
+    let lock = OutputSet::begin(&held, "other").unwrap();
+    let mut s = NullSettings::new(Method::Phase, 20, 9);
+    s.analytic = false;
+    t.add(
+        "null into a held folder",
+        judge(
+            || null::run_null(&rel, &s, &held, Control::default()).map_err(|e| e.to_string()),
+            &["in use by another ptacorr run"],
+        ),
+    );
+    drop(lock);
+    // A failed run leaves the earlier output untouched.
+    let before: Vec<(String, Vec<u8>)> = ["null.json", "trials.csv", "manifest.json"]
+        .iter()
+        .map(|f| (f.to_string(), fs::read(merged.join(f)).unwrap()))
+        .collect();
+    let mut bad = NullSettings::new(Method::Scramble, 20, 9);
+    bad.pattern = ptacorr::orf::Pattern::Monopole;
+    t.add(
+        "failed run keeps old output",
+        judge(
+            || null::run_null(&rel, &bad, &merged, Control::default()).map_err(|e| e.to_string()),
+            &["monopole"],
+        ),
+    );
+    let after: Vec<(String, Vec<u8>)> = ["null.json", "trials.csv", "manifest.json"]
+        .iter()
+        .map(|f| (f.to_string(), fs::read(merged.join(f)).unwrap()))
+        .collect();
+    assert!(before == after, "a failed run changed the earlier output");
+    let stray: Vec<_> = fs::read_dir(&merged)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| n.ends_with(".tmp") || n.starts_with(".staging"))
+        .collect();
+    assert!(stray.is_empty(), "{stray:?}");
+    check_manifest(&merged).unwrap();
+    t.finish("outputs and shards");
+    fs::remove_dir_all(&base).ok();
 }

@@ -119,8 +119,8 @@ share = 0.5
 [white]
 sigma_us = [0.2, 2.0]
 efac = [0.9, 1.2]
-log10_equad = [-7.5, -6.8]
-log10_ecorr = [-7.5, -6.8]
+equad_log10_s = [-7.5, -6.8]
+ecorr_log10_s = [-7.5, -6.8]
 
 [red]
 share = 0.5

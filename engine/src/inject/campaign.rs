@@ -519,6 +519,23 @@ pub fn run_campaign(target: Target, settings: InjectSettings) -> Result<Outcome>
             ),
         ),
     };
+    // A threshold from the null of another release is legal but suspicious (release.rs).
+    let mut warnings = Vec::new();
+    if let Some(d) = &campaign.settings.null_dir {
+        let nj = d.join("null.json");
+        let other =
+            crate::release::recorded_input_hash(&nj).filter(|h| *h != campaign.target.input_hash);
+        if let Some(h) = other {
+            let w = format!(
+                "{}: the null trials come from a different release (input hash {}, the target's is {}); the detection threshold may not apply",
+                nj.display(),
+                crate::output::truncate(&h, 20),
+                crate::output::truncate(&campaign.target.input_hash, 20)
+            );
+            crate::release::emit_warning(&w, &nj)?;
+            warnings.push(w);
+        }
+    }
     let fap = campaign
         .settings
         .false_alarm
@@ -551,6 +568,10 @@ pub fn run_campaign(target: Target, settings: InjectSettings) -> Result<Outcome>
         "input_hash": campaign.target.input_hash,
         "settings": serde_json::to_value(s).unwrap_or(serde_json::Value::Null),
     });
+    let mut provenance = provenance;
+    if !warnings.is_empty() {
+        provenance["warnings"] = serde_json::json!(warnings);
+    }
     let text = assumptions(&campaign, &source);
     Ok(Outcome::new(state, records, text, provenance))
 }

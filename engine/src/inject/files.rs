@@ -4,7 +4,7 @@
 use super::campaign::Record;
 use super::summary::{Outcome, RecoveryRow};
 use crate::error::{Error, Result};
-use crate::output::{fmt_f64, write_atomic, write_json};
+use crate::output::fmt_f64;
 use serde::{Deserialize, Serialize};
 use std::fmt::Write as _;
 use std::path::Path;
@@ -94,11 +94,14 @@ impl Outcome {
             assumptions: self.assumptions.clone(),
             provenance: self.provenance.clone(),
         };
-        write_atomic(&dir.join("realizations.csv"), real.as_bytes())?;
-        write_atomic(&dir.join("coverage_plugin.csv"), plug.as_bytes())?;
-        write_json(&dir.join("campaign.json"), &self.state)?;
-        write_atomic(&dir.join("recovery.csv"), csv.as_bytes())?;
-        write_json(&dir.join("recovery.json"), &json)
+        // One output set: all five files or none (output.rs).
+        let mut set = crate::output::OutputSet::begin(dir, "inject")?;
+        set.write("realizations.csv", real.as_bytes())?;
+        set.write("coverage_plugin.csv", plug.as_bytes())?;
+        set.write_json("campaign.json", &self.state)?;
+        set.write("recovery.csv", csv.as_bytes())?;
+        set.write_json("recovery.json", &json)?;
+        set.commit().map(|_| ())
     }
 }
 

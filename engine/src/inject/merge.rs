@@ -14,7 +14,9 @@ pub fn merge_shards(dirs: &[PathBuf]) -> Result<Outcome> {
     }
     let mut first: Option<(CampaignState, RecoveryFile)> = None;
     let mut records = Vec::new();
+    let mut shard_indices = Vec::new();
     for d in dirs {
+        crate::output::check_manifest(d)?;
         let read_json = |name: &str| -> Result<serde_json::Value> {
             let p = d.join(name);
             let text = std::fs::read_to_string(&p).map_err(|e| Error::io(&p, e))?;
@@ -43,6 +45,7 @@ pub fn merge_shards(dirs: &[PathBuf]) -> Result<Outcome> {
             r.sigma_plugin = state.variance_polynomials[k].amplitude2_sigma(r.amplitude2);
         }
         records.extend(rs);
+        shard_indices.push(state.shard.index);
         match &first {
             None => first = Some((state, rec)),
             Some((s0, _)) => {
@@ -82,6 +85,25 @@ pub fn merge_shards(dirs: &[PathBuf]) -> Result<Outcome> {
                 ),
             ));
         }
+    }
+    // A merge is complete only with every realization of every amplitude: a missing shard
+    // must not be labelled complete.
+    let expected = state.amplitudes.len() as u64 * state.realizations_total;
+    if records.len() as u64 != expected {
+        let count = state.shard.count;
+        let missing: Vec<String> = (1..=count.min(1000))
+            .filter(|i| !shard_indices.contains(i))
+            .take(10)
+            .map(|i| format!("{i}/{count}"))
+            .collect();
+        return Err(Error::setting(
+            "merge",
+            format!(
+                "the shards hold {} of the campaign's {expected} realizations (missing shards: {}); give every shard 1/{count} .. {count}/{count}",
+                records.len(),
+                if missing.is_empty() { "?".to_string() } else { missing.join(", ") }
+            ),
+        ));
     }
     state.shard = Shard::ALL;
     Ok(Outcome::new(

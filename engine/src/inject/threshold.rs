@@ -8,6 +8,7 @@ use std::path::Path;
 /// The SNRs of a null folder's `trials.csv` (read by [`crate::null::parse_trials`]); at least
 /// 10 trials.
 pub fn read_null_trials(dir: &Path) -> Result<Vec<f64>> {
+    crate::output::check_manifest(dir)?;
     let path = dir.join("trials.csv");
     let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
     let out: Vec<f64> = parse_trials(&text, &path)?.iter().map(|t| t.snr).collect();

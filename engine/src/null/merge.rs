@@ -17,6 +17,7 @@ struct Part {
 }
 
 fn read_part(dir: &Path) -> Result<Part> {
+    crate::output::check_manifest(dir)?;
     let path = dir.join("null.json");
     let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
     let report: NullReport = serde_json::from_str(&text)
@@ -65,8 +66,15 @@ pub fn merge(dirs: &[PathBuf], out: &Path) -> Result<NullReport> {
     if dirs.is_empty() {
         return Err(Error::setting("merge", "give the shard folders to merge"));
     }
+    let mut set = crate::output::OutputSet::begin(out, "merge")?;
     let mut parts: Vec<Part> = dirs.iter().map(|d| read_part(d)).collect::<Result<_>>()?;
     let refuse = |msg: String| Err(Error::setting("merge", msg));
+    for p in &parts {
+        if let Some(s) = p.report.shard {
+            s.check(p.report.total_trials)
+                .map_err(|m| Error::input(&p.dir.join("null.json"), None, Some("shard"), m))?;
+        }
+    }
     for p in &parts {
         if p.report.shard.is_none() {
             return refuse(format!(
@@ -140,6 +148,12 @@ pub fn merge(dirs: &[PathBuf], out: &Path) -> Result<NullReport> {
         .filter(|(_, d)| d.is_empty())
         .map(|(i, _)| format!("{}/{count}", i + 1))
         .collect();
+    let n_missing = missing.len();
+    let missing: Vec<String> = missing
+        .into_iter()
+        .take(10)
+        .chain((n_missing > 10).then(|| format!("and {} more", n_missing - 10)))
+        .collect();
     if !dup.is_empty() || !missing.is_empty() {
         let mut msg = String::new();
         if !dup.is_empty() {
@@ -204,6 +218,7 @@ pub fn merge(dirs: &[PathBuf], out: &Path) -> Result<NullReport> {
         analytic.as_ref(),
         provenance,
     )?;
-    write_outputs(out, &report, &trials, analytic.as_ref())?;
+    write_outputs(&mut set, &report, &trials, analytic.as_ref())?;
+    set.commit()?;
     Ok(report)
 }

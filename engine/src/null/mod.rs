@@ -18,7 +18,7 @@ use crate::analysis::{correlate, CorrelateSettings, Correlation, Provenance};
 use crate::error::{Error, Result};
 use crate::optimal::{pair_numerators, pair_traces, weight, Weighted};
 use crate::orf::{pattern_for_pairs, Pattern};
-use crate::output::{fmt_f64, write_atomic, write_json};
+use crate::output::{fmt_f64, write_atomic, OutputSet};
 use crate::pvalue::{clopper_pearson, gaussian_equivalent_sigma, trial_p_value};
 use crate::release::Release;
 use crate::sky::Direction;
@@ -622,6 +622,8 @@ pub fn run_null(
     control: Control,
 ) -> Result<NullReport> {
     settings.validate()?;
+    // The lock (one run per folder) is taken before any work or checkpoint.
+    let mut set = OutputSet::begin(out, "null")?;
     let c = correlate(release, &settings.analysis)?;
     let prepared = Prepared::new(&c, settings.pattern)?;
     let partial = out.join(".partial");
@@ -676,27 +678,28 @@ pub fn run_null(
         analytic.as_ref(),
         serde_json::to_value(Provenance::new(release, settings)).unwrap_or_default(),
     )?;
-    write_outputs(out, &report, &trials, analytic.as_ref())?;
+    write_outputs(&mut set, &report, &trials, analytic.as_ref())?;
+    set.commit()?;
     let _ = std::fs::remove_dir_all(&partial);
     Ok(report)
 }
 
-/// Write trials.csv, the eigenvalues and (last, marking completion) null.json.
+/// Stage trials.csv, the eigenvalues and null.json in an output set (committed by the caller).
 pub fn write_outputs(
-    out: &Path,
+    out: &mut OutputSet,
     report: &NullReport,
     trials: &[Trial],
     analytic: Option<&AnalyticNull>,
 ) -> Result<()> {
-    write_atomic(&out.join("trials.csv"), trials_csv(trials).as_bytes())?;
+    out.write("trials.csv", trials_csv(trials).as_bytes())?;
     if let Some(a) = analytic {
         let mut s = String::from("eigenvalue\n");
         for e in &a.eigenvalues {
             let _ = writeln!(s, "{}", fmt_f64(*e));
         }
-        write_atomic(&out.join(EIGENVALUES_FILE), s.as_bytes())?;
+        out.write(EIGENVALUES_FILE, s.as_bytes())?;
     }
-    write_json(&out.join("null.json"), report)
+    out.write_json("null.json", report)
 }
 
 #[cfg(test)]

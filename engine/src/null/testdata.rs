@@ -31,7 +31,7 @@ share = 0.5
 [white]
 sigma_us = [0.5, 2.0]
 efac = [0.9, 1.2]
-log10_equad = [-7.5, -6.5]
+equad_log10_s = [-7.5, -6.5]
 
 [red]
 share = 0.4
