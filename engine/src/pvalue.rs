@@ -365,7 +365,10 @@ mod tests {
         // recalled from memory) bounds phi(z) z / (1 + z^2) < Q(z) < phi(z) / z must bracket
         // p = 1e-300 at the returned z (their gap, 1/z^2 ~ 7e-4 relative, pins z to ~2e-5).
         let pdf = (-0.5 * s * s).exp() / (2.0 * std::f64::consts::PI).sqrt();
-        assert!(pdf * s / (1.0 + s * s) < 1e-300 && 1e-300 < pdf / s, "z={s}");
+        assert!(
+            pdf * s / (1.0 + s * s) < 1e-300 && 1e-300 < pdf / s,
+            "z={s}"
+        );
         assert!(gaussian_equivalent_sigma(f64::from_bits(1))
             .unwrap()
             .is_finite());

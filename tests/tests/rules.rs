@@ -255,9 +255,27 @@ fn crate_sources() -> Vec<PathBuf> {
 /// Integer arithmetic on counts and indices (`len() - 1`) is allowed; arithmetic between two
 /// plain variables (`a - b`) needs types and is not caught.
 const CLI_ARITHMETIC: &[&str] = &[
-    ".sqrt(", ".powi(", ".powf(", ".ln(", ".log10(", ".log2(", ".exp(", ".abs(", ".mul_add(",
-    ".hypot(", ".sin(", ".cos(", ".floor(", ".ceil(", ".round(", "as f64", ".sum(", ".sum::<",
-    ".product(", ".as_secs_f64(", ".as_secs_f32(",
+    ".sqrt(",
+    ".powi(",
+    ".powf(",
+    ".ln(",
+    ".log10(",
+    ".log2(",
+    ".exp(",
+    ".abs(",
+    ".mul_add(",
+    ".hypot(",
+    ".sin(",
+    ".cos(",
+    ".floor(",
+    ".ceil(",
+    ".round(",
+    "as f64",
+    ".sum(",
+    ".sum::<",
+    ".product(",
+    ".as_secs_f64(",
+    ".as_secs_f32(",
 ];
 
 /// Is there `+ - * /` with a float literal or an upper-case constant as one operand?
@@ -314,7 +332,10 @@ fn literal_arithmetic(line: &str) -> bool {
         let prev = k.checked_sub(1).map(|p| &tokens[p]);
         // A unary minus or a dereference has no operand on its left.
         let unary = prev.is_none_or(|p| {
-            ["(", ",", "=", "[", "{", "<", ">", "!", "&", "|", ":", ";", "return"].contains(&p.as_str())
+            [
+                "(", ",", "=", "[", "{", "<", ">", "!", "&", "|", ":", ";", "return",
+            ]
+            .contains(&p.as_str())
         });
         if unary && matches!(t.as_str(), "-" | "*") {
             continue;
@@ -445,7 +466,11 @@ fn every_file_write_goes_through_the_atomic_writer() {
 
 /// What no file may mention: the outside document the code once cited, and the folder it was
 /// in. Built from pieces so that this file does not match itself.
-const FORBIDDEN_MENTIONS: &[&[&str]] = &[&["science", " notes"], &["../", "shared"], &["/work/", "shared"]];
+const FORBIDDEN_MENTIONS: &[&[&str]] = &[
+    &["science", " notes"],
+    &["../", "shared"],
+    &["/work/", "shared"],
+];
 
 #[test]
 fn no_file_cites_a_document_outside_the_project() {
@@ -469,7 +494,11 @@ fn no_file_cites_a_document_outside_the_project() {
         }
     }
     // The walk found the project (README, docs, sources), not an empty folder.
-    assert!(n_text > 50, "only {n_text} text files found under {}", repo().display());
+    assert!(
+        n_text > 50,
+        "only {n_text} text files found under {}",
+        repo().display()
+    );
     assert!(
         hits.is_empty(),
         "the project must stand alone; point these at a page in docs/ instead:\n  {}",

@@ -156,5 +156,9 @@ fn pairs_csv_separations_agree_with_vincenty_at_all_angles() {
         line.split(',').nth(2).unwrap().parse().unwrap()
     };
     assert!((angle_of(1) - arcsec).abs() < 1e-12, "{}", angle_of(1));
-    assert!((180.0 - angle_of(2) - arcsec).abs() < 1e-12, "{}", angle_of(2));
+    assert!(
+        (180.0 - angle_of(2) - arcsec).abs() < 1e-12,
+        "{}",
+        angle_of(2)
+    );
 }
