@@ -405,6 +405,7 @@ fn matvec(m: &Array2<f64>, v: ndarray::ArrayView1<f64>) -> Array1<f64> {
     }
 }
 
+#[cfg(test)]
 fn symmetrise(z: Array2<f64>) -> Array2<f64> {
     let zt = z.t().to_owned();
     (z + zt) * 0.5
