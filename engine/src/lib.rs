@@ -37,6 +37,7 @@ pub mod shard;
 pub mod simulate;
 pub mod sky;
 pub mod spectrum;
+pub mod whiten;
 
 pub use error::{Error, Result};
 

@@ -8,7 +8,7 @@ use super::threshold::{default_false_alarm, detection_threshold, read_null_trial
 use super::{NULL_STREAM_BASE, REFERENCE_AMPLITUDE, Z68, Z95};
 use crate::analysis::CommonAutoPower;
 use crate::error::{Error, Result};
-use crate::linalg::{symmetrise, PsdRoot};
+use crate::linalg::PsdRoot;
 use crate::noise::RedProcess;
 use crate::orf::{pattern_matrix, Pattern};
 use crate::paircov::{variance_polynomial, VariancePolynomial};
@@ -17,8 +17,8 @@ use crate::rng::{stream, Purpose};
 use crate::scenario::{BackgroundPattern, BackgroundSpec, SimulationSpec};
 use crate::simulate::{pattern_root, simulate_residuals, Ingredients};
 use crate::spectrum::{template, PowerLaw};
+use crate::whiten::woodbury_transform;
 use ndarray::{Array1, Array2};
-use ndarray_linalg::Inverse;
 use rand::Rng;
 use rand_distr::StandardNormal;
 use rayon::prelude::*;
@@ -245,26 +245,14 @@ impl Campaign {
     }
 
     fn analysis_at(&self, dc: Vec<f64>) -> Result<AnalysisAt> {
-        let m = dc.len();
         let (r, z) = if dc.iter().all(|&d| d == 0.0) {
             (None, self.z0.clone())
         } else {
             let mut rs = Vec::with_capacity(self.z0.len());
             let mut zs = Vec::with_capacity(self.z0.len());
             for (a, z0) in self.z0.iter().enumerate() {
-                let mut k = z0.clone();
-                for (mut col, &d) in k.columns_mut().into_iter().zip(&dc) {
-                    col *= d;
-                }
-                k += &Array2::<f64>::eye(m);
-                let r = k.inv().map_err(|_| Error::NotPositiveDefinite {
-                    what: format!(
-                        "I + Z~ D_c of pulsar {} (the Woodbury transform)",
-                        self.target.pulsars[a].label
-                    ),
-                    pivot: 0,
-                })?;
-                zs.push(symmetrise(r.dot(z0)));
+                let (r, z) = woodbury_transform(z0, &dc, &self.target.pulsars[a].label)?;
+                zs.push(z);
                 rs.push(r);
             }
             (Some(rs), zs)

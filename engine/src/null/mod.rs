@@ -553,7 +553,11 @@ pub fn make_source<'a>(
             &settings.analysis,
             settings.seed,
         )?),
-        Method::Simulate => Box::new(simulated::Reduced::new(prepared, settings.seed)?),
+        Method::Simulate => Box::new(simulated::Reduced::new(
+            prepared,
+            crate::whiten::analysis_roots(release, c)?,
+            settings.seed,
+        )?),
     })
 }
 
@@ -657,7 +661,10 @@ pub fn run_null(
     };
     let analytic = if settings.analytic {
         Some(AnalyticNull {
-            eigenvalues: analytic::eigenvalues(&prepared)?,
+            eigenvalues: analytic::eigenvalues(
+                &prepared,
+                &crate::whiten::analysis_roots(release, &c)?,
+            )?,
         })
     } else {
         None

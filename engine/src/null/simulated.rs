@@ -8,7 +8,7 @@
 
 use super::{Prepared, Trial, TrialSource};
 use crate::analysis::{CorrelateSettings, Correlation};
-use crate::error::Result;
+use crate::error::{Error, Result};
 use crate::linalg::PsdRoot;
 use crate::reduce::{AutoPower, PulsarModel};
 use crate::release::Release;
@@ -35,13 +35,19 @@ pub struct Reduced<'a> {
 }
 
 impl<'a> Reduced<'a> {
-    pub fn new(p: &'a Prepared, seed: u64) -> Result<Self> {
-        let roots = p
-            .weighted
-            .iter()
-            .enumerate()
-            .map(|(a, w)| psd_root(&w.z, &format!("Z~ of pulsar {}", a + 1)))
-            .collect::<Result<_>>()?;
+    /// Draws with the per-pulsar roots L_a of [`crate::whiten::analysis_roots`] (each
+    /// `p.dim` x `p.dim`, L_a L_a^T = Z~_a).
+    pub fn new(p: &'a Prepared, roots: Vec<Array2<f64>>, seed: u64) -> Result<Self> {
+        if roots.len() != p.n || roots.iter().any(|l| l.dim() != (p.dim, p.dim)) {
+            return Err(Error::setting(
+                "roots",
+                format!("need {} square roots of size {}", p.n, p.dim),
+            ));
+        }
+        let roots = roots
+            .into_iter()
+            .map(|l| l.as_standard_layout().iter().copied().collect())
+            .collect();
         Ok(Reduced { p, seed, roots })
     }
 

@@ -67,6 +67,12 @@ fn trials_of(
     (p, t)
 }
 
+/// The analytic null's eigenvalues of a prepared analysis of `rel`.
+fn eigenvalues_of(rel: &Release, analysis: &CorrelateSettings, p: &Prepared) -> Vec<f64> {
+    let c = correlate(rel, analysis).unwrap();
+    analytic::eigenvalues(p, &crate::whiten::analysis_roots(rel, &c).unwrap()).unwrap()
+}
+
 #[test]
 fn null_ks_coefficient_matches_the_table() {
     // Smirnov (1948) table: c(0.05) = 1.358, c(0.001) = 1.949.
@@ -237,7 +243,7 @@ fn null_quadratic_form_has_zero_mean_and_unit_variance() {
     // Imhof 1961 section 2).
     let c = correlate(small(), &settings()).unwrap();
     let p = Prepared::new(&c, Pattern::Hd).unwrap();
-    let e = analytic::eigenvalues(&p).unwrap();
+    let e = eigenvalues_of(small(), &settings(), &p);
     let (mean, var) = crate::gchisq::mean_variance(&e).unwrap();
     let scale: f64 = e.iter().map(|v| v.abs()).sum();
     assert!(mean.abs() < 1e-10 * scale, "mean {mean}");
@@ -348,15 +354,14 @@ fn simulated_vs_analytic(rel: &Release, analysis: CorrelateSettings, n: u64) {
         ..null_settings(Method::Simulate, n)
     };
     let (p, t) = trials_of(rel, &s, 0..n);
-    let e = analytic::eigenvalues(&p).unwrap();
+    let e = eigenvalues_of(rel, &s.analysis, &p);
     let snr: Vec<f64> = t.iter().map(|t| t.snr).collect();
-    let x_max = snr.iter().fold(p.observed_snr.abs(), |m, v| m.max(v.abs()));
-    let inv = analytic::Inversion::new(&e, x_max).unwrap();
-    let d = ks_one_sample(&snr, |x| 1.0 - inv.upper_tail(x));
+    let q = crate::gchisq::GeneralisedChiSquare::new(&e).unwrap();
+    let d = ks_one_sample(&snr, |x| q.cdf(x).unwrap());
     let crit = ks_coefficient(0.001) / (n as f64).sqrt();
     assert!(d < crit, "KS D = {d}, critical {crit}");
     for x in [1.0, 2.0, p.observed_snr] {
-        let q = inv.upper_tail(x);
+        let q = q.upper_tail(x).unwrap();
         let f = snr.iter().filter(|&&v| v >= x).count() as f64 / n as f64;
         let se = (q * (1.0 - q) / n as f64).sqrt().max(1.0 / n as f64);
         assert!(
@@ -421,7 +426,7 @@ fn noise_only_uniform(arrays: u64) {
             ..NullSettings::new(Method::Simulate, 199, seed)
         };
         let (p, t) = trials_of(&rel, &s, 0..199);
-        let e = analytic::eigenvalues(&p).unwrap();
+        let e = eigenvalues_of(&rel, &s.analysis, &p);
         analytic_p.push(analytic::upper_tail(&e, p.observed_snr).unwrap());
         let k = t.iter().filter(|t| t.snr >= p.observed_snr).count() as u64;
         trial_p.push(crate::pvalue::trial_p_value(k, 199).unwrap());
