@@ -362,6 +362,7 @@ fn spectral_weights_tridiagonal(
         });
     }
     drop(a);
+    let (d_copy, e_copy) = (d.clone(), e.clone());
     let (jobz, range) = (b'V' as c_char, b'A' as c_char);
     let (vl, vu, il, iu) = (0.0f64, 0.0f64, 0 as c_int, 0 as c_int);
     let mut found: c_int = 0;
@@ -391,15 +392,66 @@ fn spectral_weights_tridiagonal(
         );
     }
     if info != 0 || found as usize != n {
-        return Err(Error::NonFinite {
-            what: format!(
-                "the tridiagonal eigenproblem of {what} (LAPACK dstemr info {info}, {found} of {n} found)"
-            ),
-        });
+        // MRRR can fail on clusters of tiny eigenvalues; divide and conquer (dstedc,
+        // Cuppen 1981) is slower but always succeeds on a finite tridiagonal matrix.
+        let (v, zz) = tridiagonal_eigen_dc(d_copy, e_copy, what)?;
+        vals = v;
+        z = zz;
     }
     // Column i of z (column-major) is eigenvector i; its first component is z[i * n].
     let t2 = (0..n).map(|i| (beta * z[i * n]).powi(2)).collect();
     Ok((vals, t2))
+}
+
+/// Eigenpairs of the symmetric tridiagonal (d, e) by LAPACK dstedc; z column-major n x n.
+fn tridiagonal_eigen_dc(mut d: Vec<f64>, mut e: Vec<f64>, what: &str) -> Result<(Vec<f64>, Vec<f64>)> {
+    let n = d.len();
+    let ni = c_int::try_from(n).expect("dimension fits a LAPACK int");
+    let compz = b'I' as c_char;
+    let mut z = vec![0.0; n * n];
+    let mut info: c_int = 0;
+    let minus1: c_int = -1;
+    let (mut wq, mut iwq) = ([0.0f64], [0 as c_int]);
+    // SAFETY: workspace query.
+    unsafe {
+        dstedc_(
+            &compz, &ni, d.as_mut_ptr(), e.as_mut_ptr(), z.as_mut_ptr(), &ni, wq.as_mut_ptr(),
+            &minus1, iwq.as_mut_ptr(), &minus1, &mut info,
+        );
+    }
+    let (lw, liw) = ((wq[0] as usize).max(1), (iwq[0] as usize).max(1));
+    let mut work = vec![0.0; lw];
+    let mut iwork: Vec<c_int> = vec![0; liw];
+    let (lwi, liwi) = (lw as c_int, liw as c_int);
+    // SAFETY: buffers sized by the query; z is n x n.
+    unsafe {
+        dstedc_(
+            &compz, &ni, d.as_mut_ptr(), e.as_mut_ptr(), z.as_mut_ptr(), &ni, work.as_mut_ptr(),
+            &lwi, iwork.as_mut_ptr(), &liwi, &mut info,
+        );
+    }
+    if info != 0 {
+        return Err(Error::NonFinite {
+            what: format!("the tridiagonal eigenproblem of {what} (LAPACK dstedc info {info})"),
+        });
+    }
+    Ok((d, z))
+}
+
+extern "C" {
+    fn dstedc_(
+        compz: *const c_char,
+        n: *const c_int,
+        d: *mut f64,
+        e: *mut f64,
+        z: *mut f64,
+        ldz: *const c_int,
+        work: *mut f64,
+        lwork: *const c_int,
+        iwork: *mut c_int,
+        liwork: *const c_int,
+        info: *mut c_int,
+    );
 }
 
 extern "C" {

@@ -55,7 +55,8 @@ struct BayesRow {
     comparison: String,
     ln_bayes_factor: f64,
     ln_error: f64,
-    bayes_factor: f64,
+    /// log10 of the Bayes factor (finite where the factor itself would overflow).
+    log10_bayes_factor: f64,
 }
 
 #[derive(Serialize)]
@@ -88,7 +89,7 @@ fn bayes_rows(v: Vec<BayesFactor>) -> Vec<BayesRow> {
             comparison: comparison_name(&b),
             ln_bayes_factor: b.ln_bayes_factor,
             ln_error: b.ln_error,
-            bayes_factor: b.ln_bayes_factor.exp(),
+            log10_bayes_factor: b.ln_bayes_factor / std::f64::consts::LN_10,
         })
         .collect()
 }
