@@ -50,7 +50,7 @@ fn data() -> CommonData {
 fn likelihood(c: &mut Criterion) {
     let d = data();
     let mut g = c.benchmark_group("common");
-    g.sample_size(10).measurement_time(Duration::from_secs(60));
+    g.sample_size(10).measurement_time(Duration::from_secs(20));
     g.bench_function("hd_fixed_index_curve_200_amplitudes", |b| {
         b.iter(|| {
             let curve = d.amplitude_curve(CommonModel::Hd, 13.0 / 3.0).unwrap();
@@ -60,7 +60,11 @@ fn likelihood(c: &mut Criterion) {
             black_box(s)
         })
     });
-    for m in [CommonModel::Curn, CommonModel::Monopole, CommonModel::Dipole] {
+    for m in [
+        CommonModel::Curn,
+        CommonModel::Monopole,
+        CommonModel::Dipole,
+    ] {
         g.bench_function(format!("{}_one_index_node", m.name()), |b| {
             b.iter(|| black_box(d.amplitude_curve(m, 3.1).unwrap()))
         });

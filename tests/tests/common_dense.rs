@@ -200,8 +200,7 @@ fn dense_log_likelihood(
                 let fa = &pa.f * &Array1::from(ph.clone()).mapv(|v| v * g);
                 let blk = fa.dot(&pb.f.t());
                 let (oa, ob) = (offs[a], offs[b]);
-                let mut sl =
-                    c.slice_mut(ndarray::s![oa..oa + pa.r.len(), ob..ob + pb.r.len()]);
+                let mut sl = c.slice_mut(ndarray::s![oa..oa + pa.r.len(), ob..ob + pb.r.len()]);
                 sl += &blk;
             }
         }
@@ -211,7 +210,9 @@ fn dense_log_likelihood(
     let cinv = c.inv().expect("C invertible");
     let cm = cinv.dot(&m);
     let mcm = m.t().dot(&cm);
-    let lm = mcm.cholesky(UPLO::Lower).expect("M^T C^-1 M positive definite");
+    let lm = mcm
+        .cholesky(UPLO::Lower)
+        .expect("M^T C^-1 M positive definite");
     let logdet_m: f64 = lm.diag().iter().map(|v| 2.0 * v.ln()).sum();
     let cr = cinv.dot(&r);
     let mr = m.t().dot(&cr);
@@ -225,13 +226,21 @@ fn reduced_likelihood_differences_match_the_dense_time_domain_likelihood() {
     // The first seed whose random layout gives some pulsar DM noise, so every process is checked.
     let rel = (23..33)
         .map(|seed| simulate_release(SCENARIO, &dir, seed))
-        .find(|rel| rel.pulsars.iter().any(|p| rel.noise.pulsar(&p.label).dm.is_some()))
+        .find(|rel| {
+            rel.pulsars
+                .iter()
+                .any(|p| rel.noise.pulsar(&p.label).dm.is_some())
+        })
         .expect("a layout with DM noise");
     let k = 5;
     let (t0, t1) = rel.mjd_range();
     let span = (t1 - t0) * 86400.0;
     let data = CommonData::from_release(&rel, &rel.noise, k).unwrap();
-    let ps: Vec<DensePulsar> = rel.pulsars.iter().map(|p| dense_pulsar(&rel, p, k)).collect();
+    let ps: Vec<DensePulsar> = rel
+        .pulsars
+        .iter()
+        .map(|p| dense_pulsar(&rel, p, k))
+        .collect();
     let points = [
         (-15.0, 2.0),
         (-14.2, 13.0 / 3.0),
@@ -288,7 +297,11 @@ fn fixed_index_posterior_matches_brute_force_dense_evaluation_at_20_amplitudes()
     let (t0, t1) = rel.mjd_range();
     let span = (t1 - t0) * 86400.0;
     let data = CommonData::from_release(&rel, &rel.noise, k).unwrap();
-    let ps: Vec<DensePulsar> = rel.pulsars.iter().map(|p| dense_pulsar(&rel, p, k)).collect();
+    let ps: Vec<DensePulsar> = rel
+        .pulsars
+        .iter()
+        .map(|p| dense_pulsar(&rel, p, k))
+        .collect();
     let settings = CommonSettings {
         n_frequencies: k,
         ..Default::default()
@@ -312,6 +325,9 @@ fn fixed_index_posterior_matches_brute_force_dense_evaluation_at_20_amplitudes()
             compared += 1;
         }
     }
-    assert!(compared >= 10, "only {compared} amplitudes carry posterior mass");
+    assert!(
+        compared >= 10,
+        "only {compared} amplitudes carry posterior mass"
+    );
     std::fs::remove_dir_all(&dir).ok();
 }

@@ -6,9 +6,7 @@
 
 use ndarray::{Array1, Array2};
 use ndarray_linalg::{Cholesky, UPLO};
-use ptacorr::common::{
-    fit_fixed_index, AmplitudePrior, CommonData, CommonModel, CommonSettings,
-};
+use ptacorr::common::{fit_fixed_index, AmplitudePrior, CommonData, CommonModel, CommonSettings};
 use ptacorr::rng::{stream, Purpose};
 use ptacorr_checks::{simulate_release, small_scenario, temp_dir};
 use rand::Rng;
@@ -71,13 +69,19 @@ impl Sampler {
         let mut x: Vec<Array1<f64>> = self
             .lz
             .iter()
-            .map(|l| l.dot(&Array1::from_shape_fn(m, |_| rng.sample::<f64, _>(StandardNormal))))
+            .map(|l| {
+                l.dot(&Array1::from_shape_fn(m, |_| {
+                    rng.sample::<f64, _>(StandardNormal)
+                }))
+            })
             .collect();
         if let Some(la) = log10_a {
             let g = gamma_matrix(model, &self.base.directions);
             // Gamma is positive definite for these distinct sky positions (CURN, HD); the
             // monopole and dipole are rank deficient, so a tiny ridge keeps the factor real.
-            let rg = (&g + &(Array2::<f64>::eye(n) * 1e-12)).cholesky(UPLO::Lower).unwrap();
+            let rg = (&g + &(Array2::<f64>::eye(n) * 1e-12))
+                .cholesky(UPLO::Lower)
+                .unwrap();
             let xi = Array2::from_shape_fn((n, m), |_| rng.sample::<f64, _>(StandardNormal));
             let coef = rg.dot(&xi); // row a: correlated coefficients of pulsar a (unit scale)
             let a = 10f64.powf(la);
@@ -174,7 +178,10 @@ fn hd_versus_curn_bayes_factor_grows_with_amplitude_and_favours_curn_without_cor
     let mut unc = ln_bf(CommonModel::Curn, -13.2, 90_000);
     unc.sort_by(f64::total_cmp);
     let median = unc[unc.len() / 2];
-    assert!(median < 0.0, "median ln BF HD vs CURN for CURN data: {median}");
+    assert!(
+        median < 0.0,
+        "median ln BF HD vs CURN for CURN data: {median}"
+    );
 }
 
 #[test]

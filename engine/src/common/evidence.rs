@@ -483,7 +483,10 @@ fn fixed_index_fit(curve: &AmplitudeCurve, s: &CommonSettings) -> Result<FixedIn
     let evidence = amplitude_integral(curve, s);
     check_finite(evidence.ln_evidence, "the fixed-index evidence")?;
     let x = linspace(s.log10_amplitude_min, s.log10_amplitude_max, FINE_FIXED);
-    let lp: Vec<f64> = x.iter().map(|&u| curve.at_log10(u) + s.ln_prior(u)).collect();
+    let lp: Vec<f64> = x
+        .iter()
+        .map(|&u| curve.at_log10(u) + s.ln_prior(u))
+        .collect();
     Ok(FixedIndexFit {
         spectral_index: s.fixed_spectral_index,
         evidence,

@@ -329,7 +329,11 @@ fn spectral_weights_tridiagonal(
             }
         }
     }
-    let mut a = m.as_standard_layout().into_owned().into_raw_vec_and_offset().0;
+    let mut a = m
+        .as_standard_layout()
+        .into_owned()
+        .into_raw_vec_and_offset()
+        .0;
     let ni = c_int::try_from(n).expect("dimension fits a LAPACK int");
     let (vect, uplo) = (b'N' as c_char, b'L' as c_char);
     let mut d = vec![0.0; n];
@@ -341,8 +345,19 @@ fn spectral_weights_tridiagonal(
     // SAFETY: workspace query.
     unsafe {
         dsytrd_2stage_(
-            &vect, &uplo, &ni, a.as_mut_ptr(), &ni, d.as_mut_ptr(), e.as_mut_ptr(),
-            tau.as_mut_ptr(), hq.as_mut_ptr(), &minus1, wq.as_mut_ptr(), &minus1, &mut info,
+            &vect,
+            &uplo,
+            &ni,
+            a.as_mut_ptr(),
+            &ni,
+            d.as_mut_ptr(),
+            e.as_mut_ptr(),
+            tau.as_mut_ptr(),
+            hq.as_mut_ptr(),
+            &minus1,
+            wq.as_mut_ptr(),
+            &minus1,
+            &mut info,
         );
     }
     let (lh, lw) = ((hq[0] as usize).max(1), (wq[0] as usize).max(1));
@@ -352,8 +367,19 @@ fn spectral_weights_tridiagonal(
     // SAFETY: buffers sized by the query; a is n x n.
     unsafe {
         dsytrd_2stage_(
-            &vect, &uplo, &ni, a.as_mut_ptr(), &ni, d.as_mut_ptr(), e.as_mut_ptr(),
-            tau.as_mut_ptr(), hous.as_mut_ptr(), &lhi, work.as_mut_ptr(), &lwi, &mut info,
+            &vect,
+            &uplo,
+            &ni,
+            a.as_mut_ptr(),
+            &ni,
+            d.as_mut_ptr(),
+            e.as_mut_ptr(),
+            tau.as_mut_ptr(),
+            hous.as_mut_ptr(),
+            &lhi,
+            work.as_mut_ptr(),
+            &lwi,
+            &mut info,
         );
     }
     if info != 0 {
@@ -374,9 +400,27 @@ fn spectral_weights_tridiagonal(
     // SAFETY: workspace query (nzc = -1 is not needed with RANGE = 'A' and ldz = n).
     unsafe {
         dstemr_(
-            &jobz, &range, &ni, d.as_mut_ptr(), e.as_mut_ptr(), &vl, &vu, &il, &iu, &mut found,
-            vals.as_mut_ptr(), z.as_mut_ptr(), &ni, &ni, isuppz.as_mut_ptr(), &mut tryrac,
-            wq.as_mut_ptr(), &minus1, iwq.as_mut_ptr(), &minus1, &mut info,
+            &jobz,
+            &range,
+            &ni,
+            d.as_mut_ptr(),
+            e.as_mut_ptr(),
+            &vl,
+            &vu,
+            &il,
+            &iu,
+            &mut found,
+            vals.as_mut_ptr(),
+            z.as_mut_ptr(),
+            &ni,
+            &ni,
+            isuppz.as_mut_ptr(),
+            &mut tryrac,
+            wq.as_mut_ptr(),
+            &minus1,
+            iwq.as_mut_ptr(),
+            &minus1,
+            &mut info,
         );
     }
     let (lw, liw) = ((wq[0] as usize).max(1), (iwq[0] as usize).max(1));
@@ -386,9 +430,27 @@ fn spectral_weights_tridiagonal(
     // SAFETY: buffers sized by the query; z is n x n column-major.
     unsafe {
         dstemr_(
-            &jobz, &range, &ni, d.as_mut_ptr(), e.as_mut_ptr(), &vl, &vu, &il, &iu, &mut found,
-            vals.as_mut_ptr(), z.as_mut_ptr(), &ni, &ni, isuppz.as_mut_ptr(), &mut tryrac,
-            work.as_mut_ptr(), &lwi, iwork.as_mut_ptr(), &liwi, &mut info,
+            &jobz,
+            &range,
+            &ni,
+            d.as_mut_ptr(),
+            e.as_mut_ptr(),
+            &vl,
+            &vu,
+            &il,
+            &iu,
+            &mut found,
+            vals.as_mut_ptr(),
+            z.as_mut_ptr(),
+            &ni,
+            &ni,
+            isuppz.as_mut_ptr(),
+            &mut tryrac,
+            work.as_mut_ptr(),
+            &lwi,
+            iwork.as_mut_ptr(),
+            &liwi,
+            &mut info,
         );
     }
     if info != 0 || found as usize != n {
@@ -404,7 +466,11 @@ fn spectral_weights_tridiagonal(
 }
 
 /// Eigenpairs of the symmetric tridiagonal (d, e) by LAPACK dstedc; z column-major n x n.
-fn tridiagonal_eigen_dc(mut d: Vec<f64>, mut e: Vec<f64>, what: &str) -> Result<(Vec<f64>, Vec<f64>)> {
+fn tridiagonal_eigen_dc(
+    mut d: Vec<f64>,
+    mut e: Vec<f64>,
+    what: &str,
+) -> Result<(Vec<f64>, Vec<f64>)> {
     let n = d.len();
     let ni = c_int::try_from(n).expect("dimension fits a LAPACK int");
     let compz = b'I' as c_char;
@@ -415,8 +481,17 @@ fn tridiagonal_eigen_dc(mut d: Vec<f64>, mut e: Vec<f64>, what: &str) -> Result<
     // SAFETY: workspace query.
     unsafe {
         dstedc_(
-            &compz, &ni, d.as_mut_ptr(), e.as_mut_ptr(), z.as_mut_ptr(), &ni, wq.as_mut_ptr(),
-            &minus1, iwq.as_mut_ptr(), &minus1, &mut info,
+            &compz,
+            &ni,
+            d.as_mut_ptr(),
+            e.as_mut_ptr(),
+            z.as_mut_ptr(),
+            &ni,
+            wq.as_mut_ptr(),
+            &minus1,
+            iwq.as_mut_ptr(),
+            &minus1,
+            &mut info,
         );
     }
     let (lw, liw) = ((wq[0] as usize).max(1), (iwq[0] as usize).max(1));
@@ -426,8 +501,17 @@ fn tridiagonal_eigen_dc(mut d: Vec<f64>, mut e: Vec<f64>, what: &str) -> Result<
     // SAFETY: buffers sized by the query; z is n x n.
     unsafe {
         dstedc_(
-            &compz, &ni, d.as_mut_ptr(), e.as_mut_ptr(), z.as_mut_ptr(), &ni, work.as_mut_ptr(),
-            &lwi, iwork.as_mut_ptr(), &liwi, &mut info,
+            &compz,
+            &ni,
+            d.as_mut_ptr(),
+            e.as_mut_ptr(),
+            z.as_mut_ptr(),
+            &ni,
+            work.as_mut_ptr(),
+            &lwi,
+            iwork.as_mut_ptr(),
+            &liwi,
+            &mut info,
         );
     }
     if info != 0 {
@@ -527,7 +611,11 @@ pub fn symmetric_eigen(m: Array2<f64>, what: &str) -> Result<(Vec<f64>, Array2<f
         });
     }
     // Row-major symmetric == column-major symmetric; column-major eigenvectors are row-major rows.
-    let mut a = m.as_standard_layout().into_owned().into_raw_vec_and_offset().0;
+    let mut a = m
+        .as_standard_layout()
+        .into_owned()
+        .into_raw_vec_and_offset()
+        .0;
     let ni = c_int::try_from(n).expect("dimension fits a LAPACK int");
     let mut w = vec![0.0; n];
     let (jobz, uplo) = (b'V' as c_char, b'L' as c_char);
@@ -631,7 +719,10 @@ mod tests {
             };
             let want = ll(&c) - ll(&z);
             let got = curve.log_likelihood_ratio(a2);
-            assert!((got - want).abs() < 1e-10 * want.abs().max(1.0), "{got} {want}");
+            assert!(
+                (got - want).abs() < 1e-10 * want.abs().max(1.0),
+                "{got} {want}"
+            );
         }
         let _ = z.cholesky(UPLO::Lower).unwrap();
     }
@@ -661,7 +752,10 @@ mod tests {
         assert!((total / w.dot(&w) - 1.0).abs() < 1e-12, "sum t^2 = |w|^2");
         for a2 in [1e-4, 1e-2, 1.0, 100.0] {
             let (x, y) = (full.log_likelihood_ratio(a2), tri.log_likelihood_ratio(a2));
-            assert!((x - y).abs() < 1e-9 * x.abs().max(1.0), "a2 {a2}: {x} vs {y}");
+            assert!(
+                (x - y).abs() < 1e-9 * x.abs().max(1.0),
+                "a2 {a2}: {x} vs {y}"
+            );
         }
     }
 
@@ -678,7 +772,9 @@ mod tests {
             flops: 0.0,
         };
         let grid = FrequencyGrid::new(55000.0, 58000.0, 2).unwrap();
-        let e = CommonData::from_reduced(&[r], &grid).unwrap_err().to_string();
+        let e = CommonData::from_reduced(&[r], &grid)
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("P07") && e.contains("fewer frequencies"), "{e}");
         assert!(CommonData::from_reduced(&[], &grid).is_err());
     }
