@@ -124,7 +124,7 @@ impl CommonSettings {
                 ),
             ));
         }
-        if self.n_spectral_index < 3 || self.n_spectral_index % 2 == 0 {
+        if self.n_spectral_index < 3 || self.n_spectral_index.is_multiple_of(2) {
             return Err(Error::setting(
                 "index-points",
                 format!(
@@ -518,7 +518,7 @@ fn varied_index_fit(
     };
     let all: Vec<usize> = (0..n).collect();
     let fine = integrate(&simpson_weights(n, h), &all);
-    let coarse = if (n - 1) % 4 == 0 {
+    let coarse = if (n - 1).is_multiple_of(4) {
         let idx: Vec<usize> = (0..n).step_by(2).collect();
         integrate(&simpson_weights(idx.len(), 2.0 * h), &idx)
     } else {
@@ -528,7 +528,7 @@ fn varied_index_fit(
         integrate(&w, &all)
     };
     // Richardson: Simpson's error is (S_h - S_2h) / 15 of the value.
-    let rule_err = if (n - 1) % 4 == 0 {
+    let rule_err = if (n - 1).is_multiple_of(4) {
         ((coarse - fine).exp_m1().abs()) / 15.0
     } else {
         (coarse - fine).exp_m1().abs()
