@@ -16,6 +16,7 @@ use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 use std::time::Instant;
 
+mod common_cmd;
 mod demo;
 mod figures_cmd;
 mod inject_cmd;
@@ -79,7 +80,16 @@ enum Command {
         out: PathBuf,
         #[command(flatten)]
         analysis: AnalysisArgs,
+        /// Take the auto-power common process from a `ptacorr common` output folder (its CURN
+        /// fit at the fixed index) instead of noise.toml.
+        #[arg(long, conflicts_with_all = ["no_common", "common_log10_amplitude"])]
+        common_fit: Option<PathBuf>,
+        /// Which value of that fit's log10 A posterior to take.
+        #[arg(long, value_enum, default_value = "median", requires = "common_fit")]
+        common_fit_value: common_cmd::FitValueArg,
     },
+    /// Fit a common red process (CURN, HD, monopole, dipole) and compare them by Bayes factors.
+    Common(Box<common_cmd::CommonArgs>),
     /// Draw the figure of an output folder (correlate, null or inject).
     Plot(figures_cmd::PlotArgs),
     /// Gather output folders into a memo-ready report (Markdown, HTML, LaTeX tables, figures).
@@ -207,14 +217,23 @@ fn run(cli: Cli) -> Result<()> {
             release,
             out,
             analysis,
+            common_fit,
+            common_fit_value,
         } => {
-            let settings = analysis.settings();
+            let mut settings = analysis.settings();
+            if let Some(dir) = common_fit {
+                settings.common = CommonAutoPower::FromCommonFit(common_cmd::common_from_fit(
+                    &dir,
+                    common_fit_value,
+                )?);
+            }
             let (rel, c) = correlate_release(&release, &settings)?;
             c.write(&out, &rel, &settings)?;
             print_summary(&rel, &c);
             println!("wrote {}/summary.json, pairs.csv, bins.csv", out.display());
             Ok(())
         }
+        Command::Common(args) => common_cmd::run(&args),
         Command::Plot(args) => figures_cmd::plot(&args),
         Command::Report(args) => figures_cmd::report(&args).map(|_| ()),
         Command::Inject(args) => inject_cmd::run(args),

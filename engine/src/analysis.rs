@@ -29,6 +29,8 @@ pub enum CommonAutoPower {
     Off,
     /// This power law instead.
     Given(PowerLaw),
+    /// The fixed-index fit of a `ptacorr common` run (docs/common-process.md).
+    FromCommonFit(crate::common::FittedCommon),
 }
 
 /// Settings of a correlation analysis.
@@ -102,6 +104,7 @@ impl CorrelateSettings {
             }
             CommonAutoPower::Off => None,
             CommonAutoPower::Given(p) => Some(p),
+            CommonAutoPower::FromCommonFit(f) => Some(f.power_law),
         }
     }
 }

@@ -176,6 +176,7 @@ impl Campaign {
                     }
                     CommonAutoPower::Off => None,
                     CommonAutoPower::Given(p) => Some(p),
+                    CommonAutoPower::FromCommonFit(f) => Some(f.power_law),
                 };
                 match law {
                     None => vec![0.0; m],

@@ -1,0 +1,153 @@
+//! `ptacorr common`: the common process, its posteriors and Bayes factors (argument parsing and
+//! presentation only; every number comes from the engine's `common` module).
+
+use anyhow::{Context, Result};
+use ptacorr::common::{
+    comparison_name, fit_common, read_fitted_common, AmplitudePrior, CommonData, CommonModel,
+    CommonSettings, FitStatistic, FittedCommon, COMMON_ASSUMPTIONS,
+};
+use ptacorr::release::read_release;
+use std::path::{Path, PathBuf};
+use std::time::Instant;
+
+#[derive(Clone, Copy, clap::ValueEnum)]
+pub enum PriorArg {
+    /// Uniform in log10 A (default; for Bayes factors).
+    UniformLog10,
+    /// Uniform in A (for upper limits).
+    UniformAmplitude,
+}
+
+#[derive(clap::Args)]
+pub struct CommonArgs {
+    /// The release folder.
+    release: PathBuf,
+    /// Output folder for summary.json and the CSV tables.
+    #[arg(long)]
+    out: PathBuf,
+    /// Number of analysis frequencies f_j = j / T_span.
+    #[arg(long, default_value_t = 14)]
+    frequencies: usize,
+    /// Prior range of log10 A: LO,HI.
+    #[arg(long, default_value = "-18,-12", allow_hyphen_values = true)]
+    log10_amplitude_range: String,
+    /// Prior range of the spectral index: LO,HI.
+    #[arg(long, default_value = "0,7")]
+    index_range: String,
+    /// Number of spectral-index nodes (odd; Simpson's rule).
+    #[arg(long, default_value_t = 41)]
+    index_points: usize,
+    /// The fixed spectral index.
+    #[arg(long, default_value_t = 13.0 / 3.0)]
+    fixed_index: f64,
+    /// Number of log10 A points in the CSV tables.
+    #[arg(long, default_value_t = 121)]
+    amplitude_points: usize,
+    #[arg(long, value_enum, default_value = "uniform-log10")]
+    amplitude_prior: PriorArg,
+}
+
+fn parse_range(s: &str, name: &str) -> Result<(f64, f64)> {
+    let parts: Vec<&str> = s.split(',').collect();
+    let bad = || anyhow::anyhow!("invalid setting {name}: expected LO,HI (two numbers), got {s:?}");
+    if parts.len() != 2 {
+        return Err(bad());
+    }
+    let lo = parts[0].trim().parse::<f64>().map_err(|_| bad())?;
+    let hi = parts[1].trim().parse::<f64>().map_err(|_| bad())?;
+    Ok((lo, hi))
+}
+
+impl CommonArgs {
+    fn settings(&self) -> Result<CommonSettings> {
+        let (a0, a1) = parse_range(&self.log10_amplitude_range, "log10-amplitude-range")?;
+        let (g0, g1) = parse_range(&self.index_range, "index-range")?;
+        let s = CommonSettings {
+            n_frequencies: self.frequencies,
+            log10_amplitude_min: a0,
+            log10_amplitude_max: a1,
+            spectral_index_min: g0,
+            spectral_index_max: g1,
+            n_spectral_index: self.index_points,
+            fixed_spectral_index: self.fixed_index,
+            n_table_amplitudes: self.amplitude_points,
+            amplitude_prior: match self.amplitude_prior {
+                PriorArg::UniformLog10 => AmplitudePrior::UniformLog10,
+                PriorArg::UniformAmplitude => AmplitudePrior::UniformAmplitude,
+            },
+            ..Default::default()
+        };
+        s.validate()?;
+        Ok(s)
+    }
+}
+
+/// Run `ptacorr common`.
+pub fn run(args: &CommonArgs) -> Result<()> {
+    let settings = args.settings()?;
+    let t = Instant::now();
+    let rel = read_release(&args.release)
+        .with_context(|| format!("reading release {}", args.release.display()))?;
+    let data = CommonData::from_release(&rel, &rel.noise, settings.n_frequencies)?;
+    let fit = fit_common(&data, &settings)?;
+    fit.write(&args.out, &rel, &data)?;
+    println!(
+        "{} pulsars, {} frequencies; prior: {} on [{}, {}], gamma uniform on [{}, {}]",
+        data.n_pulsars(),
+        data.k(),
+        settings.amplitude_prior.name(),
+        settings.log10_amplitude_min,
+        settings.log10_amplitude_max,
+        settings.spectral_index_min,
+        settings.spectral_index_max
+    );
+    println!(
+        "  model      log10 A (gamma = {:.3}): median [95% interval]   95% upper limit",
+        settings.fixed_spectral_index
+    );
+    for (m, f) in &fit.fits {
+        let s = f.fixed.posterior.summary();
+        println!(
+            "  {:<9} {:>8.3} [{:.3}, {:.3}]   {:.3}",
+            m.name(),
+            s.median,
+            s.interval_95[0],
+            s.interval_95[1],
+            s.upper_limit_95
+        );
+    }
+    for (fixed, label) in [(true, "fixed index"), (false, "varied index")] {
+        println!("  ln Bayes factors, {label}:");
+        for b in fit.standard_bayes_factors(fixed) {
+            println!(
+                "    {:<14} {:>9.3} +- {:.1e}",
+                comparison_name(&b),
+                b.ln_bayes_factor,
+                b.ln_error
+            );
+        }
+    }
+    println!("  {COMMON_ASSUMPTIONS}");
+    eprintln!("fitted in {:.2} s", t.elapsed().as_secs_f64());
+    println!(
+        "wrote {}/summary.json, posterior-fixed-index.csv, posterior-grid.csv, marginals.csv",
+        args.out.display()
+    );
+    Ok(())
+}
+
+/// The value of `correlate --common-fit-value`.
+#[derive(Clone, Copy, clap::ValueEnum)]
+pub enum FitValueArg {
+    Median,
+    Map,
+}
+
+/// The CURN fixed-index common process of a `ptacorr common` output folder, for `correlate`.
+pub fn common_from_fit(dir: &Path, value: FitValueArg) -> Result<FittedCommon> {
+    let statistic = match value {
+        FitValueArg::Median => FitStatistic::Median,
+        FitValueArg::Map => FitStatistic::Map,
+    };
+    Ok(read_fitted_common(dir, CommonModel::Curn, statistic)?)
+}

@@ -1,0 +1,12 @@
+//! The common red process of the whole array and the Bayesian half of the search: the exact
+//! likelihood of the reduced data for a power-law common process with a chosen inter-pulsar
+//! correlation, its posterior on a (log10 A, gamma) grid, and Bayes factors between correlation
+//! models (docs/common-process.md).
+
+pub mod evidence;
+pub mod likelihood;
+pub mod write;
+
+pub use evidence::*;
+pub use likelihood::*;
+pub use write::*;
