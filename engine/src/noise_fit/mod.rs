@@ -27,7 +27,9 @@ use std::path::Path;
 pub struct NoiseSettings {
     pub seed: u64,
     pub map: MapSettings,
-    /// The pulsars of this shard (contiguous block of the release's order).
+    /// The pulsars of this shard (contiguous block of the release's order); recorded in the
+    /// provenance as shard_index/shard_count, not among the settings that shards must share.
+    #[serde(skip)]
     pub shard: Shard,
 }
 
@@ -259,6 +261,8 @@ fn csv_text<T: Serialize>(rows: &[T], what: &str) -> Result<String> {
 
 /// The file names of a noise folder.
 pub const NOISE_FILE: &str = "noise.toml";
+/// First line of a written `noise.toml`.
+const NOISE_HEADER: &str = "# Noise model estimated by ptacorr noise (MAP values)\n";
 pub const ESTIMATES_FILE: &str = "estimates.csv";
 pub const DIAGNOSTICS_FILE: &str = "diagnostics.csv";
 pub const PRIORS_FILE: &str = "priors.toml";
@@ -273,10 +277,7 @@ pub fn write_run(run: &NoiseRun, dir: &Path) -> Result<()> {
     let estimates: Vec<Estimate> = run.fits.iter().flat_map(|f| f.estimates()).collect();
     let diagnostics: Vec<DiagnosticsRow> = run.fits.iter().map(|f| f.diagnostics()).collect();
     let files = [
-        (
-            NOISE_FILE,
-            format!("# Noise model estimated by ptacorr noise (MAP values)\n{noise_text}"),
-        ),
+        (NOISE_FILE, format!("{NOISE_HEADER}{noise_text}")),
         (ESTIMATES_FILE, csv_text(&estimates, ESTIMATES_FILE)?),
         (DIAGNOSTICS_FILE, csv_text(&diagnostics, DIAGNOSTICS_FILE)?),
         (PRIORS_FILE, run.priors_toml.clone()),
@@ -368,8 +369,7 @@ pub fn merge_shards(dirs: &[&Path], out: &Path) -> Result<()> {
     crate::output::ensure_dir(out)?;
     write_atomic(
         &out.join(NOISE_FILE),
-        format!("# Noise model estimated by ptacorr noise (merged shards)\n{noise_text}")
-            .as_bytes(),
+        format!("{NOISE_HEADER}{noise_text}").as_bytes(),
     )?;
     write_atomic(&out.join(ESTIMATES_FILE), estimates.as_bytes())?;
     write_atomic(&out.join(DIAGNOSTICS_FILE), diagnostics.as_bytes())?;
