@@ -166,8 +166,8 @@ mod tests {
 
     #[test]
     fn logistic_pieces_agree_with_their_definitions() {
-        for x in [-40.0, -3.0, 0.0, 0.7, 25.0] {
-            let s: f64 = 1.0 / (1.0 + (-x as f64).exp());
+        for x in [-40.0f64, -3.0, 0.0, 0.7, 25.0] {
+            let s: f64 = 1.0 / (1.0 + (-x).exp());
             assert!((logistic(x) - s).abs() <= 1e-15 * s.max(1e-300), "{x}");
             // ln(s) + ln(1 - s) = -softplus(-x) - softplus(x) (definition of softplus).
             let direct = s.ln() + (1.0 - s).ln();
