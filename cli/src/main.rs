@@ -20,6 +20,7 @@ mod common_cmd;
 mod demo;
 mod figures_cmd;
 mod inject_cmd;
+mod noise_cmd;
 mod null_cmd;
 
 #[derive(Parser)]
@@ -105,6 +106,10 @@ enum Command {
         #[arg(long)]
         out: PathBuf,
     },
+    /// Estimate every pulsar's noise model from the release (docs/noise-estimation.md).
+    Noise(noise_cmd::NoiseArgs),
+    /// Merge the shard folders of one `ptacorr noise` run.
+    MergeNoise(noise_cmd::MergeNoiseArgs),
 }
 
 #[derive(clap::Args, Clone)]
@@ -239,6 +244,8 @@ fn run(cli: Cli) -> Result<()> {
         Command::Inject(args) => inject_cmd::run(args),
         Command::Null(args) => null_cmd::run_null(*args),
         Command::Merge { dirs, out } => null_cmd::run_merge(&dirs, &out),
+        Command::Noise(args) => noise_cmd::run(args),
+        Command::MergeNoise(args) => noise_cmd::run_merge(args),
     }
 }
 

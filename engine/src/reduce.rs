@@ -170,25 +170,7 @@ impl PulsarModel {
         } else {
             Vec::new()
         };
-        let mut wa = Array2::<f64>::zeros((n, n_cols));
-        let mut trig = vec![0.0; 2 * k_all];
-        for (i, mut row) in wa.rows_mut().into_iter().enumerate() {
-            let row = row.as_slice_mut().expect("standard layout");
-            let w = sqrt_dinv[i];
-            fourier_row_ladder(t[i], ladder[0], &mut trig);
-            for (dst, &src) in row[..n_m].iter_mut().zip(m.row(i)) {
-                *dst = w * src;
-            }
-            for (dst, &src) in row[c_four..c_dm].iter_mut().zip(&trig) {
-                *dst = w * src;
-            }
-            if k_dm > 0 {
-                let wd = w * dm_scale[i];
-                for (dst, &src) in row[c_dm..].iter_mut().zip(&trig) {
-                    *dst = wd * src;
-                }
-            }
-        }
+        let wa = basis_columns(&m, &t, &ladder, k_f, k_dm, &dm_scale, &sqrt_dinv);
         drop(m);
 
         // T's columns in U and the prior inverses of T (0 for the timing model's flat prior).
@@ -225,27 +207,16 @@ impl PulsarModel {
                 .map(|(b, idx)| {
                     let c2 = whites[b].ecorr().expect("ecorr backend").powi(2);
                     let sum_dinv: f64 = idx.iter().map(|&i| sqrt_dinv[i] * sqrt_dinv[i]).sum();
-                    (idx, (c2 / (1.0 + c2 * sum_dinv)).sqrt())
+                    (idx, ecorr_beta(c2, sum_dinv).sqrt())
                 })
                 .collect()
         } else {
             Vec::new()
         };
-        let mut v = Array2::<f64>::zeros((epochs.len(), n_cols));
-        for (e, (idx, sqrt_beta)) in epochs.iter().enumerate() {
-            let mut row = v.row_mut(e);
-            for &i in idx {
-                row.scaled_add(sqrt_beta * sqrt_dinv[i], &wa.row(i));
-            }
-        }
+        let v = ecorr_rows(&epochs, &sqrt_dinv, &wa);
 
-        // U^T N^-1 U = U^T D^-1 U - V^T V: two symmetric rank-k updates (upper triangle).
-        let mut gram = Array2::<f64>::zeros((n_cols, n_cols));
-        syrk_tn(1.0, &wa, 0.0, &mut gram);
-        if !epochs.is_empty() {
-            syrk_tn(-1.0, &v, 1.0, &mut gram);
-        }
-        mirror_upper(&mut gram);
+        // U^T N^-1 U = U^T D^-1 U - V^T V: two symmetric rank-k updates.
+        let gram = gram_n_inv(&wa, &v);
 
         let mut smat = Array2::<f64>::zeros((n_t, n_t));
         let mut tnf = Array2::<f64>::zeros((n_t, 2 * k));
@@ -329,6 +300,93 @@ impl PulsarModel {
     pub fn flops(&self) -> f64 {
         self.flops
     }
+}
+
+/// The distinct columns U = [M | Fourier over `k_f` | chromatic Fourier over `k_dm`] of one
+/// pulsar (n x (n_m + 2 k_f + 2 k_dm)), row i scaled by `w[i]` (D^-1/2 for the whitened form
+/// of [`PulsarModel`], 1 for the plain basis of the likelihood), written row by row in one pass.
+/// `ladder` holds at least max(k_f, k_dm) frequencies j / T_span; `dm_scale` is
+/// [`chromatic_scale`] of the TOAs (may be empty when `k_dm` = 0).
+pub(crate) fn basis_columns(
+    m: &Array2<f64>,
+    t: &[f64],
+    ladder: &[f64],
+    k_f: usize,
+    k_dm: usize,
+    dm_scale: &[f64],
+    w: &[f64],
+) -> Array2<f64> {
+    let n = t.len();
+    let n_m = m.ncols();
+    let (c_four, c_dm) = (n_m, n_m + 2 * k_f);
+    let n_cols = c_dm + 2 * k_dm;
+    let k_all = k_f.max(k_dm);
+    let mut wa = Array2::<f64>::zeros((n, n_cols));
+    if k_all == 0 {
+        for (i, mut row) in wa.rows_mut().into_iter().enumerate() {
+            for (dst, &src) in row.iter_mut().zip(m.row(i)) {
+                *dst = w[i] * src;
+            }
+        }
+        return wa;
+    }
+    let mut trig = vec![0.0; 2 * k_all];
+    for (i, mut row) in wa.rows_mut().into_iter().enumerate() {
+        let row = row.as_slice_mut().expect("standard layout");
+        let w = w[i];
+        fourier_row_ladder(t[i], ladder[0], &mut trig);
+        for (dst, &src) in row[..n_m].iter_mut().zip(m.row(i)) {
+            *dst = w * src;
+        }
+        for (dst, &src) in row[c_four..c_dm].iter_mut().zip(&trig) {
+            *dst = w * src;
+        }
+        if k_dm > 0 {
+            let wd = w * dm_scale[i];
+            for (dst, &src) in row[c_dm..].iter_mut().zip(&trig) {
+                *dst = wd * src;
+            }
+        }
+    }
+    wa
+}
+
+/// Sherman-Morrison weight of one ECORR epoch (Sherman & Morrison 1950): with
+/// N_I = D_I + c^2 1 1^T, N_I^-1 = D_I^-1 - beta D_I^-1 1 1^T D_I^-1 and
+/// beta = c^2 / (1 + c^2 1^T D_I^-1 1); `sum_dinv` is 1^T D_I^-1 1.
+pub(crate) fn ecorr_beta(c2: f64, sum_dinv: f64) -> f64 {
+    c2 / (1.0 + c2 * sum_dinv)
+}
+
+/// V (epochs x cols): row e is beta_e^(1/2) times the sum over epoch e of D^-1/2 times the rows
+/// of the whitened basis `wa`, so that U^T N^-1 U = U^T D^-1 U - V^T V. `epochs` holds the TOA
+/// indices and beta^(1/2) of each epoch.
+pub(crate) fn ecorr_rows(
+    epochs: &[(Vec<usize>, f64)],
+    sqrt_dinv: &[f64],
+    wa: &Array2<f64>,
+) -> Array2<f64> {
+    let mut v = Array2::<f64>::zeros((epochs.len(), wa.ncols()));
+    for (e, (idx, sqrt_beta)) in epochs.iter().enumerate() {
+        let mut row = v.row_mut(e);
+        for &i in idx {
+            row.scaled_add(sqrt_beta * sqrt_dinv[i], &wa.row(i));
+        }
+    }
+    v
+}
+
+/// U^T N^-1 U = (D^-1/2 U)^T (D^-1/2 U) - V^T V (cols x cols, both triangles): two symmetric
+/// rank-k updates, the ECORR blocks folded in by Sherman-Morrison ([`ecorr_rows`]).
+pub(crate) fn gram_n_inv(wa: &Array2<f64>, v: &Array2<f64>) -> Array2<f64> {
+    let n_cols = wa.ncols();
+    let mut gram = Array2::<f64>::zeros((n_cols, n_cols));
+    syrk_tn(1.0, wa, 0.0, &mut gram);
+    if v.nrows() > 0 {
+        syrk_tn(-1.0, v, 1.0, &mut gram);
+    }
+    mirror_upper(&mut gram);
+    gram
 }
 
 /// Reduce one pulsar: build its model and apply it to its residuals.

@@ -17,6 +17,8 @@ pub enum Purpose {
     SimulatedNull = 6,
     Injection = 7,
     TimeDomainNull = 8,
+    NoiseStart = 9,
+    NoiseChain = 10,
 }
 
 /// SplitMix64 finaliser (Steele, Lea & Flood 2014), used to spread seeds.

@@ -1,0 +1,629 @@
+//! The Gaussian likelihood of one pulsar as a function of its noise hyperparameters, with its
+//! analytic gradient (docs/noise-estimation.md).
+//!
+//! The covariance is C = N + F B F^T: N the white noise (EFAC, EQUAD per backend, ECORR blocks
+//! folded in by Sherman-Morrison, as in [`crate::reduce`]), F the red and chromatic Fourier bases
+//! on j / T_span, B their power-law prior variances. The timing model M is marginalised with a
+//! flat prior (van Haasteren & Levin 2013, MNRAS 428, 1147):
+//!
+//! ln L = -1/2 [r^T P r + ln det C + ln det(M^T C^-1 M)] - (n - m)/2 ln 2 pi,
+//! P = C^-1 - C^-1 M (M^T C^-1 M)^-1 M^T C^-1,
+//!
+//! evaluated in the Woodbury form with T = [M | F] and B^-1 = 0 on M's columns
+//! (van Haasteren & Vallisneri 2014, MNRAS 446, 1170): with S = B^-1 + T^T N^-1 T and
+//! a = S^-1 T^T N^-1 r,
+//!
+//! r^T P r = (r - T a)^T N^-1 (r - T a) + a^T B^-1 a,
+//! ln det C + ln det(M^T C^-1 M) = ln det N + ln det B + ln det S   (B over F's columns only).
+//!
+//! The gradient is d ln L = 1/2 [(P r)^T dC (P r) - tr(P dC)] (Petersen & Pedersen, The Matrix
+//! Cookbook 2012, eqs. 38 and 61, with the marginalisation folded into P). For a power-law
+//! column j: T^T P r = B^-1 a and T^T P T = B^-1 S^-1 (T^T N^-1 T), so each column costs O(1)
+//! once S is factored; white-noise terms use diag(P) and 1^T P 1 over each ECORR epoch.
+
+use crate::basis::{chromatic_scale, ecorr_epochs, timing_model, ECORR_EPOCH_GAP_S};
+use crate::constants::F_YR;
+use crate::error::{Error, Result};
+use crate::linalg::{syrk_flops, ScaledCholesky};
+use crate::noise::{PulsarNoise, RedProcess, WhiteNoise};
+use crate::reduce::{basis_columns, ecorr_beta, ecorr_rows, gram_n_inv, FrequencyGrid};
+use crate::release::Pulsar;
+use crate::spectrum::{power_law_phi, PowerLaw};
+use ndarray::{Array1, Array2};
+use std::f64::consts::{LN_10, PI};
+
+/// Which white-noise terms of one backend are free parameters (an absent EFAC is 1, an absent
+/// EQUAD or ECORR is 0).
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Default)]
+pub struct BackendTerms {
+    pub efac: bool,
+    pub log10_equad: bool,
+    pub log10_ecorr: bool,
+}
+
+/// The common process in a pulsar's auto-power: given, or with free amplitude and index.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum CommonTerm {
+    Fixed(PowerLaw),
+    Free,
+}
+
+/// A common process on the first `n_frequencies` frequencies of the ladder.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct CommonSpec {
+    pub n_frequencies: usize,
+    pub term: CommonTerm,
+}
+
+/// The noise processes of one pulsar's model.
+#[derive(Clone, Debug, PartialEq, Default)]
+pub struct Components {
+    /// One entry per backend of the pulsar, in the order of `Pulsar::backends`.
+    pub backends: Vec<BackendTerms>,
+    /// Achromatic red noise on this many frequencies.
+    pub red: Option<usize>,
+    /// Chromatic (DM) noise on this many frequencies, basis scaled by (1400 MHz / nu)^2.
+    pub dm: Option<usize>,
+    pub common: Option<CommonSpec>,
+}
+
+/// What a hyperparameter is; backends by their index in `Pulsar::backends`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Hyper {
+    Efac(usize),
+    /// log10 of EQUAD in seconds.
+    Log10Equad(usize),
+    /// log10 of ECORR in seconds.
+    Log10Ecorr(usize),
+    RedLog10Amplitude,
+    RedSpectralIndex,
+    DmLog10Amplitude,
+    DmSpectralIndex,
+    CommonLog10Amplitude,
+    CommonSpectralIndex,
+}
+
+/// One hyperparameter: its kind and its name in chain tables (`efac.KRK-L`,
+/// `log10_equad_s.KRK-L`, `red.log10_amplitude`, ...).
+#[derive(Clone, Debug, PartialEq)]
+pub struct Hyperparameter {
+    pub name: String,
+    pub kind: Hyper,
+}
+
+/// Indices of a backend's free parameters in the parameter vector.
+#[derive(Clone, Copy, Debug, Default)]
+struct WhiteIndex {
+    efac: Option<usize>,
+    equad: Option<usize>,
+    ecorr: Option<usize>,
+}
+
+/// A power-law block of T: its columns (start in T) and frequencies.
+#[derive(Clone, Debug)]
+struct Block {
+    start: usize,
+    freqs: Vec<f64>,
+}
+
+/// The likelihood of one pulsar, with everything that does not depend on the hyperparameters
+/// (bases, epochs) built once.
+pub struct PulsarLikelihood {
+    label: String,
+    residual: Vec<f64>,
+    sigma: Vec<f64>,
+    backend: Vec<usize>,
+    backends: Vec<String>,
+    /// T = [M | Fourier (k_r) | chromatic Fourier (k_dm)], unwhitened (n x cols).
+    t: Array2<f64>,
+    n_m: usize,
+    t_span: f64,
+    /// Red columns (shared by red noise and the common process): k_r = max(k_red, k_common).
+    red_block: Option<Block>,
+    k_red: usize,
+    k_common: usize,
+    dm_block: Option<Block>,
+    common: Option<CommonTerm>,
+    /// ECORR epochs: backend and TOA indices.
+    epochs: Vec<(usize, Vec<usize>)>,
+    white_index: Vec<WhiteIndex>,
+    red_index: Option<usize>,
+    dm_index: Option<usize>,
+    common_index: Option<usize>,
+    params: Vec<Hyperparameter>,
+}
+
+impl PulsarLikelihood {
+    /// The likelihood of pulsar `p` under `components`, Fourier frequencies on the ladder of
+    /// `grid` (j / T_span, time origin `grid.t0_mjd`).
+    pub fn new(p: &Pulsar, components: &Components, grid: &FrequencyGrid) -> Result<Self> {
+        if components.backends.len() != p.backends.len() {
+            return Err(Error::setting(
+                "components",
+                format!(
+                    "pulsar {} has {} backends, the model lists {}",
+                    p.label,
+                    p.backends.len(),
+                    components.backends.len()
+                ),
+            ));
+        }
+        let t = grid.seconds(&p.mjd);
+        let k_red = components.red.unwrap_or(0);
+        let k_dm = components.dm.unwrap_or(0);
+        let k_common = components.common.map_or(0, |c| c.n_frequencies);
+        if components.red == Some(0)
+            || components.dm == Some(0)
+            || components.common.is_some() && k_common == 0
+        {
+            return Err(Error::setting(
+                "n_frequencies",
+                format!(
+                    "pulsar {}: a red, DM or common process needs at least one frequency",
+                    p.label
+                ),
+            ));
+        }
+        let k_r = k_red.max(k_common);
+        let ladder = grid.ladder(k_r.max(k_dm));
+        let m = timing_model(p, &t)?;
+        let n_m = m.ncols();
+        let dm_scale = if k_dm > 0 {
+            chromatic_scale(&p.freq_mhz)
+        } else {
+            Vec::new()
+        };
+        let ones = vec![1.0; t.len()];
+        let tmat = basis_columns(&m, &t, &ladder, k_r, k_dm, &dm_scale, &ones);
+
+        let mut params = Vec::new();
+        let push = |params: &mut Vec<Hyperparameter>, name: String, kind: Hyper| {
+            params.push(Hyperparameter { name, kind });
+            params.len() - 1
+        };
+        let mut white_index = Vec::new();
+        for (b, terms) in components.backends.iter().enumerate() {
+            let name = &p.backends[b];
+            let mut w = WhiteIndex::default();
+            if terms.efac {
+                w.efac = Some(push(&mut params, format!("efac.{name}"), Hyper::Efac(b)));
+            }
+            if terms.log10_equad {
+                w.equad = Some(push(
+                    &mut params,
+                    format!("log10_equad_s.{name}"),
+                    Hyper::Log10Equad(b),
+                ));
+            }
+            if terms.log10_ecorr {
+                w.ecorr = Some(push(
+                    &mut params,
+                    format!("log10_ecorr_s.{name}"),
+                    Hyper::Log10Ecorr(b),
+                ));
+            }
+            white_index.push(w);
+        }
+        let pair = |params: &mut Vec<Hyperparameter>, prefix: &str, a: Hyper, g: Hyper| {
+            let i = push(params, format!("{prefix}.log10_amplitude"), a);
+            push(params, format!("{prefix}.spectral_index"), g);
+            i
+        };
+        let red_index = components.red.map(|_| {
+            pair(
+                &mut params,
+                "red",
+                Hyper::RedLog10Amplitude,
+                Hyper::RedSpectralIndex,
+            )
+        });
+        let dm_index = components.dm.map(|_| {
+            pair(
+                &mut params,
+                "dm",
+                Hyper::DmLog10Amplitude,
+                Hyper::DmSpectralIndex,
+            )
+        });
+        let common_index = match components.common.map(|c| c.term) {
+            Some(CommonTerm::Free) => Some(pair(
+                &mut params,
+                "common",
+                Hyper::CommonLog10Amplitude,
+                Hyper::CommonSpectralIndex,
+            )),
+            _ => None,
+        };
+
+        let use_ecorr: Vec<bool> = components.backends.iter().map(|b| b.log10_ecorr).collect();
+        let epochs = if use_ecorr.iter().any(|&u| u) {
+            ecorr_epochs(&t, &p.backend, &use_ecorr, ECORR_EPOCH_GAP_S)
+        } else {
+            Vec::new()
+        };
+        Ok(PulsarLikelihood {
+            label: p.label.clone(),
+            residual: p.residual.clone(),
+            sigma: p.sigma.clone(),
+            backend: p.backend.clone(),
+            backends: p.backends.clone(),
+            t: tmat,
+            n_m,
+            t_span: grid.t_span,
+            red_block: (k_r > 0).then(|| Block {
+                start: n_m,
+                freqs: ladder[..k_r].to_vec(),
+            }),
+            k_red,
+            k_common,
+            dm_block: (k_dm > 0).then(|| Block {
+                start: n_m + 2 * k_r,
+                freqs: ladder[..k_dm].to_vec(),
+            }),
+            common: components.common.map(|c| c.term),
+            epochs,
+            white_index,
+            red_index,
+            dm_index,
+            common_index,
+            params,
+        })
+    }
+
+    /// The hyperparameters, in the order of the parameter vector.
+    pub fn parameters(&self) -> &[Hyperparameter] {
+        &self.params
+    }
+
+    /// Number of hyperparameters.
+    pub fn dim(&self) -> usize {
+        self.params.len()
+    }
+
+    /// The pulsar's label.
+    pub fn label(&self) -> &str {
+        &self.label
+    }
+
+    /// Number of TOAs n and columns of T.
+    pub fn shape(&self) -> (usize, usize) {
+        self.t.dim()
+    }
+
+    /// ln L at `theta`.
+    pub fn log_likelihood(&self, theta: &[f64]) -> Result<f64> {
+        self.evaluate(theta, None)
+    }
+
+    /// ln L at `theta` and its gradient (written to `grad`, length [`Self::dim`]).
+    pub fn log_likelihood_and_gradient(&self, theta: &[f64], grad: &mut [f64]) -> Result<f64> {
+        self.evaluate(theta, Some(grad))
+    }
+
+    /// Floating-point operations of one value-and-gradient evaluation as counted: the rank-k
+    /// update T^T D^-1 T (n c (c + 1)), V^T V, the triangular solve L^-1 (N^-1 T)^T (n c^2),
+    /// forming V, N^-1 T and diag(P) (2 n c each), and the small dense steps on S (c^3 / 3 for
+    /// the factor, c^3 for S^-1/2, 2 c^3 for S^-1).
+    pub fn flops(&self) -> f64 {
+        let (n, c) = self.t.dim();
+        let (nf, cf) = (n as f64, c as f64);
+        let ne = self.epochs.len();
+        syrk_flops(n, c)
+            + syrk_flops(ne, c)
+            + nf * cf * cf
+            + 6.0 * nf * cf
+            + cf.powi(3) * (1.0 / 3.0 + 3.0)
+    }
+
+    /// The noise model at `theta` in the types of `noise.toml` (red and DM with their own
+    /// numbers of frequencies). The common process is not part of a pulsar's entry.
+    pub fn noise_at(&self, theta: &[f64]) -> PulsarNoise {
+        let white = self
+            .white_index
+            .iter()
+            .enumerate()
+            .map(|(b, w)| WhiteNoise {
+                backend: self.backends[b].clone(),
+                efac: w.efac.map_or(1.0, |i| theta[i]),
+                equad_log10_s: w.equad.map(|i| theta[i]),
+                ecorr_log10_s: w.ecorr.map(|i| theta[i]),
+            })
+            .collect();
+        let process = |i: Option<usize>, k: usize| {
+            i.map(|i| RedProcess {
+                log10_amplitude: theta[i],
+                spectral_index: theta[i + 1],
+                n_frequencies: Some(k),
+            })
+        };
+        PulsarNoise {
+            white,
+            red: process(self.red_index, self.k_red),
+            dm: process(
+                self.dm_index,
+                self.dm_block.as_ref().map_or(0, |b| b.freqs.len()),
+            ),
+        }
+    }
+
+    fn evaluate(&self, theta: &[f64], grad: Option<&mut [f64]>) -> Result<f64> {
+        if theta.len() != self.params.len() {
+            return Err(Error::setting(
+                "parameters",
+                format!(
+                    "pulsar {}: expected {} hyperparameters, got {}",
+                    self.label,
+                    self.params.len(),
+                    theta.len()
+                ),
+            ));
+        }
+        let non_finite = |what: &str| Error::NonFinite {
+            what: format!("the likelihood of pulsar {} ({what})", self.label),
+        };
+        if let Some(i) = theta.iter().position(|v| !v.is_finite()) {
+            return Err(non_finite(&format!(
+                "parameter {} is {}",
+                self.params[i].name, theta[i]
+            )));
+        }
+        let (n, cols) = self.t.dim();
+        let nb = self.backends.len();
+
+        // White noise per backend: D_ii = (EFAC sigma_i)^2 + EQUAD^2, ECORR^2 per epoch.
+        let mut efac = vec![1.0; nb];
+        let mut equad2 = vec![0.0; nb];
+        let mut ecorr2 = vec![0.0; nb];
+        for (b, w) in self.white_index.iter().enumerate() {
+            if let Some(i) = w.efac {
+                efac[b] = theta[i];
+            }
+            if let Some(i) = w.equad {
+                equad2[b] = 10f64.powf(2.0 * theta[i]);
+            }
+            if let Some(i) = w.ecorr {
+                ecorr2[b] = 10f64.powf(2.0 * theta[i]);
+            }
+        }
+        let d: Vec<f64> = (0..n)
+            .map(|i| {
+                let b = self.backend[i];
+                (efac[b] * self.sigma[i]).powi(2) + equad2[b]
+            })
+            .collect();
+        if d.iter().any(|v| !(v.is_finite() && *v > 0.0)) {
+            return Err(non_finite("white-noise variance not positive"));
+        }
+        let sqrt_dinv: Vec<f64> = d.iter().map(|v| 1.0 / v.sqrt()).collect();
+
+        // Whitened T and r; ECORR's Sherman-Morrison terms per epoch.
+        let mut wa = self.t.clone();
+        for (mut row, &w) in wa.rows_mut().into_iter().zip(&sqrt_dinv) {
+            row *= w;
+        }
+        let wr: Array1<f64> = self
+            .residual
+            .iter()
+            .zip(&sqrt_dinv)
+            .map(|(r, w)| r * w)
+            .collect();
+        let sum_dinv: Vec<f64> = self
+            .epochs
+            .iter()
+            .map(|(_, idx)| idx.iter().map(|&i| sqrt_dinv[i] * sqrt_dinv[i]).sum())
+            .collect();
+        let fold: Vec<(Vec<usize>, f64)> = self
+            .epochs
+            .iter()
+            .zip(&sum_dinv)
+            .map(|((b, idx), &s)| (idx.clone(), ecorr_beta(ecorr2[*b], s).sqrt()))
+            .collect();
+        let v = ecorr_rows(&fold, &sqrt_dinv, &wa);
+        let gram = gram_n_inv(&wa, &v);
+        // Sum over an epoch of D^-1/2 x, times beta^(1/2), for a whitened vector x.
+        let epoch_sums = |x: &Array1<f64>| -> Array1<f64> {
+            fold.iter()
+                .map(|(idx, sb)| sb * idx.iter().map(|&i| sqrt_dinv[i] * x[i]).sum::<f64>())
+                .collect()
+        };
+        let mut tnr = wa.t().dot(&wr);
+        if !fold.is_empty() {
+            tnr -= &v.t().dot(&epoch_sums(&wr));
+        }
+
+        // Prior variances phi of every power-law column; the shares split the red columns
+        // between red noise and the common process for the gradient.
+        let mut phi = vec![f64::INFINITY; cols];
+        let mut red_share = vec![0.0; cols];
+        let mut common_share = vec![0.0; cols];
+        if let Some(block) = &self.red_block {
+            let red = self.red_index.map(|i| (theta[i], theta[i + 1]));
+            let common = match self.common {
+                Some(CommonTerm::Fixed(c)) => Some((c.log10_amplitude, c.spectral_index)),
+                Some(CommonTerm::Free) => self.common_index.map(|i| (theta[i], theta[i + 1])),
+                None => None,
+            };
+            for (j, &f) in block.freqs.iter().enumerate() {
+                let pr = red.filter(|_| j < self.k_red).map_or(0.0, |(a, g)| {
+                    power_law_phi(10f64.powf(2.0 * a), g, f, self.t_span)
+                });
+                let pc = common.filter(|_| j < self.k_common).map_or(0.0, |(a, g)| {
+                    power_law_phi(10f64.powf(2.0 * a), g, f, self.t_span)
+                });
+                for c in [block.start + 2 * j, block.start + 2 * j + 1] {
+                    phi[c] = pr + pc;
+                    red_share[c] = pr / (pr + pc);
+                    common_share[c] = pc / (pr + pc);
+                }
+            }
+        }
+        if let (Some(block), Some(i)) = (&self.dm_block, self.dm_index) {
+            for (j, &f) in block.freqs.iter().enumerate() {
+                let p = power_law_phi(10f64.powf(2.0 * theta[i]), theta[i + 1], f, self.t_span);
+                phi[block.start + 2 * j] = p;
+                phi[block.start + 2 * j + 1] = p;
+            }
+        }
+        let binv: Vec<f64> = phi.iter().map(|p| 1.0 / p).collect();
+        if phi[self.n_m..].iter().any(|p| !(p.is_finite() && *p > 0.0)) {
+            return Err(non_finite("power-law prior variance not positive"));
+        }
+
+        // S = B^-1 + T^T N^-1 T, a = S^-1 T^T N^-1 r.
+        let mut s = gram.clone();
+        for c in self.n_m..cols {
+            s[[c, c]] += binv[c];
+        }
+        let chol = ScaledCholesky::new(
+            &s,
+            &format!("S = B^-1 + T^T N^-1 T of pulsar {}", self.label),
+        )?;
+        let w_half = chol.whiten(&Array2::eye(cols)); // L^-1 D^-1, so S^-1 = W^T W
+        let a = w_half.t().dot(&w_half.dot(&tnr));
+
+        // r^T P r = |r - T a|^2_N^-1 + a^T B^-1 a: two non-negative terms, no cancellation.
+        let e = &wr - &wa.dot(&a);
+        let es = epoch_sums(&e);
+        let chi2 =
+            e.dot(&e) - es.dot(&es) + (self.n_m..cols).map(|c| binv[c] * a[c] * a[c]).sum::<f64>();
+        let log_det_n: f64 = d.iter().map(|v| v.ln()).sum::<f64>()
+            + self
+                .epochs
+                .iter()
+                .zip(&sum_dinv)
+                .map(|((b, _), s)| (ecorr2[*b] * s).ln_1p())
+                .sum::<f64>();
+        let log_det_b: f64 = phi[self.n_m..].iter().map(|p| p.ln()).sum();
+        let lnl = -0.5 * (chi2 + log_det_n + log_det_b + chol.log_det())
+            - 0.5 * (n - self.n_m) as f64 * (2.0 * PI).ln();
+        if !lnl.is_finite() {
+            return Err(non_finite("ln L"));
+        }
+        let Some(grad) = grad else {
+            return Ok(lnl);
+        };
+        if grad.len() != self.params.len() {
+            return Err(Error::setting(
+                "gradient",
+                "gradient buffer has the wrong length",
+            ));
+        }
+        grad.iter_mut().for_each(|g| *g = 0.0);
+
+        // P r = N^-1 (r - T a), per TOA: D^-1/2 (e_i - D_i^-1/2 beta^(1/2) es_epoch).
+        let mut epoch_of = vec![usize::MAX; n];
+        for (k, (_, idx)) in self.epochs.iter().enumerate() {
+            for &i in idx {
+                epoch_of[i] = k;
+            }
+        }
+        let pr: Vec<f64> = (0..n)
+            .map(|i| {
+                let k = epoch_of[i];
+                let corr = if k == usize::MAX {
+                    0.0
+                } else {
+                    sqrt_dinv[i] * fold[k].1 * es[k]
+                };
+                sqrt_dinv[i] * (e[i] - corr)
+            })
+            .collect();
+        // N^-1 T (n x cols), then Q = L^-1 D^-1 (N^-1 T)^T so that T^T N^-1 S^-1 N^-1 T = Q^T Q
+        // and diag(P)_i = (N^-1)_ii - |Q e_i|^2.
+        let mut nit = wa;
+        for (i, mut row) in nit.rows_mut().into_iter().enumerate() {
+            let k = epoch_of[i];
+            if k != usize::MAX {
+                row.scaled_add(-sqrt_dinv[i] * fold[k].1, &v.row(k));
+            }
+            row *= sqrt_dinv[i];
+        }
+        let q = chol.whiten(&nit.t().to_owned());
+        let diag_p: Vec<f64> = (0..n)
+            .map(|i| {
+                let k = epoch_of[i];
+                let beta = if k == usize::MAX {
+                    0.0
+                } else {
+                    fold[k].1 * fold[k].1
+                };
+                let di = sqrt_dinv[i] * sqrt_dinv[i];
+                let qi = q.column(i);
+                di - beta * di * di - qi.dot(&qi)
+            })
+            .collect();
+
+        // White noise: dD_ii = 2 EFAC sigma_i^2, or 2 ln 10 EQUAD^2, per backend.
+        for i in 0..n {
+            let b = self.backend[i];
+            let h = pr[i] * pr[i] - diag_p[i];
+            if let Some(k) = self.white_index[b].efac {
+                grad[k] += 0.5 * 2.0 * efac[b] * self.sigma[i] * self.sigma[i] * h;
+            }
+            if let Some(k) = self.white_index[b].equad {
+                grad[k] += 0.5 * 2.0 * LN_10 * equad2[b] * h;
+            }
+        }
+        // ECORR: dC = 2 ln 10 c^2 1 1^T per epoch; 1^T P 1 = s/(1 + c^2 s) - |Q 1|^2.
+        for (k, (b, idx)) in self.epochs.iter().enumerate() {
+            let Some(g) = self.white_index[*b].ecorr else {
+                continue;
+            };
+            let c2 = ecorr2[*b];
+            let one_pr: f64 = idx.iter().map(|&i| pr[i]).sum();
+            let mut q1 = Array1::<f64>::zeros(cols);
+            for &i in idx {
+                q1 += &q.column(i);
+            }
+            let one_p_one = sum_dinv[k] / (1.0 + c2 * sum_dinv[k]) - q1.dot(&q1);
+            grad[g] += 0.5 * 2.0 * LN_10 * c2 * (one_pr * one_pr - one_p_one);
+        }
+
+        // Power laws: d ln L / d ln phi_j = 1/2 [a_j^2 / phi_j - (S^-1 T^T N^-1 T)_jj].
+        let s_inv = w_half.t().dot(&w_half);
+        let h: Vec<f64> = (0..cols)
+            .map(|c| {
+                if c < self.n_m {
+                    0.0
+                } else {
+                    0.5 * (a[c] * a[c] * binv[c] - s_inv.row(c).dot(&gram.column(c)))
+                }
+            })
+            .collect();
+        let mut power_law = |block: &Block, index: usize, share: &dyn Fn(usize, usize) -> f64| {
+            for (j, &f) in block.freqs.iter().enumerate() {
+                let dln_gamma = (F_YR / f).ln();
+                for c in [block.start + 2 * j, block.start + 2 * j + 1] {
+                    let w = share(j, c) * h[c];
+                    grad[index] += 2.0 * LN_10 * w;
+                    grad[index + 1] += dln_gamma * w;
+                }
+            }
+        };
+        if let (Some(block), Some(i)) = (&self.red_block, self.red_index) {
+            power_law(block, i, &|j, c| {
+                if j < self.k_red {
+                    red_share[c]
+                } else {
+                    0.0
+                }
+            });
+        }
+        if let (Some(block), Some(i)) = (&self.red_block, self.common_index) {
+            power_law(block, i, &|j, c| {
+                if j < self.k_common {
+                    common_share[c]
+                } else {
+                    0.0
+                }
+            });
+        }
+        if let (Some(block), Some(i)) = (&self.dm_block, self.dm_index) {
+            power_law(block, i, &|_, _| 1.0);
+        }
+        if let Some(k) = grad.iter().position(|g| !g.is_finite()) {
+            return Err(non_finite(&format!("gradient in {}", self.params[k].name)));
+        }
+        Ok(lnl)
+    }
+}
