@@ -38,7 +38,7 @@ pub struct CommonArgs {
     #[arg(long, default_value_t = 41)]
     index_points: usize,
     /// The fixed spectral index.
-    #[arg(long, default_value_t = 13.0 / 3.0)]
+    #[arg(long, default_value_t = ptacorr::analysis::DEFAULT_SPECTRAL_INDEX)]
     fixed_index: f64,
     /// Number of log10 A points in the CSV tables.
     #[arg(long, default_value_t = 121)]

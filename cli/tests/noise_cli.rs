@@ -32,7 +32,7 @@ freq_mhz = [1310.0, 1510.0]
 [white]
 sigma_us = [0.3, 1.0]
 efac = [0.9, 1.3]
-log10_equad = [-7.0, -6.5]
+equad_log10_s = [-7.0, -6.5]
 
 [red]
 share = 1.0

@@ -42,8 +42,8 @@ share = 1.0
 [white]
 sigma_us = [0.3, 1.5]
 efac = [0.9, 1.3]
-log10_equad = [-7.0, -6.5]
-log10_ecorr = [-7.0, -6.5]
+equad_log10_s = [-7.0, -6.5]
+ecorr_log10_s = [-7.0, -6.5]
 
 [red]
 share = 1.0
