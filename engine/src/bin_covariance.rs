@@ -111,6 +111,26 @@ pub fn bin_covariance(
     let a2 = a2.max(0.0);
     let z: Vec<Array2<f64>> = w.iter().map(|x| x.z.clone()).collect();
     let c = joint_covariance(&z, g, dc, a2)?;
+    bin_covariance_with(&c, w, a2, groups)
+}
+
+/// [`bin_covariance`] from an already formed joint covariance `c` = C~ at `a2`.
+pub fn bin_covariance_with(
+    c: &Array2<f64>,
+    w: &[Weighted],
+    a2: f64,
+    groups: &[Vec<usize>],
+) -> Result<BinCovariance> {
+    let n = w.len();
+    let m = w.first().map_or(0, |x| x.z.nrows());
+    let nm = n * m;
+    if c.dim() != (nm, nm) {
+        return Err(Error::setting(
+            "bin covariance",
+            "the joint covariance must be N 2K square",
+        ));
+    }
+    let z: Vec<&Array2<f64>> = w.iter().map(|x| &x.z).collect();
     // Pair index -> (a, b) and the bin weights W_B = sum tr(Z~_a Z~_b).
     let mut pair_ab = Vec::with_capacity(n * n.saturating_sub(1) / 2);
     for a in 0..n {
@@ -132,7 +152,7 @@ pub fn bin_covariance(
             })?;
             hb[[a, b]] = 1.0;
             hb[[b, a]] = 1.0;
-            sum += crate::optimal::frobenius(&z[a], &z[b]);
+            sum += crate::optimal::frobenius(z[a], z[b]);
             ab.push((a, b));
         }
         h.push(hb);
