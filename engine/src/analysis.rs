@@ -242,6 +242,9 @@ struct Summary<'a> {
     multiple_component: Option<&'a MultiComponent>,
     notes: &'static str,
     provenance: &'a Provenance,
+    /// The noise-marginalised OS (nmos/); kept the last field (its shard merge splices it).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    noise_marginalised: Option<&'a crate::nmos::NmosSummary>,
 }
 
 /// What every summary says about its numbers.
@@ -261,6 +264,18 @@ impl Correlation {
 
     /// Write summary.json, pairs.csv and bins.csv into `dir` as one output set (with manifest.json).
     pub fn write(&self, dir: &Path, release: &Release, settings: &CorrelateSettings) -> Result<()> {
+        self.write_with(dir, release, settings, None)
+    }
+
+    /// [`Correlation::write`], with the noise-marginalised OS when given: its block closes
+    /// summary.json and its draws go to `nmos-draws.csv` (nmos/files.rs).
+    pub fn write_with(
+        &self,
+        dir: &Path,
+        release: &Release,
+        settings: &CorrelateSettings,
+        nmos: Option<(&crate::nmos::NmosSummary, &[crate::nmos::DrawResult])>,
+    ) -> Result<()> {
         let provenance = Provenance::new(release, settings);
         let summary = Summary {
             title: &release.title,
@@ -275,6 +290,7 @@ impl Correlation {
             multiple_component: self.multi.as_ref(),
             notes: SUMMARY_NOTES,
             provenance: &provenance,
+            noise_marginalised: nmos.map(|n| n.0),
         };
         let pairs = self.pairs_csv();
         let bins = bins_csv(&self.bins);
@@ -283,6 +299,12 @@ impl Correlation {
         set.write_json("summary.json", &summary)?;
         set.write("pairs.csv", pairs.as_bytes())?;
         set.write("bins.csv", bins.as_bytes())?;
+        if let Some((_, draws)) = nmos {
+            set.write(
+                crate::nmos::DRAWS_FILE,
+                crate::nmos::files::draws_csv(draws)?.as_bytes(),
+            )?;
+        }
         set.commit().map(|_| ())
     }
 

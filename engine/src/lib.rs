@@ -24,6 +24,7 @@ pub mod gchisq;
 pub mod inject;
 pub mod likelihood;
 pub mod linalg;
+pub mod nmos;
 pub mod noise;
 pub mod noise_fit;
 pub mod null;
