@@ -366,6 +366,9 @@ struct Summary<'a> {
     bin_fit: BinFitSummary<'a>,
     notes: &'static str,
     provenance: &'a Provenance,
+    /// The noise-marginalised OS (nmos/); kept the last field (its shard merge splices it).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    noise_marginalised: Option<&'a crate::nmos::NmosSummary>,
 }
 
 /// The per-frequency section of summary.json (the table is in per-frequency.csv).
@@ -418,6 +421,18 @@ impl Correlation {
     /// per-frequency-covariance.csv, hd-spread.csv and bins-covariance.csv into `dir` as one
     /// output set (with manifest.json).
     pub fn write(&self, dir: &Path, release: &Release, settings: &CorrelateSettings) -> Result<()> {
+        self.write_with(dir, release, settings, None)
+    }
+
+    /// [`Correlation::write`], with the noise-marginalised OS when given: its block closes
+    /// summary.json and its draws go to `nmos-draws.csv` (nmos/files.rs).
+    pub fn write_with(
+        &self,
+        dir: &Path,
+        release: &Release,
+        settings: &CorrelateSettings,
+        nmos: Option<(&crate::nmos::NmosSummary, &[crate::nmos::DrawResult])>,
+    ) -> Result<()> {
         let provenance = Provenance::new(release, settings);
         let summary = Summary {
             title: &release.title,
@@ -445,6 +460,7 @@ impl Correlation {
             },
             notes: SUMMARY_NOTES,
             provenance: &provenance,
+            noise_marginalised: nmos.map(|n| n.0),
         };
         let pairs = self.pairs_csv();
         let bins = bins_csv(&self.bins);
@@ -475,6 +491,12 @@ impl Correlation {
             set.write(
                 "bins-covariance.csv",
                 &to_csv(&bc.rows(), "bins-covariance.csv")?,
+            )?;
+        }
+        if let Some((_, draws)) = nmos {
+            set.write(
+                crate::nmos::DRAWS_FILE,
+                crate::nmos::files::draws_csv(draws)?.as_bytes(),
             )?;
         }
         set.commit().map(|_| ())
