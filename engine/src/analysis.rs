@@ -1,7 +1,7 @@
 //! The correlation analysis of a release, end to end: reduce every pulsar, correlate every pair,
 //! fit the patterns, bin by angle, and write `summary.json`, `pairs.csv` and `bins.csv`.
 
-use crate::bin_covariance::{bin_covariance, fit_bins, BinCovariance, BinFit, MAX_STACKED};
+use crate::bin_covariance::{bin_covariance_with, fit_bins, BinCovariance, BinFit, MAX_STACKED};
 use crate::bins::{bin_groups, bin_pairs, Bin, Binning};
 use crate::constants::{GAMMA_BINARIES, SECONDS_PER_YEAR};
 use crate::error::{Error, Result};
@@ -208,7 +208,6 @@ pub fn correlate_reduced(
         extras(
             &reduced,
             &grid,
-            &phi,
             &pairs,
             &bins,
             estimates[&Pattern::Hd],
@@ -263,7 +262,6 @@ pub fn common_in_template_units(
 fn extras(
     reduced: &[Reduced],
     grid: &FrequencyGrid,
-    phi: &[f64],
     pairs: &PairCorrelations,
     bins: &[Bin],
     hd: OsEstimate,
@@ -271,42 +269,41 @@ fn extras(
     settings: &CorrelateSettings,
 ) -> Result<Extras> {
     use rayon::prelude::*;
+    // The same template as the pair stage (correlate_reduced).
+    let phi = &template(settings.spectral_index, &grid.freqs, grid.t_span);
     let w: Vec<Weighted> = reduced.par_iter().map(|r| weight(r, phi)).collect();
     let g_pairs = pairs.pattern_values(Pattern::Hd);
     let mut pf = per_frequency(&w, &g_pairs, &grid.freqs, phi)?;
     let spread = hd_spread(&w, hd.amplitude2)?;
     let n = w.len();
     let m = 2 * grid.k();
-    if n * m <= MAX_STACKED {
-        let dirs: Vec<_> = reduced.iter().map(|r| r.direction).collect();
-        let g = ndarray::Array2::from_shape_vec((n, n), pattern_matrix(Pattern::Hd, &dirs))
-            .expect("square pattern matrix");
-        let dc = common_in_template_units(common, settings.spectral_index, grid);
-        let a2 = hd.amplitude2.max(0.0);
-        pf.covariance_signal = Some(crate::per_frequency::signal_covariance(
-            &w,
-            &g,
-            &dc,
-            a2,
-            &pf.amplitude2_sigma,
-        )?);
-        pf.signal_amplitude2 = Some(a2);
-    }
     let bin_cov = if n * m > MAX_STACKED {
         Err(format!(
             "not computed: N 2K = {} exceeds {MAX_STACKED} (memory of the joint covariance)",
             n * m
         ))
     } else {
+        // One joint covariance C~ at the measured amplitude serves both uses.
         let dirs: Vec<_> = reduced.iter().map(|r| r.direction).collect();
         let g = ndarray::Array2::from_shape_vec((n, n), pattern_matrix(Pattern::Hd, &dirs))
             .expect("square pattern matrix");
         let dc = common_in_template_units(common, settings.spectral_index, grid);
+        let a2 = hd.amplitude2.max(0.0);
+        let z: Vec<ndarray::Array2<f64>> = w.iter().map(|x| x.z.clone()).collect();
+        let c = crate::paircov::joint_covariance(&z, &g, &dc, a2)?;
+        drop(z);
+        pf.covariance_signal = Some(crate::per_frequency::signal_covariance_with(
+            &c,
+            &g,
+            m,
+            &pf.amplitude2_sigma,
+        )?);
+        pf.signal_amplitude2 = Some(a2);
         let groups: Vec<Vec<usize>> = bin_groups(pairs, settings.n_bins, settings.binning)
             .into_iter()
             .map(|g| g.2)
             .collect();
-        let bc = bin_covariance(&w, &g, &dc, hd.amplitude2, &groups)?;
+        let bc = bin_covariance_with(&c, &w, a2, &groups)?;
         let rho: Vec<f64> = bins.iter().map(|b| b.rho).collect();
         let hdv: Vec<f64> = bins.iter().map(|b| b.hd).collect();
         match fit_bins(&rho, &hdv, &bc) {

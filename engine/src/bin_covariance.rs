@@ -31,10 +31,12 @@ use crate::linalg::cholesky_lower;
 use crate::optimal::Weighted;
 use crate::paircov::joint_covariance;
 use ndarray::{s, Array1, Array2};
+use rayon::prelude::*;
 use statrs::distribution::{ChiSquared, ContinuousCDF};
 
 /// Largest stacked dimension N 2K for which the covariance is computed: the joint covariance
-/// and one work matrix of (N 2K)^2 doubles each, 128 MB each at the limit.
+/// its column-reordered copy and one work matrix of (N 2K)^2 doubles each, 134 MB each at the
+/// limit.
 pub const MAX_STACKED: usize = 4096;
 
 /// The covariance of the binned correlations at one amplitude.
@@ -111,6 +113,26 @@ pub fn bin_covariance(
     let a2 = a2.max(0.0);
     let z: Vec<Array2<f64>> = w.iter().map(|x| x.z.clone()).collect();
     let c = joint_covariance(&z, g, dc, a2)?;
+    bin_covariance_with(&c, w, a2, groups)
+}
+
+/// [`bin_covariance`] from an already formed joint covariance `c` = C~ at `a2`.
+pub fn bin_covariance_with(
+    c: &Array2<f64>,
+    w: &[Weighted],
+    a2: f64,
+    groups: &[Vec<usize>],
+) -> Result<BinCovariance> {
+    let n = w.len();
+    let m = w.first().map_or(0, |x| x.z.nrows());
+    let nm = n * m;
+    if c.dim() != (nm, nm) {
+        return Err(Error::setting(
+            "bin covariance",
+            "the joint covariance must be N 2K square",
+        ));
+    }
+    let z: Vec<&Array2<f64>> = w.iter().map(|x| &x.z).collect();
     // Pair index -> (a, b) and the bin weights W_B = sum tr(Z~_a Z~_b).
     let mut pair_ab = Vec::with_capacity(n * n.saturating_sub(1) / 2);
     for a in 0..n {
@@ -132,33 +154,47 @@ pub fn bin_covariance(
             })?;
             hb[[a, b]] = 1.0;
             hb[[b, a]] = 1.0;
-            sum += crate::optimal::frobenius(&z[a], &z[b]);
+            sum += crate::optimal::frobenius(z[a], z[b]);
             ab.push((a, b));
         }
         h.push(hb);
         wb.push(sum);
         members.push(ab);
     }
+    // C with its columns in component-major order, Cp[:, i n + c] = C[:, c m + i], so that the
+    // columns of one component i of every pulsar are contiguous (BLAS products below).
+    let mut cp = Array2::<f64>::zeros((nm, nm));
+    for (row_c, mut row_p) in c.rows().into_iter().zip(cp.rows_mut()) {
+        for cc in 0..n {
+            for i in 0..m {
+                row_p[i * n + cc] = row_c[cc * m + i];
+            }
+        }
+    }
     let mut cov = vec![vec![0.0; nb]; nb];
     let mut p = Array2::<f64>::zeros((nm, nm));
     for bi in 0..nb {
-        // P_B = (H_B (x) I) C: block row a of P_B is the sum of the block rows b of C over the
-        // bin's pairs (a, b); H_B is sparse, so add rows instead of multiplying by it.
+        // P_B = (H_B (x) I) C (columns permuted like Cp): block row a of P_B is the sum of the
+        // block rows b of C over the bin's pairs (a, b); H_B is sparse, so add rows.
         p.fill(0.0);
         for &(a, b) in &members[bi] {
             let (ra, rb) = (a * m..(a + 1) * m, b * m..(b + 1) * m);
             p.slice_mut(s![ra.clone(), ..])
-                .scaled_add(1.0, &c.slice(s![rb.clone(), ..]));
+                .scaled_add(1.0, &cp.slice(s![rb.clone(), ..]));
             p.slice_mut(s![rb, ..])
-                .scaled_add(1.0, &c.slice(s![ra, ..]));
+                .scaled_add(1.0, &cp.slice(s![ra, ..]));
         }
-        // tau_B[a, c] = sum_i sum_{e, j} C[(a,i), (e,j)] P_B[(e,j), (c,i)].
-        let mut tau = Array2::<f64>::zeros((n, n));
-        for i in 0..m {
-            let ci = c.slice(s![i..;m, ..]);
-            let pi = p.slice(s![.., i..;m]);
-            tau += &ci.dot(&pi);
-        }
+        // tau_B[a, c] = sum_i sum_s C[(a,i), s] P_B[s, (c,i)] = sum_i (Cp_i^T P_i)[a, c] with
+        // C symmetric and Cp_i, P_i the column blocks of component i.
+        let tau = (0..m)
+            .into_par_iter()
+            .map(|i| {
+                let cols = i * n..(i + 1) * n;
+                cp.slice(s![.., cols.clone()])
+                    .t()
+                    .dot(&p.slice(s![.., cols]))
+            })
+            .reduce(|| Array2::<f64>::zeros((n, n)), |x, y| x + y);
         for bj in 0..nb {
             let q = 0.5 * (&h[bj].t() * &tau).sum();
             cov[bi][bj] = q / (wb[bi] * wb[bj]);

@@ -74,7 +74,6 @@ pub fn signal_covariance(
     a2: f64,
     sigma: &[f64],
 ) -> Result<Vec<Vec<f64>>> {
-    let n = w.len();
     let m = w.first().map_or(0, |x| x.z.nrows());
     let k = m / 2;
     if sigma.len() != k {
@@ -83,17 +82,40 @@ pub fn signal_covariance(
             "one uncertainty per frequency is needed",
         ));
     }
-    let nm = n * m;
     let z: Vec<Array2<f64>> = w.iter().map(|x| x.z.clone()).collect();
     let c = crate::paircov::joint_covariance(&z, g, dc, a2.max(0.0))?;
+    signal_covariance_with(&c, g, m, sigma)
+}
+
+/// [`signal_covariance`] from an already formed joint covariance `c` = C~ (N 2K square), with
+/// `m` = 2K rows per pulsar.
+pub fn signal_covariance_with(
+    c: &Array2<f64>,
+    g: &Array2<f64>,
+    m: usize,
+    sigma: &[f64],
+) -> Result<Vec<Vec<f64>>> {
+    let n = g.nrows();
+    let k = m / 2;
+    let nm = n * m;
+    if c.dim() != (nm, nm) || sigma.len() != k {
+        return Err(Error::setting(
+            "per-frequency",
+            "the joint covariance must be N 2K square, with one uncertainty per frequency",
+        ));
+    }
     let mut gp = g.clone();
     for a in 0..n {
         gp[[a, a]] = 0.0;
     }
+    let flat = c
+        .view()
+        .into_shape_with_order((n, m * nm))
+        .map_err(|_| Error::setting("per-frequency", "joint covariance not contiguous"))?;
     let p = gp
-        .dot(&c.into_shape_with_order((n, m * nm)).expect("contiguous"))
+        .dot(&flat)
         .into_shape_with_order((nm, nm))
-        .expect("contiguous");
+        .expect("contiguous product");
     let mut cov = vec![vec![0.0; k]; k];
     for r in 0..nm {
         let fr = (r % m) / 2;
