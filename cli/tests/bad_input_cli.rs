@@ -293,6 +293,79 @@ fn every_command_refuses_bad_input_clearly() {
         &["--strict", "exact duplicate row"],
         Some(&out),
     );
+    // correlate with noise draws (issue 13.8): chain tables that do not fit, NaN rows, too
+    // few rows; nothing is written.
+    let chains = base.join("chains");
+    std::fs::create_dir_all(&chains).unwrap();
+    let head = "chain,draw,log_posterior,diverging,efac.KRK-L\n";
+    let p01 = chains.join("P01.csv");
+    let mut chain_case = |name: &str, file: &Path, body: &str, draws: &str, expect: &[&str]| {
+        std::fs::write(file, body).unwrap();
+        t.refuse(
+            name,
+            &[
+                "correlate",
+                &rel_s,
+                "--out",
+                &out_s,
+                "--noise-draws",
+                &s(&chains),
+                "--draws",
+                draws,
+            ],
+            expect,
+            Some(&out),
+        );
+        std::fs::remove_file(file).unwrap();
+    };
+    chain_case(
+        "correlate chain NaN row",
+        &p01,
+        &format!("{head}0,0,1,false,1.0\n0,1,1,false,NaN\n"),
+        "1",
+        &["P01.csv line 3", "field efac.KRK-L", "not a finite number"],
+    );
+    chain_case(
+        "correlate chain too few draws",
+        &p01,
+        &format!("{head}0,0,1,false,1.0\n"),
+        "5",
+        &["P01.csv line 2", "fewer than the 5 draws"],
+    );
+    chain_case(
+        "correlate chain of no pulsar",
+        &chains.join("Q77.csv"),
+        &format!("{head}0,0,1,false,1.0\n"),
+        "1",
+        &["Q77.csv", "no pulsar"],
+    );
+    chain_case(
+        "correlate chain unknown backend",
+        &p01,
+        "chain,draw,log_posterior,diverging,efac.NOPE\n0,0,1,false,1.0\n",
+        "1",
+        &["P01.csv line 1", "field efac.NOPE", "no backend"],
+    );
+    t.refuse(
+        "correlate shard without draws",
+        &["correlate", &rel_s, "--out", &out_s, "--shard", "1/2"],
+        &["shard", "--noise-draws"],
+        Some(&out),
+    );
+    t.refuse(
+        "inject fresh noise on a scenario",
+        &[
+            "inject",
+            &scen_s,
+            "--amplitudes",
+            "0",
+            "--fresh-noise",
+            "--out",
+            &out_s,
+        ],
+        &["--fresh-noise", "release"],
+        Some(&out),
+    );
     let o = ptacorr()
         .args(["correlate", &s(&dup), "--out", &out_s])
         .output()

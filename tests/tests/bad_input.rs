@@ -967,3 +967,216 @@ fn output_folders_and_shards_are_checked() {
     t.finish("outputs and shards");
     fs::remove_dir_all(&base).ok();
 }
+
+/// Chain tables for the noise-marginalised OS (issue 13.8): tables that do not fit the
+/// release's pulsars or backends, NaN rows, fewer rows than draws and malformed tables are
+/// refused before any work with the file and row; nothing is computed.
+#[test]
+fn chain_tables_are_checked_against_the_release_before_any_work() {
+    use ptacorr::nmos::{read_tables, NmosSettings};
+    let rel_dir = temp_dir("bad-chains-release");
+    let text = SCENARIO.replace("n_pulsars = 4", "n_pulsars = 3");
+    let s = Scenario::parse(&text, Path::new("bad.toml")).unwrap();
+    ptacorr::simulate::simulate_scenario(&ptacorr::scenario::lay_out(&s, 3), 3, &rel_dir).unwrap();
+    let rel = read_release(&rel_dir).unwrap();
+    let label = rel.pulsars[0].label.clone();
+    let red = rel
+        .pulsars
+        .iter()
+        .find(|p| rel.noise.pulsar(&p.label).red.is_none())
+        .map(|p| p.label.clone());
+    let b = rel.pulsars[0].backends[0].clone();
+    let head = "chain,draw,log_posterior,diverging";
+    let good = format!("{head},efac.{b}\n0,0,-1,false,1.0\n0,1,-2,true,1.1\n1,0,,false,0.9\n");
+    let mut t = Tally(Vec::new());
+    let mut run =
+        |name: &str, files: &[(&str, String)], draws: u64, common: bool, expect: &[&str]| {
+            let dir = temp_dir(&format!("bad-chains-{name}"));
+            for (f, body) in files {
+                fs::write(dir.join(f), body).unwrap();
+            }
+            let settings = NmosSettings {
+                chains: (!common).then(|| dir.clone()),
+                common_draws: common.then(|| dir.join(files[0].0)),
+                draws,
+                seed: 1,
+                shard: Shard::ALL,
+            };
+            let v = judge(
+                || {
+                    read_tables(&rel, &settings, &CorrelateSettings::default())
+                        .map_err(|e| e.to_string())
+                },
+                expect,
+            );
+            t.add(name, v);
+            fs::remove_dir_all(&dir).ok();
+        };
+    let own = format!("{label}.csv");
+    run(
+        "no pulsar of that name",
+        &[("Q99.csv", good.clone())],
+        2,
+        false,
+        &["Q99.csv", "no pulsar \"Q99\""],
+    );
+    run(
+        "backend the pulsar lacks",
+        &[(&own, format!("{head},efac.ZZZ-X\n0,0,1,false,1.0\n"))],
+        1,
+        false,
+        &[&own, "line 1", "field efac.ZZZ-X", "no backend"],
+    );
+    run(
+        "NaN row",
+        &[(
+            &own,
+            format!("{head},efac.{b}\n0,0,1,false,1.0\n0,1,1,false,NaN\n"),
+        )],
+        1,
+        false,
+        &[&own, "line 3", "field efac.", "not a finite number"],
+    );
+    run(
+        "inf log posterior",
+        &[(&own, format!("{head},efac.{b}\n0,0,-inf,false,1.0\n"))],
+        1,
+        false,
+        &[&own, "line 2", "field log_posterior"],
+    );
+    run(
+        "fewer rows than draws",
+        &[(&own, good.clone())],
+        4,
+        false,
+        &[&own, "line 4", "fewer than the 4 draws"],
+    );
+    run(
+        "unknown column",
+        &[(&own, format!("{head},efac.{b},speed\n0,0,1,false,1.0,2\n"))],
+        1,
+        false,
+        &[&own, "line 1", "field speed"],
+    );
+    run(
+        "duplicated column",
+        &[(
+            &own,
+            format!("{head},efac.{b},efac.{b}\n0,0,1,false,1.0,1.0\n"),
+        )],
+        1,
+        false,
+        &[&own, "line 1", "given twice"],
+    );
+    run(
+        "non-integer chain",
+        &[(&own, format!("{head},efac.{b}\n0.5,0,1,false,1.0\n"))],
+        1,
+        false,
+        &[&own, "line 2", "field chain"],
+    );
+    run(
+        "repeated draw",
+        &[(
+            &own,
+            format!("{head},efac.{b}\n0,0,1,false,1.0\n0,0,1,false,1.0\n"),
+        )],
+        1,
+        false,
+        &[&own, "line 3", "given twice"],
+    );
+    run(
+        "EFAC out of range",
+        &[(&own, format!("{head},efac.{b}\n0,0,1,false,-1\n"))],
+        1,
+        false,
+        &[&own, "line 2", "EFAC must be in"],
+    );
+    run(
+        "missing fixed columns",
+        &[(&own, format!("chain,draw,efac.{b}\n0,0,1.0\n"))],
+        1,
+        false,
+        &[&own, "line 1", "header must start with"],
+    );
+    run(
+        "short row",
+        &[(&own, format!("{head},efac.{b}\n0,0,1,false\n"))],
+        1,
+        false,
+        &[&own, "line 2", "expected 5 columns"],
+    );
+    run(
+        "empty table",
+        &[(&own, format!("{head},efac.{b}\n"))],
+        1,
+        false,
+        &[&own, "no rows"],
+    );
+    run(
+        "common column in a pulsar table",
+        &[(
+            &own,
+            format!("{head},common.log10_amplitude\n0,0,1,false,-14\n"),
+        )],
+        1,
+        false,
+        &[&own, "field common.log10_amplitude"],
+    );
+    if let Some(r) = &red {
+        run(
+            "half a red power law without a red process",
+            &[(
+                &format!("{r}.csv"),
+                format!("{head},red.log10_amplitude\n0,0,1,false,-14\n"),
+            )],
+            1,
+            false,
+            &[&format!("{r}.csv"), "red.spectral_index"],
+        );
+    }
+    run(
+        "pulsar column in a common table",
+        &[(
+            "common-draws.csv",
+            format!("{head},efac.{b}\n0,0,1,false,1.0\n"),
+        )],
+        1,
+        true,
+        &["common-draws.csv", "line 1", "common-process draw table"],
+    );
+    run(
+        "common table with too few draws",
+        &[(
+            "common-draws.csv",
+            format!("{head},common.log10_amplitude\n0,0,1,false,-14.2\n"),
+        )],
+        2,
+        true,
+        &["common-draws.csv", "line 2", "fewer than the 2 draws"],
+    );
+    run(
+        "zero draws",
+        &[(&own, good.clone())],
+        0,
+        false,
+        &["draws", "1..="],
+    );
+    let empty = temp_dir("bad-chains-empty");
+    let v = judge(
+        || {
+            let s = NmosSettings {
+                chains: Some(empty.clone()),
+                common_draws: None,
+                draws: 1,
+                seed: 1,
+                shard: Shard::ALL,
+            };
+            read_tables(&rel, &s, &CorrelateSettings::default()).map_err(|e| e.to_string())
+        },
+        &["no chain tables"],
+    );
+    t.add("folder without tables", v);
+    t.finish("chain tables");
+    fs::remove_dir_all(&rel_dir).ok();
+}

@@ -17,6 +17,9 @@ pub(super) struct RecoveryFile {
     pub(super) detection_threshold_snr: f64,
     pub(super) realizations: u64,
     pub(super) mode: String,
+    /// What the realizations are made on, in plain words (`TargetKind::describe`).
+    #[serde(default)]
+    pub(super) target: String,
     pub(super) rows: Vec<RecoveryRow>,
     pub(super) assumptions: String,
     pub(super) provenance: serde_json::Value,
@@ -90,6 +93,7 @@ impl Outcome {
             detection_threshold_snr: self.state.detection_threshold_snr,
             realizations: self.realizations(),
             mode: self.state.mode.name().to_string(),
+            target: self.state.target.describe().to_string(),
             rows: self.rows.clone(),
             assumptions: self.assumptions.clone(),
             provenance: self.provenance.clone(),

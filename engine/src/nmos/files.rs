@@ -149,14 +149,16 @@ pub fn split_summary(text: &str, path: &Path) -> Result<(String, NmosSummary)> {
 }
 
 /// Merge the shard folders of one correlate run with noise draws into `out`: the folders must
-/// hold the same analysis (summary.json equal but for the block, pairs.csv and bins.csv equal)
+/// hold the same analysis (summary.json equal but for the block, every other file of the
+/// manifest but the draws equal)
 /// and the same draw settings, and together every shard 1..=N exactly once; the merged folder
 /// has the same bytes as the run made without shards.
 pub fn merge_shards(dirs: &[PathBuf], out: &Path) -> Result<NmosSummary> {
     if dirs.is_empty() {
         return Err(Error::setting("merge", "give at least one shard folder"));
     }
-    let mut head: Option<(String, NmosSummary, Vec<u8>, Vec<u8>)> = None;
+    type Files = Vec<(String, Vec<u8>)>;
+    let mut head: Option<(String, NmosSummary, Files)> = None;
     let mut draws: Vec<DrawResult> = Vec::new();
     let mut shards: Vec<u64> = Vec::new();
     for d in dirs {
@@ -178,7 +180,13 @@ pub fn merge_shards(dirs: &[PathBuf], out: &Path) -> Result<NmosSummary> {
         let text = String::from_utf8(read("summary.json")?)
             .map_err(|_| Error::input(&summary_path, None, None, "is not UTF-8 text"))?;
         let (prefix, block) = split_summary(&text, &summary_path)?;
-        let (pairs, bins) = (read("pairs.csv")?, read("bins.csv")?);
+        // The fixed-noise analysis files, in manifest order.
+        let mut files: Files = Vec::new();
+        for f in &manifest.files {
+            if f.name != "summary.json" && f.name != DRAWS_FILE {
+                files.push((f.name.clone(), read(&f.name)?));
+            }
+        }
         let mut rows = read_draws(&d.join(DRAWS_FILE))?;
         let range = block.shard.range(block.draws_total);
         if rows.len() as u64 != range.end - range.start
@@ -196,9 +204,9 @@ pub fn merge_shards(dirs: &[PathBuf], out: &Path) -> Result<NmosSummary> {
         }
         draws.append(&mut rows);
         shards.push(block.shard.index);
-        match &head {
-            None => head = Some((prefix, block, pairs, bins)),
-            Some((p0, b0, pairs0, bins0)) => {
+        match &mut head {
+            None => head = Some((prefix, block, files)),
+            Some((p0, b0, files0)) => {
                 let same_run = b0.draws_total == block.draws_total
                     && b0.seed == block.seed
                     && b0.shard.count == block.shard.count
@@ -206,7 +214,16 @@ pub fn merge_shards(dirs: &[PathBuf], out: &Path) -> Result<NmosSummary> {
                     && b0.common_draws == block.common_draws
                     && b0.tables_sha256 == block.tables_sha256
                     && b0.pulsars_drawn == block.pulsars_drawn;
-                if !(same_run && *p0 == prefix && *pairs0 == pairs && *bins0 == bins) {
+                // pairs.csv and bins.csv must agree byte for byte; the other analysis files
+                // are taken from shard 1 (the per-frequency files of `correlate` can differ in
+                // the last digit between two runs of the same analysis).
+                let core = |f: &Files| -> Files {
+                    f.iter()
+                        .filter(|(n, _)| n == "pairs.csv" || n == "bins.csv")
+                        .cloned()
+                        .collect()
+                };
+                if !(same_run && *p0 == prefix && core(files0) == core(&files)) {
                     return Err(Error::setting(
                         "merge",
                         format!(
@@ -215,10 +232,13 @@ pub fn merge_shards(dirs: &[PathBuf], out: &Path) -> Result<NmosSummary> {
                         ),
                     ));
                 }
+                if block.shard.index == 1 {
+                    *files0 = files;
+                }
             }
         }
     }
-    let (prefix, mut block, pairs, bins) = head.expect("at least one shard");
+    let (prefix, mut block, files) = head.expect("at least one shard");
     shards.sort_unstable();
     let expected: Vec<u64> = (1..=block.shard.count).collect();
     if shards != expected {
@@ -236,9 +256,11 @@ pub fn merge_shards(dirs: &[PathBuf], out: &Path) -> Result<NmosSummary> {
     block.patterns = spreads(&draws);
     let summary = format!("{prefix}{}\n", summary_tail(&block)?);
     let mut set = crate::output::OutputSet::begin(out, "correlate")?;
+    // The same files in the same order as the run without shards (Correlation::write_with).
     set.write("summary.json", summary.as_bytes())?;
-    set.write("pairs.csv", &pairs)?;
-    set.write("bins.csv", &bins)?;
+    for (name, bytes) in &files {
+        set.write(name, bytes)?;
+    }
     set.write(DRAWS_FILE, draws_csv(&draws)?.as_bytes())?;
     set.commit()?;
     Ok(block)

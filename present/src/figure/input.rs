@@ -572,6 +572,40 @@ pub struct CorrelateData {
     pub bin_sigma_full: Option<Vec<f64>>,
     /// per-frequency.csv (empty when the folder has none).
     pub per_frequency: Vec<PerFrequencyRead>,
+    /// The noise-marginalised OS (summary.json `noise_marginalised` and nmos-draws.csv), when
+    /// the run had noise draws.
+    pub nmos: Option<NmosRead>,
+}
+
+/// The noise-marginalised OS of a correlate folder, read through the engine's own types.
+#[derive(Clone, Debug, PartialEq)]
+pub struct NmosRead {
+    pub summary: ptacorr::nmos::NmosSummary,
+    pub draws: Vec<ptacorr::nmos::DrawResult>,
+}
+
+fn load_nmos(dir: &Path) -> Result<Option<NmosRead>, FigureError> {
+    let draws_path = dir.join(ptacorr::nmos::DRAWS_FILE);
+    let doc = Doc::load(&dir.join(SUMMARY_JSON))?;
+    let Some(block) = doc.opt(ptacorr::nmos::files::SUMMARY_KEY) else {
+        return Ok(None);
+    };
+    let summary: ptacorr::nmos::NmosSummary = serde_json::from_value(block.clone())
+        .map_err(|e| doc.invalid(ptacorr::nmos::files::SUMMARY_KEY, e.to_string()))?;
+    if !draws_path.is_file() {
+        return Err(FigureError::MissingFile {
+            dir: dir.to_path_buf(),
+            file: ptacorr::nmos::DRAWS_FILE,
+            kind: "correlate with noise draws",
+        });
+    }
+    let draws =
+        ptacorr::nmos::files::read_draws(&draws_path).map_err(|e| FigureError::InvalidField {
+            path: draws_path.clone(),
+            field: "rows".to_string(),
+            reason: e.to_string(),
+        })?;
+    Ok(Some(NmosRead { summary, draws }))
 }
 
 fn load_spread(dir: &Path) -> Result<Vec<SpreadRow>, FigureError> {
@@ -724,6 +758,7 @@ impl CorrelateData {
             spread: load_spread(dir)?,
             bin_sigma_full,
             per_frequency: load_per_frequency(dir)?,
+            nmos: load_nmos(dir)?,
         })
     }
 }
@@ -877,6 +912,8 @@ pub struct InjectData {
     pub detection_threshold_snr: f64,
     pub realizations: u64,
     pub mode: String,
+    /// What the realizations are made on (recovery.json `target`; empty in older folders).
+    pub target: String,
     /// Rows of recovery.csv in file order.
     pub rows: Vec<RecoveryRow>,
     pub provenance: Provenance,
@@ -943,6 +980,7 @@ impl InjectData {
             detection_threshold_snr: doc.f64("detection_threshold_snr")?,
             realizations: doc.u64("realizations")?,
             mode: doc.string("mode")?,
+            target: doc.opt_string("target")?.unwrap_or_default(),
             rows,
             provenance: provenance(&doc)?,
         })

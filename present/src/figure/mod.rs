@@ -18,6 +18,7 @@ mod angular;
 mod canvas;
 pub(crate) mod format;
 mod input;
+mod nmos;
 mod null;
 mod recovery;
 mod spectrum;
@@ -27,8 +28,8 @@ use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
 
 pub use input::{
-    detect_kinds, Bin, CorrelateData, FolderKind, InjectData, MultiFit, NullData, NullSummary,
-    Pair, PatternFit, Provenance, RecoveryRow, Summary, Trial,
+    detect_kinds, Bin, CorrelateData, FolderKind, InjectData, MultiFit, NmosRead, NullData,
+    NullSummary, Pair, PatternFit, Provenance, RecoveryRow, Summary, Trial,
 };
 
 use resvg::{tiny_skia, usvg};
@@ -203,6 +204,15 @@ pub(crate) fn draw_kind(
                 &format!("{}{stem_suffix}", angular::STEM),
                 &source,
             )?];
+            // The noise-marginalised histogram, when the run had noise draws.
+            if data.nmos.is_some() {
+                v.push(nmos::draw(
+                    &data,
+                    opts,
+                    &format!("{}{stem_suffix}", nmos::STEM),
+                    &source,
+                )?);
+            }
             // The per-frequency figure, when the folder has per-frequency.csv.
             if !data.per_frequency.is_empty() {
                 v.push(spectrum::draw(

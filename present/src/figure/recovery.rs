@@ -177,8 +177,13 @@ pub(crate) fn draw(
         .iter()
         .filter(|r| r.placement == "below_axis")
         .count();
+    let target = if data.target.is_empty() {
+        String::new()
+    } else {
+        format!(" ({})", data.target)
+    };
     let mut caption = format!(
-        "{} pattern, {} mode, {} realizations per amplitude. (a) Error bars: ±1 standard deviation of Â² over realizations. (b) Detected means S/N ≥ {} (false-alarm probability {}); binomial 1σ bars.",
+        "{} pattern, {} mode{target}, {} realizations per amplitude. (a) Error bars: ±1 standard deviation of Â² over realizations. (b) Detected means S/N ≥ {} (false-alarm probability {}); binomial 1σ bars.",
         pattern_words(&data.pattern),
         data.mode,
         data.realizations,

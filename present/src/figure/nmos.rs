@@ -1,0 +1,238 @@
+//! The noise-marginalised OS figure: a density histogram of the Hellings-Downs A^2 over the
+//! noise draws, the fixed-noise estimate as a vertical line, the median and the central 68%
+//! interval marked, and the S/N spread in the caption (docs/noise-marginalised.md).
+
+use serde::Serialize;
+
+use super::canvas::{
+    draw_axes, draw_caption, draw_legend, linear_ticks, single_panel, LegendItem, LineStyle,
+    PanelLayout, Rect, Sample, Scale, Stroke, Svg, BLACK, BLUE, SKY, VERMILLION,
+};
+use super::format::{self, Style};
+use super::input::CorrelateData;
+use super::null::{histogram, Histogram};
+use super::{ColumnWidth, Drawn, FigureError, FigureOptions};
+use ptacorr::orf::Pattern;
+
+pub(crate) const STEM: &str = "noise-marginalised";
+
+#[derive(Serialize)]
+struct Sidecar {
+    figure: &'static str,
+    source_folder: String,
+    draws: usize,
+    fixed_noise_amplitude2: f64,
+    median_amplitude2: f64,
+    interval_68_amplitude2: [f64; 2],
+    interval_95_amplitude2: [f64; 2],
+    median_snr: f64,
+    interval_68_snr: [f64; 2],
+    histogram: Histogram,
+    x_label: String,
+    y_label: String,
+    x_axis: [f64; 2],
+    y_axis: [f64; 2],
+    caption: String,
+    size_in: [f64; 2],
+    plot_box_pt: [f64; 4],
+    caption_box_pt: [f64; 4],
+}
+
+pub(crate) fn draw(
+    data: &CorrelateData,
+    opts: &FigureOptions,
+    stem: &str,
+    source: &str,
+) -> Result<Drawn, FigureError> {
+    let n = data.nmos.as_ref().ok_or_else(|| FigureError::Render {
+        figure: STEM.to_string(),
+        reason: "the folder has no noise draws".to_string(),
+    })?;
+    let hd = n
+        .summary
+        .patterns
+        .get(&Pattern::Hd)
+        .ok_or_else(|| FigureError::MissingField {
+            path: data.dir.join("summary.json"),
+            field: "noise_marginalised.patterns.hd".to_string(),
+        })?;
+    let fixed = data
+        .summary
+        .patterns
+        .iter()
+        .find(|p| p.name == "hd")
+        .map(|p| p.amplitude2)
+        .unwrap_or(f64::NAN);
+    let a2: Vec<f64> = n.draws.iter().map(|d| d.estimates[0].amplitude2).collect();
+    let hist = histogram(&a2);
+    let k = hist.counts.len();
+    let mut xlo = hist.edges[0];
+    let mut xhi = hist.edges[k];
+    if fixed.is_finite() {
+        xlo = xlo.min(fixed);
+        xhi = xhi.max(fixed);
+    }
+    let span = (xhi - xlo).max(1e-300);
+    let xt = linear_ticks(xlo - 0.03 * span, xhi + 0.03 * span, 6, true);
+    let ymax = hist.density.iter().copied().fold(0.0, f64::max);
+    let yt = linear_ticks(0.0, ymax * 1.12, 5, true);
+    let x_label = if xt.exponent != 0 {
+        format!(
+            "Hellings–Downs Â² [10{}]",
+            super::canvas::superscript(xt.exponent)
+        )
+    } else {
+        "Hellings–Downs Â²".to_string()
+    };
+    let y_label = if yt.exponent != 0 {
+        format!(
+            "probability density [10{}]",
+            super::canvas::superscript(yt.exponent)
+        )
+    } else {
+        "probability density".to_string()
+    };
+    let median_stroke = Stroke::new(BLACK, 1.0, LineStyle::Solid);
+    let band_stroke = Stroke::new(BLACK, 0.8, LineStyle::Dashed);
+    let fixed_stroke = Stroke::new(VERMILLION, 1.2, LineStyle::Solid);
+    let items = vec![
+        LegendItem {
+            label: format!("{} noise draws", n.draws.len()),
+            sample: Sample::Patch(SKY, 0.55, BLUE),
+        },
+        LegendItem {
+            label: "median".to_string(),
+            sample: Sample::Line(median_stroke),
+        },
+        LegendItem {
+            label: "68% interval".to_string(),
+            sample: Sample::Line(band_stroke),
+        },
+        LegendItem {
+            label: "fixed noise model".to_string(),
+            sample: Sample::Line(fixed_stroke),
+        },
+    ];
+    let g = |v: f64| format::general(v, 3, Style::Figure);
+    let f2 = |v: f64| format::fixed(v, 2, Style::Figure);
+    let caption = format!(
+        "Noise-marginalised optimal statistic: Hellings–Downs Â² over {} draws of the noise model ({} pulsars drawn from chain tables, {} at noise.toml{}): median {}, 68% interval {} – {}, 95% interval {} – {}; S/N median {} (68% {} – {}). Fixed noise model: Â² = {}. The spread shows the dependence on the noise model, not a confidence interval; S/N is not a false-alarm probability.",
+        n.draws.len(),
+        n.summary.pulsars_drawn.len(),
+        n.summary.pulsars_fixed.len(),
+        if n.summary.common_draws.is_some() { "; common amplitude drawn" } else { "" },
+        g(hd.amplitude2.median),
+        g(hd.amplitude2.interval_68[0]),
+        g(hd.amplitude2.interval_68[1]),
+        g(hd.amplitude2.interval_95[0]),
+        g(hd.amplitude2.interval_95[1]),
+        f2(hd.snr.median),
+        f2(hd.snr.interval_68[0]),
+        f2(hd.snr.interval_68[1]),
+        g(fixed),
+    );
+    let aspect = match opts.width {
+        ColumnWidth::Single => 0.62,
+        ColumnWidth::Double => 0.40,
+    };
+    let PanelLayout {
+        w,
+        h,
+        pad,
+        plot,
+        legend_w,
+        lines,
+        cap_y,
+    } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
+    let xs = Scale {
+        lo: xt.lo,
+        hi: xt.hi,
+        log: false,
+        a: plot.x,
+        b: plot.right(),
+    };
+    let ys = Scale {
+        lo: yt.lo,
+        hi: yt.hi,
+        log: false,
+        a: plot.bottom(),
+        b: plot.y,
+    };
+    let title = "Noise-marginalised Hellings–Downs Â²".to_string();
+    let mut svg = Svg::new(w, h, stem);
+    let clip = svg.clip(plot);
+    draw_axes(&mut svg, plot, &xs, &ys, &xt, &yt, &x_label, &y_label)?;
+    svg.open("histogram", Some(&clip), "");
+    let edge = Stroke::new(BLUE, 0.3, LineStyle::Solid);
+    for i in 0..k {
+        let (x0, x1) = (xs.map(hist.edges[i]), xs.map(hist.edges[i + 1]));
+        let y = ys.map(hist.density[i]);
+        svg.rect(
+            Rect {
+                x: x0,
+                y,
+                w: x1 - x0,
+                h: ys.map(0.0) - y,
+            },
+            Some((SKY, 0.55)),
+            Some(&edge),
+            "hist-bar",
+        );
+    }
+    svg.close();
+    let vline = |svg: &mut Svg, x: f64, s: &Stroke, class: &str| {
+        if x.is_finite() {
+            let px = xs.map(x);
+            svg.line(px, plot.y, px, plot.bottom(), s, class);
+        }
+    };
+    vline(
+        &mut svg,
+        hd.amplitude2.median,
+        &median_stroke,
+        "median-line",
+    );
+    vline(
+        &mut svg,
+        hd.amplitude2.interval_68[0],
+        &band_stroke,
+        "interval-line",
+    );
+    vline(
+        &mut svg,
+        hd.amplitude2.interval_68[1],
+        &band_stroke,
+        "interval-line",
+    );
+    vline(&mut svg, fixed, &fixed_stroke, "fixed-line");
+    draw_legend(&mut svg, &items, plot.x, pad, legend_w)?;
+    let cap_box = draw_caption(&mut svg, &lines, pad, cap_y)?;
+    let svg_text = svg.finish(&title);
+    let sidecar = Sidecar {
+        figure: STEM,
+        source_folder: source.to_string(),
+        draws: n.draws.len(),
+        fixed_noise_amplitude2: fixed,
+        median_amplitude2: hd.amplitude2.median,
+        interval_68_amplitude2: hd.amplitude2.interval_68,
+        interval_95_amplitude2: hd.amplitude2.interval_95,
+        median_snr: hd.snr.median,
+        interval_68_snr: hd.snr.interval_68,
+        histogram: hist,
+        x_label,
+        y_label,
+        x_axis: [xt.lo, xt.hi],
+        y_axis: [yt.lo, yt.hi],
+        caption: caption.clone(),
+        size_in: [w / 72.0, h / 72.0],
+        plot_box_pt: plot.as_array(),
+        caption_box_pt: cap_box.as_array(),
+    };
+    Ok(Drawn {
+        stem: stem.to_string(),
+        title,
+        caption,
+        svg: svg_text,
+        sidecar: super::sidecar_json(&sidecar, stem)?,
+    })
+}
