@@ -20,10 +20,13 @@ pub(crate) mod format;
 mod input;
 mod null;
 mod recovery;
+pub mod scaling;
 
 use std::io::Write as _;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
+
+pub use scaling::plot_scaling;
 
 pub use input::{
     detect_kinds, Bin, CorrelateData, FolderKind, InjectData, MultiFit, NullData, NullSummary,
