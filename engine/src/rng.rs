@@ -19,6 +19,8 @@ pub enum Purpose {
     TimeDomainNull = 8,
     NoiseStart = 9,
     NoiseChain = 10,
+    /// Row picks of the noise-marginalised OS (nmos/).
+    NoiseDraws = 13,
 }
 
 /// SplitMix64 finaliser (Steele, Lea & Flood 2014), used to spread seeds.
