@@ -2,8 +2,9 @@
 //! simulated nulls and injections against the number of pulsars, TOAs per pulsar and
 //! frequencies (three log-log panels through the centre cell of the grid), with the fitted
 //! power of each line (least squares of log time on log size). It reads the runner's
-//! `scaling.csv` (`axis,value,task,wall_s,fitted_power`, after one `#` line naming the machine,
-//! its load and its BLAS build, which becomes the caption).
+//! `scaling.csv` (`axis,value,task,time_s,fitted_power`, after a `#` line naming the machine,
+//! its load and its BLAS build, which goes into the caption, and a `# measure wall` or
+//! `# measure cpu` line saying which time it is).
 
 use serde::Serialize;
 use std::path::{Path, PathBuf};
@@ -38,12 +39,20 @@ pub struct ScalingRow {
     pub axis: String,
     pub value: f64,
     pub task: String,
-    pub wall_s: f64,
+    pub time_s: f64,
     pub fitted_power: f64,
 }
 
-/// Read scaling.csv: the machine line and the rows.
-pub fn read_scaling(path: &Path) -> Result<(String, Vec<ScalingRow>), FigureError> {
+/// What a scaling.csv's times are.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Measure {
+    Wall,
+    Cpu,
+}
+
+/// Read scaling.csv: the machine line, the measure and the rows.
+pub fn read_scaling(path: &Path) -> Result<(String, Measure, Vec<ScalingRow>), FigureError> {
     let text = std::fs::read_to_string(path).map_err(|source| FigureError::Read {
         path: path.to_path_buf(),
         source,
@@ -54,6 +63,11 @@ pub fn read_scaling(path: &Path) -> Result<(String, Vec<ScalingRow>), FigureErro
         .and_then(|l| l.strip_prefix('#'))
         .map(|l| l.trim().to_string())
         .unwrap_or_default();
+    let measure = if text.lines().any(|l| l.trim() == "# measure cpu") {
+        Measure::Cpu
+    } else {
+        Measure::Wall
+    };
     let body: String = text
         .lines()
         .filter(|l| !l.starts_with('#'))
@@ -86,7 +100,7 @@ pub fn read_scaling(path: &Path) -> Result<(String, Vec<ScalingRow>), FigureErro
             axis: rec[0].trim().to_string(),
             value: num(1, "value")?,
             task: rec[2].trim().to_string(),
-            wall_s: num(3, "wall_s")?,
+            time_s: num(3, "time_s")?,
             fitted_power: num(4, "fitted_power")?,
         };
         if !AXES.iter().any(|(a, _)| *a == row.axis) {
@@ -95,8 +109,8 @@ pub fn read_scaling(path: &Path) -> Result<(String, Vec<ScalingRow>), FigureErro
         if !TASKS.iter().any(|(t, ..)| *t == row.task) {
             return Err(bad("task", format!("unknown task `{}`", row.task)));
         }
-        if !(row.value > 0.0 && row.wall_s > 0.0) {
-            return Err(bad("wall_s", "sizes and times must be positive".into()));
+        if !(row.value > 0.0 && row.time_s > 0.0) {
+            return Err(bad("time_s", "sizes and times must be positive".into()));
         }
         rows.push(row);
     }
@@ -107,20 +121,29 @@ pub fn read_scaling(path: &Path) -> Result<(String, Vec<ScalingRow>), FigureErro
             reason: "no measurements".into(),
         });
     }
-    Ok((machine, rows))
+    Ok((machine, measure, rows))
 }
 
 #[derive(Serialize)]
 struct Sidecar<'a> {
     figure: &'static str,
     machine: &'a str,
+    measure: Measure,
     rows: &'a [ScalingRow],
     caption: String,
     size_in: [f64; 2],
 }
 
 /// Draw the figure (three panels side by side, double-column width).
-pub(crate) fn draw(machine: &str, rows: &[ScalingRow]) -> Result<Drawn, FigureError> {
+pub(crate) fn draw(
+    machine: &str,
+    measure: Measure,
+    rows: &[ScalingRow],
+) -> Result<Drawn, FigureError> {
+    let what = match measure {
+        Measure::Wall => "Wall time",
+        Measure::Cpu => "CPU time (user + sys, all threads)",
+    };
     let w = 7.0 * 72.0;
     let pad = 4.0;
     let items: Vec<LegendItem> = TASKS
@@ -140,7 +163,7 @@ pub(crate) fn draw(machine: &str, rows: &[ScalingRow]) -> Result<Drawn, FigureEr
         })
         .collect();
     let (lo, hi) = rows.iter().fold((f64::INFINITY, 0.0f64), |(l, h), r| {
-        (l.min(r.wall_s), h.max(r.wall_s))
+        (l.min(r.time_s), h.max(r.time_s))
     });
     let yt = log_ticks(lo, hi);
     let gutter = left_gutter(&yt)?;
@@ -149,7 +172,7 @@ pub(crate) fn draw(machine: &str, rows: &[ScalingRow]) -> Result<Drawn, FigureEr
     let top = pad + leg_h + 5.0;
     let plot_h = panel_w * 0.9;
     let caption = format!(
-        "Wall time of each whole command against one size of the benchmark array, the other two \
+        "{what} of each whole command against one size of the benchmark array, the other two \
          held at 100 pulsars, 10,000 TOAs per pulsar and 30 frequencies; the number beside each \
          line is its fitted power p (time ~ size^p, least squares in log-log). Scrambles, \
          simulated nulls and injections include reading and reducing the release. {machine}."
@@ -185,14 +208,18 @@ pub(crate) fn draw(machine: &str, rows: &[ScalingRow]) -> Result<Drawn, FigureEr
             a: plot.bottom(),
             b: plot.y,
         };
-        let ylabel = if k == 0 { "wall time (s)" } else { "" };
+        let ylabel = match (k, measure) {
+            (0, Measure::Wall) => "wall time (s)",
+            (0, Measure::Cpu) => "CPU time (s)",
+            _ => "",
+        };
         draw_axes(&mut svg, plot, &xs, &ys, &xt, &yt, label, ylabel)?;
         svg.open("series", None, "");
         for (task, _, color, shape) in TASKS {
             let mut pts: Vec<(f64, f64, f64)> = on
                 .iter()
                 .filter(|r| r.task == task)
-                .map(|r| (r.value, r.wall_s, r.fitted_power))
+                .map(|r| (r.value, r.time_s, r.fitted_power))
                 .collect();
             if pts.is_empty() {
                 continue;
@@ -224,11 +251,12 @@ pub(crate) fn draw(machine: &str, rows: &[ScalingRow]) -> Result<Drawn, FigureEr
     }
     let _ = draw_caption(&mut svg, &lines, pad, cap_y)?;
     let _ = INK;
-    let title = "Wall time against array size (benchmarks/run --full)".to_string();
+    let title = format!("{what} against array size (benchmarks/run)");
     let sidecar = sidecar_json(
         &Sidecar {
             figure: STEM,
             machine,
+            measure,
             rows,
             caption: caption.clone(),
             size_in: [w / 72.0, h / 72.0],
@@ -247,8 +275,8 @@ pub(crate) fn draw(machine: &str, rows: &[ScalingRow]) -> Result<Drawn, FigureEr
 /// Draw the scaling figure of a `benchmarks/run` scaling.csv into `out_dir` as
 /// `scaling.svg`, `scaling.png` and the sidecar `scaling.json`; returns the files written.
 pub fn plot_scaling(csv_path: &Path, out_dir: &Path) -> Result<Vec<PathBuf>, FigureError> {
-    let (machine, rows) = read_scaling(csv_path)?;
-    let d = draw(&machine, &rows)?;
+    let (machine, measure, rows) = read_scaling(csv_path)?;
+    let d = draw(&machine, measure, &rows)?;
     std::fs::create_dir_all(out_dir).map_err(|source| FigureError::Write {
         path: out_dir.to_path_buf(),
         source,
@@ -275,8 +303,9 @@ mod tests {
         let dir = std::env::temp_dir().join(format!("ptacorr-scaling-{}", std::process::id()));
         std::fs::create_dir_all(&dir).unwrap();
         let csv = dir.join("scaling.csv");
-        let mut text =
-            String::from("# test machine, load 1.0\naxis,value,task,wall_s,fitted_power\n");
+        let mut text = String::from(
+            "# test machine, load 1.0\n# measure cpu\naxis,value,task,time_s,fitted_power\n",
+        );
         for (axis, xs) in [
             ("pulsars", [20.0, 50.0, 100.0, 200.0]),
             ("toas_per_pulsar", [1e3, 1e4, 5e4, 1e5]),
@@ -297,9 +326,10 @@ mod tests {
         let svg = std::fs::read_to_string(dir.join("scaling.svg")).unwrap();
         assert!(svg.contains("aria-label=\"2.00\""), "fitted power drawn");
         assert!(svg.contains("test machine"), "caption names the machine");
+        assert!(svg.contains("CPU time (s)"), "the measure labels the axis");
         std::fs::write(
             &csv,
-            "# m\naxis,value,task,wall_s,fitted_power\npulsars,1,warp,1,1\n",
+            "# m\naxis,value,task,time_s,fitted_power\npulsars,1,warp,1,1\n",
         )
         .unwrap();
         assert!(plot_scaling(&csv, &dir).is_err(), "unknown task refused");
