@@ -866,7 +866,7 @@ impl NullData {
 }
 
 /// One row of recovery.csv: the same type the injection campaign writes.
-pub use crate::inject::RecoveryRow;
+pub use ptacorr::inject::RecoveryRow;
 
 /// Everything in an inject folder.
 #[derive(Clone, Debug, PartialEq)]

@@ -1,6 +1,6 @@
 //! The scaling figure of `benchmarks/run --full` through the project's figure code:
 //!
-//!     cargo run --release -p ptacorr-engine --example scaling_figure -- SCALING.csv OUT_DIR
+//!     cargo run --release -p ptacorr-present --example scaling_figure -- SCALING.csv OUT_DIR
 //!
 //! writes OUT_DIR/scaling.svg, scaling.png and the sidecar scaling.json.
 
@@ -12,7 +12,7 @@ fn main() {
         eprintln!("usage: scaling_figure SCALING.csv OUT_DIR");
         std::process::exit(2);
     };
-    match ptacorr::figure::plot_scaling(csv, out) {
+    match ptacorr_present::figure::plot_scaling(csv, out) {
         Ok(files) => {
             for f in files {
                 println!("wrote {}", f.display());
