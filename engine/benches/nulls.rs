@@ -2,13 +2,17 @@
 //! (simulations/bench100.toml: 4,950 pairs, K = 14, 2,800 eigenvalues): the analytic p-value
 //! of one release (the stable roots, the eigenvalues of the quadratic form and the tail at the
 //! observed SNR) and 10^5 reduced-space simulated null trials (rayon over trials). The targets
-//! of docs/performance.md: under 5 s and under 10 s on 2 cores.
+//! of docs/performance.md: under 5 s and under 10 s on 2 cores. Also 10^4 sky scrambles with
+//! the 0.1 match threshold on one thread, for every kernel version the CPU runs (the per-trial
+//! cost; `ptacorr null --method scramble` runs them on every core).
 //!
 //!     cargo bench -p ptacorr-engine --bench nulls
 
 use criterion::{black_box, criterion_group, criterion_main, Criterion};
 use ptacorr::analysis::{correlate, CorrelateSettings};
+use ptacorr::null::scramble::{Isa, Scrambles};
 use ptacorr::null::simulated::Reduced;
+use ptacorr::null::TrialSource;
 use ptacorr::null::{analytic, run_chunks, Control, Prepared};
 use ptacorr::orf::Pattern;
 use ptacorr::release::read_release;
@@ -54,6 +58,18 @@ fn nulls(c: &mut Criterion) {
             })
         },
     );
+    for isa in Isa::available() {
+        let s = Scrambles::new(&prepared, Pattern::Hd, 1, 0.1)
+            .unwrap()
+            .with_isa(isa);
+        g.bench_function(format!("10^4 sky scrambles, 1 thread, {isa:?}"), |b| {
+            b.iter(|| {
+                (0..10_000)
+                    .map(|i| s.trial(i).unwrap().attempts)
+                    .sum::<u64>()
+            })
+        });
+    }
     let source = Reduced::new(&prepared, roots.clone(), 1).unwrap();
     g.bench_function("10^5 reduced-space simulated nulls", |b| {
         b.iter(|| {

@@ -259,6 +259,7 @@ pub fn common_in_template_units(
 
 /// The per-frequency OS, the Hellings-Downs spread and the bin covariance with its fit, all at
 /// the measured Hellings-Downs amplitude.
+#[allow(clippy::too_many_arguments)]
 fn extras(
     reduced: &[Reduced],
     grid: &FrequencyGrid,

@@ -14,7 +14,6 @@ use super::{DensityGrid, Prepared, Trial};
 use crate::error::{Error, Result};
 use crate::gchisq::{GchisqError, GeneralisedChiSquare};
 use ndarray::Array2;
-use ndarray_linalg::{EigValsh, UPLO};
 use rayon::prelude::*;
 
 /// Points of the density grid written to null.json.
@@ -44,7 +43,7 @@ pub fn eigenvalues(p: &Prepared, roots: &[Array2<f64>]) -> Result<Vec<f64>> {
             k += 1;
         }
     }
-    let vals = m.eigvalsh(UPLO::Lower).map_err(|_| Error::NonFinite {
+    let vals = crate::linalg::symmetric_eigenvalues(m).ok_or_else(|| Error::NonFinite {
         what: "the eigenvalues of the OS quadratic form".into(),
     })?;
     let top = vals.iter().fold(0.0f64, |s, v| s.max(v.abs()));

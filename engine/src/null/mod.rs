@@ -435,13 +435,8 @@ pub fn trials_csv(trials: &[Trial]) -> String {
     let mut s = String::with_capacity(trials.len() * 48 + 32);
     s.push_str("trial,snr,amplitude2\n");
     for t in trials {
-        let _ = writeln!(
-            s,
-            "{},{},{}",
-            t.index,
-            fmt_f64(t.snr),
-            fmt_f64(t.amplitude2)
-        );
+        // `{:?}` is fmt_f64's round-trip form, written in place (no String per value).
+        let _ = writeln!(s, "{},{:?},{:?}", t.index, t.snr, t.amplitude2);
     }
     s
 }
@@ -504,11 +499,8 @@ fn checkpoint_csv(trials: &[Trial]) -> String {
     for t in trials {
         let _ = writeln!(
             s,
-            "{},{},{},{}",
-            t.index,
-            fmt_f64(t.snr),
-            fmt_f64(t.amplitude2),
-            t.attempts
+            "{},{:?},{:?},{}",
+            t.index, t.snr, t.amplitude2, t.attempts
         );
     }
     s

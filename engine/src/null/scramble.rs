@@ -11,7 +11,6 @@ use super::{Control, NullSettings, Prepared, Trial, TrialSource};
 use crate::error::{Error, Result};
 use crate::orf::Pattern;
 use crate::rng::{stream, Purpose};
-use crate::sky::isotropic_direction;
 use rand::Rng;
 
 /// Draws allowed for one trial before the threshold is declared unreachable.
@@ -50,6 +49,293 @@ pub fn hd_fast(cos_zeta: f64) -> f64 {
     0.5 - 0.25 * x + 1.5 * xs * fast_ln(xs)
 }
 
+/// Lanes of the fixed-order sums: lane l adds the terms whose index in the pair array is
+/// l mod 8, and the lanes are added in a fixed tree at the end. The order is a function of the
+/// array size alone, so a trial's sums are the same numbers on every thread, machine and
+/// instruction set (the compiler neither reorders nor fuses floating-point operations).
+const LANES: usize = 8;
+
+/// (cos 2 pi v, sin 2 pi v) for v in [0, 1), branch-free so that loops over it vectorise:
+/// 4 v = n + 4 f with n the nearest integer (exact, by adding 1.5 2^52) and |f| <= 1/8, so
+/// theta = 2 pi f is in [-pi/4, pi/4]; sin and cos of theta from their Taylor series to
+/// theta^15 and theta^16 (truncation below 5e-17; Abramowitz & Stegun 1964, 4.3.65 and 4.3.66),
+/// then rotated by the quadrant n mod 4. Agrees with the platform's sin/cos of 2 pi v to 1e-15
+/// (test; most of that is the rounding of the reference's own argument 2 pi v, up to 4.4e-16).
+#[inline(always)]
+pub fn cos_sin_turn(v: f64) -> (f64, f64) {
+    const MAGIC: f64 = 6_755_399_441_055_744.0; // 1.5 * 2^52: its ulp is 1
+    const S: [f64; 7] = [
+        -1.0 / 6.0,
+        1.0 / 120.0,
+        -1.0 / 5040.0,
+        1.0 / 362_880.0,
+        -1.0 / 39_916_800.0,
+        1.0 / 6_227_020_800.0,
+        -1.0 / 1_307_674_368_000.0,
+    ];
+    const C: [f64; 8] = [
+        -1.0 / 2.0,
+        1.0 / 24.0,
+        -1.0 / 720.0,
+        1.0 / 40_320.0,
+        -1.0 / 3_628_800.0,
+        1.0 / 479_001_600.0,
+        -1.0 / 87_178_291_200.0,
+        1.0 / 20_922_789_888_000.0,
+    ];
+    let t = 4.0 * v;
+    let r = t + MAGIC;
+    let q = r.to_bits() & 3;
+    let f = (t - (r - MAGIC)) * 0.25;
+    let th = f * std::f64::consts::TAU;
+    let t2 = th * th;
+    let mut ps = S[6];
+    for c in [S[5], S[4], S[3], S[2], S[1], S[0]] {
+        ps = ps * t2 + c;
+    }
+    let s = th + th * t2 * ps;
+    let mut pc = C[7];
+    for c in [C[6], C[5], C[4], C[3], C[2], C[1], C[0]] {
+        pc = pc * t2 + c;
+    }
+    let c = 1.0 + t2 * pc;
+    // Quadrant q: cos(q pi/2 + theta), sin(q pi/2 + theta) = (c, s), (-s, c), (-c, -s), (s, -c).
+    let (a, b) = if q & 1 == 1 { (s, c) } else { (c, s) };
+    let ca = if q == 1 || q == 2 { -a } else { a };
+    let sb = if q >= 2 { -b } else { b };
+    (ca, sb)
+}
+
+/// Isotropic unit vectors from uniforms u, v in [0, 1): z = 2u - 1, azimuth 2 pi v (the same map
+/// as [`crate::sky::isotropic_direction`], with [`cos_sin_turn`] for the azimuth).
+#[inline(always)]
+fn directions(u: &[f64], v: &[f64], x: &mut [f64], y: &mut [f64], z: &mut [f64]) {
+    for ((((u, v), x), y), z) in u.iter().zip(v).zip(x).zip(y).zip(z) {
+        let zz = 2.0 * u - 1.0;
+        let r = (1.0 - zz * zz).max(0.0).sqrt();
+        let (c, s) = cos_sin_turn(*v);
+        *x = r * c;
+        *y = r * s;
+        *z = zz;
+    }
+}
+
+/// Add the lanes in a fixed tree.
+#[inline(always)]
+fn lane_sum(a: &[f64; LANES]) -> f64 {
+    ((a[0] + a[1]) + (a[2] + a[3])) + ((a[4] + a[5]) + (a[6] + a[7]))
+}
+
+/// The pair arrays of the kernels are padded: row a (pairs a < b) starts at a multiple of
+/// [`LANES`] and is followed by zeros up to the next multiple, so that every row is whole
+/// vectors (no scalar remainder) and a sum over the padded array is the sum over the pairs.
+/// Returns each row's start and the padded length.
+fn padded_rows(n: usize) -> (Vec<usize>, usize) {
+    let mut starts = Vec::with_capacity(n);
+    let mut k = 0;
+    for a in 0..n {
+        starts.push(k);
+        k += (n - a - 1).div_ceil(LANES) * LANES;
+    }
+    (starts, k)
+}
+
+/// Row-major pair values (a < b) in the padded layout of [`padded_rows`].
+fn pad(values: &[f64], n: usize) -> Vec<f64> {
+    let (starts, total) = padded_rows(n);
+    let mut out = vec![0.0; total];
+    let mut k = 0;
+    for a in 0..n {
+        let len = n - a - 1;
+        out[starts[a]..starts[a] + len].copy_from_slice(&values[k..k + len]);
+        k += len;
+    }
+    out
+}
+
+/// G'_ab of the scramble with directions (x, y, z) into `g` (padded rows; x, y, z hold
+/// [`LANES`] zeros after the n pulsars, and the padding of `g` is set to zero). Each row is one
+/// element-wise loop over whole vectors, which the compiler vectorises.
+#[inline(always)]
+fn pattern_pass<F: Fn(f64) -> f64>(f: F, n: usize, x: &[f64], y: &[f64], z: &[f64], g: &mut [f64]) {
+    let mut k = 0;
+    for a in 0..n {
+        let len = n - a - 1;
+        let plen = len.div_ceil(LANES) * LANES;
+        let (xa, ya, za) = (x[a], y[a], z[a]);
+        let row = &mut g[k..k + plen];
+        let (xb, yb, zb) = (
+            &x[a + 1..a + 1 + plen],
+            &y[a + 1..a + 1 + plen],
+            &z[a + 1..a + 1 + plen],
+        );
+        for j in 0..plen {
+            row[j] = f(xa * xb[j] + ya * yb[j] + za * zb[j]);
+        }
+        row[len..].fill(0.0);
+        k += plen;
+    }
+}
+
+/// sum_i a_i b_i (times c_i when given) in [`LANES`] lanes of fixed order.
+#[inline(always)]
+fn lane_dot(a: &[f64], b: &[f64], c: Option<&[f64]>) -> f64 {
+    let mut s = [0.0; LANES];
+    let full = a.len() / LANES * LANES;
+    match c {
+        None => {
+            for (ac, bc) in a[..full]
+                .chunks_exact(LANES)
+                .zip(b[..full].chunks_exact(LANES))
+            {
+                let ac: &[f64; LANES] = ac.try_into().expect("chunk of LANES");
+                let bc: &[f64; LANES] = bc.try_into().expect("chunk of LANES");
+                for l in 0..LANES {
+                    s[l] += ac[l] * bc[l];
+                }
+            }
+            for j in full..a.len() {
+                s[j - full] += a[j] * b[j];
+            }
+        }
+        Some(c) => {
+            for ((ac, bc), cc) in a[..full]
+                .chunks_exact(LANES)
+                .zip(b[..full].chunks_exact(LANES))
+                .zip(c[..full].chunks_exact(LANES))
+            {
+                let ac: &[f64; LANES] = ac.try_into().expect("chunk of LANES");
+                let bc: &[f64; LANES] = bc.try_into().expect("chunk of LANES");
+                let cc: &[f64; LANES] = cc.try_into().expect("chunk of LANES");
+                for l in 0..LANES {
+                    s[l] += ac[l] * bc[l] * cc[l];
+                }
+            }
+            for j in full..a.len() {
+                s[j - full] += a[j] * b[j] * c[j];
+            }
+        }
+    }
+    lane_sum(&s)
+}
+
+/// (sum G' num_ab, sum G'^2 tr_ab) over the flat pair array.
+#[inline(always)]
+fn statistic_pass(g: &[f64], num: &[f64], tr: &[f64]) -> (f64, f64) {
+    (lane_dot(g, num, None), lane_dot(g, g, Some(tr)))
+}
+
+/// One candidate scramble: directions from the uniforms, pattern values and the match sums
+/// (sum G' G, sum G'^2).
+#[inline(always)]
+fn candidate(pattern: Pattern, g_true: &[f64], w: &mut Work) -> (f64, f64) {
+    let n = w.uv.len() / 2;
+    directions(
+        &w.uv[..n],
+        &w.uv[n..],
+        &mut w.x[..n],
+        &mut w.y[..n],
+        &mut w.z[..n],
+    );
+    match pattern {
+        Pattern::Dipole => pattern_pass(|c| c.clamp(-1.0, 1.0), n, &w.x, &w.y, &w.z, &mut w.g),
+        Pattern::Monopole => pattern_pass(|_| 1.0, n, &w.x, &w.y, &w.z, &mut w.g),
+        Pattern::Hd => pattern_pass(hd_fast, n, &w.x, &w.y, &w.z, &mut w.g),
+    }
+    (lane_dot(&w.g, g_true, None), lane_dot(&w.g, &w.g, None))
+}
+
+/// The instruction sets the kernels are compiled for; the best one the CPU has is picked at run
+/// time. The source is the same and the compiler neither reorders nor fuses floating-point
+/// operations, so every version returns the same bits (test `kernels_agree_bit_for_bit`).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Isa {
+    Baseline,
+    #[cfg(target_arch = "x86_64")]
+    Avx2,
+    #[cfg(target_arch = "x86_64")]
+    Avx512,
+}
+
+impl Isa {
+    /// The widest version this CPU runs.
+    pub fn detect() -> Isa {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::arch::is_x86_feature_detected!("avx512f") {
+                return Isa::Avx512;
+            }
+            if std::arch::is_x86_feature_detected!("avx2") {
+                return Isa::Avx2;
+            }
+        }
+        Isa::Baseline
+    }
+
+    /// Every version this CPU runs.
+    pub fn available() -> Vec<Isa> {
+        let mut v = vec![Isa::Baseline];
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::arch::is_x86_feature_detected!("avx2") {
+                v.push(Isa::Avx2);
+            }
+            if std::arch::is_x86_feature_detected!("avx512f") {
+                v.push(Isa::Avx512);
+            }
+        }
+        v
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn candidate_avx2(pattern: Pattern, g_true: &[f64], w: &mut Work) -> (f64, f64) {
+    candidate(pattern, g_true, w)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn candidate_avx512(pattern: Pattern, g_true: &[f64], w: &mut Work) -> (f64, f64) {
+    candidate(pattern, g_true, w)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn statistic_avx2(g: &[f64], num: &[f64], tr: &[f64]) -> (f64, f64) {
+    statistic_pass(g, num, tr)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn statistic_avx512(g: &[f64], num: &[f64], tr: &[f64]) -> (f64, f64) {
+    statistic_pass(g, num, tr)
+}
+
+/// Scratch space of one trial (no allocation per draw).
+struct Work {
+    /// u_a then v_a of every pulsar.
+    uv: Vec<f64>,
+    /// Directions, with [`LANES`] zeros after the n pulsars.
+    x: Vec<f64>,
+    y: Vec<f64>,
+    z: Vec<f64>,
+    /// Pattern values in the padded layout of [`padded_rows`].
+    g: Vec<f64>,
+}
+
+impl Work {
+    fn new(n: usize) -> Work {
+        Work {
+            uv: vec![0.0; 2 * n],
+            x: vec![0.0; n + LANES],
+            y: vec![0.0; n + LANES],
+            z: vec![0.0; n + LANES],
+            g: vec![0.0; padded_rows(n).1],
+        }
+    }
+}
+
 /// Sums of one scramble.
 #[derive(Clone, Copy, Debug, Default)]
 struct Sums {
@@ -57,10 +343,6 @@ struct Sums {
     num: f64,
     /// sum G'^2 / sigma^2.
     den: f64,
-    /// sum G' G.
-    cross: f64,
-    /// sum G'^2.
-    g2: f64,
 }
 
 /// Sky scrambles of a prepared array.
@@ -71,6 +353,11 @@ pub struct Scrambles<'a> {
     threshold: f64,
     /// sum G^2 of the true pattern.
     g2_true: f64,
+    /// G_ab, num_ab and tr_ab in the padded layout of the kernels.
+    g_true: Vec<f64>,
+    numerators: Vec<f64>,
+    traces: Vec<f64>,
+    isa: Isa,
 }
 
 impl<'a> Scrambles<'a> {
@@ -87,96 +374,87 @@ impl<'a> Scrambles<'a> {
             seed,
             threshold,
             g2_true: p.g.iter().map(|g| g * g).sum(),
+            g_true: pad(&p.g, p.n),
+            numerators: pad(&p.numerators, p.n),
+            traces: pad(&p.traces, p.n),
+            isa: Isa::detect(),
         })
     }
 
-    /// Isotropic directions for every pulsar, as three coordinate arrays.
-    fn draw(&self, rng: &mut impl Rng, xyz: &mut [Vec<f64>; 3]) {
-        for a in 0..self.p.n {
-            let d = isotropic_direction(rng.random(), rng.random());
-            for c in 0..3 {
-                xyz[c][a] = d[c];
-            }
+    /// The same scrambles computed with the kernels of instruction set `isa` (for tests and
+    /// benchmarks; `isa` must be one of [`Isa::available`]).
+    pub fn with_isa(mut self, isa: Isa) -> Self {
+        if Isa::available().contains(&isa) {
+            self.isa = isa;
         }
+        self
     }
 
-    /// G'_ab of the scramble into `g` (row-major pairs).
-    fn pattern_values(&self, xyz: &[Vec<f64>; 3], g: &mut [f64]) {
+    /// Draw the uniforms of one candidate: u_a, v_a for every pulsar in turn (the stream's
+    /// order since the first version of scrambles).
+    fn draw(&self, rng: &mut impl Rng, w: &mut Work) {
         let n = self.p.n;
-        let (xs, ys, zs) = (&xyz[0], &xyz[1], &xyz[2]);
-        let mut k = 0;
         for a in 0..n {
-            let (xa, ya, za) = (xs[a], ys[a], zs[a]);
-            let row = &mut g[k..k + n - a - 1];
-            let (xb, yb, zb) = (&xs[a + 1..], &ys[a + 1..], &zs[a + 1..]);
-            match self.pattern {
-                Pattern::Hd => {
-                    for j in 0..row.len() {
-                        row[j] = hd_fast(xa * xb[j] + ya * yb[j] + za * zb[j]);
-                    }
-                }
-                Pattern::Dipole => {
-                    for j in 0..row.len() {
-                        row[j] = (xa * xb[j] + ya * yb[j] + za * zb[j]).clamp(-1.0, 1.0);
-                    }
-                }
-                Pattern::Monopole => row.fill(1.0),
-            }
-            k += n - a - 1;
+            w.uv[a] = rng.random();
+            w.uv[n + a] = rng.random();
         }
     }
 
-    /// The four sums with fixed-order lane accumulation (the same on every machine and thread).
-    fn sums(&self, g: &[f64]) -> Sums {
-        let p = self.p;
-        let mut acc = [[0.0f64; 4]; 4];
-        let n4 = g.len() / 4 * 4;
-        for i in (0..n4).step_by(4) {
-            for l in 0..4 {
-                let gi = g[i + l];
-                acc[0][l] += gi * p.numerators[i + l];
-                acc[1][l] += gi * gi * p.traces[i + l];
-                acc[2][l] += gi * p.g[i + l];
-                acc[3][l] += gi * gi;
+    /// Directions, pattern values and (sum G' G, sum G'^2) of the drawn candidate.
+    fn candidate(&self, w: &mut Work) -> (f64, f64) {
+        match self.isa {
+            Isa::Baseline => candidate(self.pattern, &self.g_true, w),
+            // SAFETY: `isa` is only ever a set the CPU reported (`Isa::detect`, `with_isa`).
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx2 => unsafe { candidate_avx2(self.pattern, &self.g_true, w) },
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx512 => unsafe { candidate_avx512(self.pattern, &self.g_true, w) },
+        }
+    }
+
+    /// (sum G' num, sum G'^2 tr) of the pattern values in `g`.
+    fn statistic(&self, g: &[f64]) -> Sums {
+        let (num, tr) = (&self.numerators, &self.traces);
+        let (num, den) = match self.isa {
+            Isa::Baseline => statistic_pass(g, num, tr),
+            // SAFETY: as in `candidate`.
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx2 => unsafe { statistic_avx2(g, num, tr) },
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx512 => unsafe { statistic_avx512(g, num, tr) },
+        };
+        Sums { num, den }
+    }
+
+    /// Draw candidates from trial `index`'s stream until one is accepted; its attempt number
+    /// and its work space (directions and pattern values) and sums.
+    fn accepted_candidate(&self, index: u64, w: &mut Work) -> Result<(u64, f64)> {
+        let mut rng = stream(self.seed, Purpose::Scramble, index);
+        for attempt in 1..=MAX_ATTEMPTS {
+            self.draw(&mut rng, w);
+            let (cross, g2) = self.candidate(w);
+            if self.accepted(cross, g2) {
+                return Ok((attempt, g2));
             }
         }
-        let mut s = [0.0; 4];
-        for q in 0..4 {
-            s[q] = (acc[q][0] + acc[q][1]) + (acc[q][2] + acc[q][3]);
-        }
-        for i in n4..g.len() {
-            let gi = g[i];
-            s[0] += gi * p.numerators[i];
-            s[1] += gi * gi * p.traces[i];
-            s[2] += gi * p.g[i];
-            s[3] += gi * gi;
-        }
-        Sums {
-            num: s[0],
-            den: s[1],
-            cross: s[2],
-            g2: s[3],
-        }
+        Err(Error::setting(
+            "match-threshold",
+            format!(
+                "no scramble of {MAX_ATTEMPTS} draws had |match| below {}; raise the threshold",
+                self.threshold
+            ),
+        ))
     }
 
     /// The directions of trial `index`'s accepted scramble (replaying its stream).
     pub fn accepted_directions(&self, index: u64) -> Result<Vec<crate::sky::Direction>> {
-        let mut rng = stream(self.seed, Purpose::Scramble, index);
-        let n = self.p.n;
-        let mut xyz = [vec![0.0; n], vec![0.0; n], vec![0.0; n]];
-        let mut g = vec![0.0; self.p.g.len()];
-        for _ in 0..MAX_ATTEMPTS {
-            self.draw(&mut rng, &mut xyz);
-            self.pattern_values(&xyz, &mut g);
-            if self.accepted(&self.sums(&g)) {
-                return Ok((0..n).map(|a| [xyz[0][a], xyz[1][a], xyz[2][a]]).collect());
-            }
-        }
-        Err(Error::setting("match-threshold", "no accepted scramble"))
+        let mut w = Work::new(self.p.n);
+        self.accepted_candidate(index, &mut w)?;
+        Ok((0..self.p.n).map(|a| [w.x[a], w.y[a], w.z[a]]).collect())
     }
 
-    fn accepted(&self, s: &Sums) -> bool {
-        self.threshold >= 1.0 || match_value(s.cross, s.g2, self.g2_true).abs() < self.threshold
+    fn accepted(&self, cross: f64, g2: f64) -> bool {
+        self.threshold >= 1.0 || match_value(cross, g2, self.g2_true).abs() < self.threshold
     }
 }
 
@@ -191,30 +469,15 @@ fn match_value(cross: f64, g2: f64, g2_true: f64) -> f64 {
 
 impl TrialSource for Scrambles<'_> {
     fn trial(&self, index: u64) -> Result<Trial> {
-        let mut rng = stream(self.seed, Purpose::Scramble, index);
-        let n = self.p.n;
-        let mut xyz = [vec![0.0; n], vec![0.0; n], vec![0.0; n]];
-        let mut g = vec![0.0; self.p.g.len()];
-        for attempt in 1..=MAX_ATTEMPTS {
-            self.draw(&mut rng, &mut xyz);
-            self.pattern_values(&xyz, &mut g);
-            let s = self.sums(&g);
-            if self.accepted(&s) {
-                return Ok(Trial {
-                    index,
-                    snr: s.num / s.den.sqrt(),
-                    amplitude2: s.num / s.den,
-                    attempts: attempt,
-                });
-            }
-        }
-        Err(Error::setting(
-            "match-threshold",
-            format!(
-                "no scramble of {MAX_ATTEMPTS} draws had |match| below {}; raise the threshold",
-                self.threshold
-            ),
-        ))
+        let mut w = Work::new(self.p.n);
+        let (attempts, _) = self.accepted_candidate(index, &mut w)?;
+        let s = self.statistic(&w.g);
+        Ok(Trial {
+            index,
+            snr: s.num / s.den.sqrt(),
+            amplitude2: s.num / s.den,
+            attempts,
+        })
     }
 }
 
@@ -227,26 +490,24 @@ impl TrialSource for Scrambles<'_> {
 pub fn mutual(p: &Prepared, settings: &NullSettings, control: Control) -> Result<Vec<Trial>> {
     let thr = settings.match_threshold.unwrap_or(1.0);
     let s = Scrambles::new(p, settings.pattern, settings.seed, thr)?;
-    let n = p.n;
-    let mut xyz = [vec![0.0; n], vec![0.0; n], vec![0.0; n]];
-    let mut g = vec![0.0; p.g.len()];
+    let mut w = Work::new(p.n);
     let mut kept: Vec<Vec<f64>> = Vec::new();
     let mut out = Vec::new();
     for index in 0..settings.trials {
         let mut rng = stream(settings.seed, Purpose::Scramble, index);
         let mut done = false;
         for attempt in 1..=MAX_ATTEMPTS {
-            s.draw(&mut rng, &mut xyz);
-            s.pattern_values(&xyz, &mut g);
-            let sums = s.sums(&g);
-            if !s.accepted(&sums) {
+            s.draw(&mut rng, &mut w);
+            let (cross, g2) = s.candidate(&mut w);
+            if !s.accepted(cross, g2) {
                 continue;
             }
-            let norm = sums.g2.sqrt();
+            let sums = s.statistic(&w.g);
+            let norm = g2.sqrt();
             if norm == 0.0 {
                 continue;
             }
-            let unit: Vec<f64> = g.iter().map(|v| v / norm).collect();
+            let unit: Vec<f64> = w.g.iter().map(|v| v / norm).collect();
             if kept
                 .iter()
                 .any(|k| super::dot(k, &unit).abs() >= thr && thr < 1.0)
@@ -307,6 +568,131 @@ mod tests {
             x *= 1.7;
         }
         assert!(worst < 4e-16, "relative error {worst}");
+    }
+
+    #[test]
+    fn turn_sine_and_cosine_agree_with_libm() {
+        // Against the platform's sin/cos (glibc/libm, within 1 ulp) on dyadic v as the
+        // generator makes them, including the quadrant edges.
+        let mut worst: f64 = 0.0;
+        let mut check = |v: f64| {
+            let (c, s) = cos_sin_turn(v);
+            let a = std::f64::consts::TAU * v;
+            worst = worst.max((c - a.cos()).abs()).max((s - a.sin()).abs());
+            assert!((c * c + s * s - 1.0).abs() < 1e-15, "{v}");
+        };
+        for i in 0..=80 {
+            check(i as f64 / 80.0 * (1.0 - f64::EPSILON));
+        }
+        let mut r = crate::rng::stream(1, Purpose::Scramble, 0);
+        for _ in 0..200_000 {
+            check(r.random());
+        }
+        // The reference's argument TAU * v is itself rounded (half an ulp of 2 pi: 4.4e-16).
+        assert!(worst < 1e-15, "absolute error {worst}");
+    }
+
+    #[test]
+    fn directions_are_the_isotropic_map() {
+        let mut r = crate::rng::stream(2, Purpose::Scramble, 0);
+        let n = 257;
+        let (u, v): (Vec<f64>, Vec<f64>) = (0..n)
+            .map(|_| (r.random::<f64>(), r.random::<f64>()))
+            .unzip();
+        let (mut x, mut y, mut z) = (vec![0.0; n], vec![0.0; n], vec![0.0; n]);
+        directions(&u, &v, &mut x, &mut y, &mut z);
+        for a in 0..n {
+            let d = crate::sky::isotropic_direction(u[a], v[a]);
+            let e = [x[a], y[a], z[a]];
+            for c in 0..3 {
+                assert!((d[c] - e[c]).abs() < 1e-15, "{a} {c}");
+            }
+        }
+    }
+
+    #[test]
+    fn kernels_agree_bit_for_bit() {
+        // Every instruction set the CPU has gives the same bits as the baseline build, for
+        // both patterns, on an array whose rows are not multiples of the lane count; and the
+        // padded pattern values are the closed-form pattern of the directions, pair by pair.
+        let n = 37;
+        let pairs = n * (n - 1) / 2;
+        let mut r = crate::rng::stream(3, Purpose::Scramble, 0);
+        let g_true = pad(
+            &(0..pairs)
+                .map(|_| r.random::<f64>() - 0.3)
+                .collect::<Vec<_>>(),
+            n,
+        );
+        let num = pad(
+            &(0..pairs)
+                .map(|_| r.random::<f64>() - 0.5)
+                .collect::<Vec<_>>(),
+            n,
+        );
+        let tr = pad(
+            &(0..pairs).map(|_| r.random::<f64>()).collect::<Vec<_>>(),
+            n,
+        );
+        let uv: Vec<f64> = (0..2 * n).map(|_| r.random()).collect();
+        for pattern in [Pattern::Hd, Pattern::Dipole] {
+            let mut base = Work::new(n);
+            base.uv.clone_from(&uv);
+            let m0 = candidate(pattern, &g_true, &mut base);
+            let s0 = statistic_pass(&base.g, &num, &tr);
+            let dirs: Vec<crate::sky::Direction> =
+                (0..n).map(|a| [base.x[a], base.y[a], base.z[a]]).collect();
+            let plain = crate::orf::pattern_for_pairs(pattern, &dirs);
+            let padded = pad(&plain, n);
+            for (a, b) in padded.iter().zip(&base.g) {
+                assert!((a - b).abs() < 1e-14, "{pattern:?}: {a} {b}");
+            }
+            for isa in Isa::available() {
+                let mut w2 = Work::new(n);
+                w2.uv.clone_from(&uv);
+                let (m, s) = match isa {
+                    Isa::Baseline => (
+                        candidate(pattern, &g_true, &mut w2),
+                        statistic_pass(&base.g, &num, &tr),
+                    ),
+                    #[cfg(target_arch = "x86_64")]
+                    Isa::Avx2 => unsafe {
+                        (
+                            candidate_avx2(pattern, &g_true, &mut w2),
+                            statistic_avx2(&base.g, &num, &tr),
+                        )
+                    },
+                    #[cfg(target_arch = "x86_64")]
+                    Isa::Avx512 => unsafe {
+                        (
+                            candidate_avx512(pattern, &g_true, &mut w2),
+                            statistic_avx512(&base.g, &num, &tr),
+                        )
+                    },
+                };
+                assert_eq!(m.0.to_bits(), m0.0.to_bits(), "{isa:?}");
+                assert_eq!(m.1.to_bits(), m0.1.to_bits(), "{isa:?}");
+                assert_eq!(s.0.to_bits(), s0.0.to_bits(), "{isa:?}");
+                assert_eq!(s.1.to_bits(), s0.1.to_bits(), "{isa:?}");
+                assert!(w2
+                    .g
+                    .iter()
+                    .zip(&base.g)
+                    .all(|(a, b)| a.to_bits() == b.to_bits()));
+            }
+        }
+    }
+
+    #[test]
+    fn padded_rows_hold_every_pair_once() {
+        for n in [2, 3, 8, 9, 17, 100] {
+            let pairs = n * (n - 1) / 2;
+            let v: Vec<f64> = (0..pairs).map(|i| i as f64 + 1.0).collect();
+            let p = pad(&v, n);
+            assert_eq!(p.len() % LANES, 0);
+            assert_eq!(p.iter().filter(|x| **x != 0.0).count(), pairs);
+            assert_eq!(p.iter().sum::<f64>(), v.iter().sum::<f64>());
+        }
     }
 
     #[test]

@@ -21,11 +21,14 @@ mod input;
 mod nmos;
 mod null;
 mod recovery;
+pub mod scaling;
 mod spectrum;
 
 use std::io::Write as _;
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicU64, Ordering};
+
+pub use scaling::plot_scaling;
 
 pub use input::{
     detect_kinds, Bin, CorrelateData, FolderKind, InjectData, MultiFit, NmosRead, NullData,
