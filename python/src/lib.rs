@@ -105,6 +105,13 @@ fn interrupted() -> ptacorr::Error {
     )
 }
 
+/// A `ptacorr.SettingError` for a setting checked here, with the engine's message form and the
+/// `name` and `message` attributes.
+fn setting(name: &str, message: impl Into<String>) -> PyErr {
+    let e = ptacorr::Error::setting(name, message);
+    Python::attach(|py| to_py_err(py, e))
+}
+
 /// Print a data warning on stderr, as the command does (it is also kept in provenance).
 fn print_warning(w: &str) {
     eprintln!("warning: {w}");
@@ -115,9 +122,10 @@ fn parse_pattern(name: &str) -> PyResult<Pattern> {
         .into_iter()
         .find(|p| p.name() == name)
         .ok_or_else(|| {
-            SettingError::new_err(format!(
-                "invalid setting pattern: expected hd, monopole or dipole, got {name:?}"
-            ))
+            setting(
+                "pattern",
+                format!("expected hd, monopole or dipole, got {name:?}"),
+            )
         })
 }
 
@@ -170,11 +178,7 @@ impl Release {
             .pulsars
             .iter()
             .find(|p| p.label == label)
-            .ok_or_else(|| {
-                SettingError::new_err(format!(
-                    "invalid setting label: no pulsar {label:?} in the release"
-                ))
-            })?;
+            .ok_or_else(|| setting("label", format!("no pulsar {label:?} in the release")))?;
         let d = PyDict::new(py);
         d.set_item("label", &p.label)?;
         d.set_item("ra_deg", p.ra.to_degrees())?;
@@ -287,9 +291,7 @@ fn build_release(
         ("backend", backend.len()),
     ] {
         if len != n {
-            return Err(SettingError::new_err(format!(
-                "invalid setting {name}: has {len} entries for {n} labels"
-            )));
+            return Err(setting(name, format!("has {len} entries for {n} labels")));
         }
     }
     let mut pulsars = Vec::with_capacity(n);
@@ -301,19 +303,25 @@ fn build_release(
             .zip(columns)
         {
             if c.as_array().len() != n_toa {
-                return Err(SettingError::new_err(format!(
-                    "invalid setting {name}[{i}]: pulsar {} has {} values and {n_toa} TOAs",
-                    labels[i],
-                    c.as_array().len()
-                )));
+                return Err(setting(
+                    &format!("{name}[{i}]"),
+                    format!(
+                        "pulsar {} has {} values and {n_toa} TOAs",
+                        labels[i],
+                        c.as_array().len()
+                    ),
+                ));
             }
         }
         if backend[i].len() != n_toa {
-            return Err(SettingError::new_err(format!(
-                "invalid setting backend[{i}]: pulsar {} has {} labels and {n_toa} TOAs",
-                labels[i],
-                backend[i].len()
-            )));
+            return Err(setting(
+                &format!("backend[{i}]"),
+                format!(
+                    "pulsar {} has {} labels and {n_toa} TOAs",
+                    labels[i],
+                    backend[i].len()
+                ),
+            ));
         }
         let mut backends: Vec<String> = Vec::new();
         let index: Vec<usize> = backend[i]
@@ -387,8 +395,9 @@ fn correlate_settings(
     no_common: bool,
 ) -> PyResult<CorrelateSettings> {
     if no_common && common_log10_amplitude.is_some() {
-        return Err(SettingError::new_err(
-            "invalid setting no_common: cannot be combined with common_log10_amplitude",
+        return Err(setting(
+            "no_common",
+            "cannot be combined with common_log10_amplitude",
         ));
     }
     Ok(CorrelateSettings {
@@ -588,14 +597,16 @@ fn correlate(
         "median" => ptacorr::common::FitStatistic::Median,
         "map" => ptacorr::common::FitStatistic::Map,
         other => {
-            return Err(SettingError::new_err(format!(
-                "invalid setting common_fit_value: expected median or map, got {other:?}"
-            )))
+            return Err(setting(
+                "common_fit_value",
+                format!("expected median or map, got {other:?}"),
+            ))
         }
     };
     if common_fit.is_some() && (no_common || common_log10_amplitude.is_some()) {
-        return Err(SettingError::new_err(
-            "invalid setting common_fit: cannot be combined with no_common or common_log10_amplitude",
+        return Err(setting(
+            "common_fit",
+            "cannot be combined with no_common or common_log10_amplitude",
         ));
     }
     let r = rel.clone();
@@ -650,9 +661,10 @@ fn null<'py>(
 ) -> PyResult<Bound<'py, PyAny>> {
     use ptacorr::null::{Control, Method, NullSettings, Shard};
     let method = Method::from_name(method).ok_or_else(|| {
-        SettingError::new_err(format!(
-            "invalid setting method: expected scramble, phase or simulate, got {method:?}"
-        ))
+        setting(
+            "method",
+            format!("expected scramble, phase or simulate, got {method:?}"),
+        )
     })?;
     let mut s = NullSettings::new(method, trials, seed);
     s.pattern = parse_pattern(pattern)?;
@@ -760,15 +772,16 @@ fn inject<'py>(
     let err = |e| to_py_err(py, e);
     let choice = |name: &str, value: &str, allowed: &[&str]| -> PyResult<usize> {
         allowed.iter().position(|a| *a == value).ok_or_else(|| {
-            SettingError::new_err(format!(
-                "invalid setting {name}: expected one of {}, got {value:?}",
-                allowed.join(", ")
-            ))
+            setting(
+                name,
+                format!("expected one of {}, got {value:?}", allowed.join(", ")),
+            )
         })
     };
     if no_common && common_log10_amplitude.is_some() {
-        return Err(SettingError::new_err(
-            "invalid setting no_common: cannot be combined with common_log10_amplitude",
+        return Err(setting(
+            "no_common",
+            "cannot be combined with common_log10_amplitude",
         ));
     }
     let settings = InjectSettings {
@@ -960,9 +973,10 @@ fn common<'py>(
             "uniform-log10" => AmplitudePrior::UniformLog10,
             "uniform-amplitude" => AmplitudePrior::UniformAmplitude,
             other => {
-                return Err(SettingError::new_err(format!(
-                    "invalid setting amplitude_prior: expected uniform-log10 or uniform-amplitude, got {other:?}"
-                )))
+                return Err(setting(
+                    "amplitude_prior",
+                    format!("expected uniform-log10 or uniform-amplitude, got {other:?}"),
+                ))
             }
         },
         ..Default::default()
@@ -976,8 +990,7 @@ fn common<'py>(
             return Err(interrupted());
         }
         fit.write(&out, &rel, &data)?;
-        // The dict is the summary.json just written (checked against its manifest first).
-        ptacorr::output::check_manifest(&out)?;
+        // The dict is the summary.json just written.
         let path = out.join("summary.json");
         let text = std::fs::read_to_string(&path).map_err(|e| ptacorr::Error::io(&path, e))?;
         serde_json::from_str::<serde_json::Value>(&text)

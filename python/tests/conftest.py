@@ -13,11 +13,11 @@ REPO = pathlib.Path(__file__).resolve().parents[2]
 
 def _binary() -> pathlib.Path:
     b = os.environ.get("PTACORR_BIN")
-    p = pathlib.Path(b) if b else REPO / "target" / "release" / "ptacorr"
+    p = pathlib.Path(b) if b else REPO / "target" / "debug" / "ptacorr"
     if not p.is_file():
         # A missing reference must fail, not skip: the tests compare with it.
         raise RuntimeError(
-            f"the ptacorr binary {p} is missing: run `cargo build --release -p ptacorr-cli` "
+            f"the ptacorr binary {p} is missing: run `cargo build -p ptacorr-cli` "
             "or set PTACORR_BIN (./run test does this)"
         )
     return p

@@ -217,18 +217,29 @@ def test_bad_settings_raise_setting_error(demo_release, work):
 
 
 def test_bad_arrays_raise_before_anything_is_written(work):
-    good = dict(labels=["A1"], ra_deg=[10.0], dec_deg=[-20.0],
-                mjd=[np.linspace(55000, 58000, 50)], residual_s=[np.zeros(50)],
-                sigma_s=[np.full(50, 1e-7)], freq_mhz=[np.full(50, 1400.0)],
-                backend=[["KRK-L"] * 50])
-    with pytest.raises(ptacorr.SettingError, match="residual_s"):
-        ptacorr.build_release(work / "b1", **{**good, "residual_s": [np.zeros(49)]})
-    with pytest.raises(ptacorr.InputError, match="sigma_s"):
-        ptacorr.build_release(work / "b2", **{**good, "sigma_s": [np.full(50, -1e-7)]})
+    n = 50
+    good = dict(labels=["A1", "A2", "A3"], ra_deg=[10.0, 100.0, 200.0],
+                dec_deg=[-20.0, 5.0, 40.0], mjd=[np.linspace(55000, 58000, n)] * 3,
+                residual_s=[np.zeros(n)] * 3, sigma_s=[np.full(n, 1e-7)] * 3,
+                freq_mhz=[np.full(n, 1400.0)] * 3, backend=[["KRK-L"] * n] * 3)
+
+    def but(key, index, value):
+        v = list(good[key])
+        v[index] = value
+        return {**good, key: v}
+
+    with pytest.raises(ptacorr.SettingError, match="residual_s") as e:
+        ptacorr.build_release(work / "b1", **but("residual_s", 1, np.zeros(n - 1)))
+    assert e.value.name == "residual_s[1]"
+    with pytest.raises(ptacorr.InputError, match="sigma_s") as e:
+        ptacorr.build_release(work / "b2", **but("sigma_s", 2, np.full(n, -1e-7)))
+    assert e.value.field == "sigma_s" and e.value.line == 2
     with pytest.raises(ptacorr.SettingError, match="label"):
-        ptacorr.build_release(work / "b3", **{**good, "labels": ["../evil"]})
+        ptacorr.build_release(work / "b3", **but("labels", 0, "../evil"))
+    with pytest.raises(ValueError, match="could not convert"):  # numpy's own conversion
+        ptacorr.build_release(work / "b4", **but("mjd", 0, np.array(["a"] * n)))
     with pytest.raises(TypeError):
-        ptacorr.build_release(work / "b4", **{**good, "mjd": [np.array(["a"] * 50)]})
+        ptacorr.build_release(work / "b4", **but("mjd", 0, {"not": "an array"}))
     for d in ["b1", "b2", "b3", "b4"]:
         assert not (work / d).exists(), d
     assert not [p for p in work.iterdir() if p.name.startswith(".b")]
@@ -273,20 +284,27 @@ def test_long_calls_release_the_gil(demo_release, work):
 
 
 def test_ctrl_c_raises_keyboard_interrupt_and_the_same_call_resumes(cli, work, demo_release):
-    args = dict(method="simulate", time_domain=True, trials=96, seed=8, analytic=False)
+    args = dict(method="simulate", time_domain=True, trials=400, seed=8, analytic=False)
     out = work / "ctrl-c-null"
-    timer = threading.Timer(3.0, lambda: os.kill(os.getpid(), signal.SIGINT))
-    timer.start()
-    t0 = time.monotonic()
-    with pytest.raises(KeyboardInterrupt):
+
+    def press_ctrl_c_after_the_first_chunks():
+        # Ctrl-C once the run has checkpointed some chunks (what a user sees as progress).
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline:
+            if len(list((out / ".partial").glob("chunk-*.csv"))) >= 2:
+                break
+            time.sleep(0.02)
+        os.kill(os.getpid(), signal.SIGINT)
+
+    presser = threading.Thread(target=press_ctrl_c_after_the_first_chunks)
+    presser.start()
+    with pytest.raises(KeyboardInterrupt, match="rerun the same command to resume"):
         ptacorr.null(demo_release, out=out, **args)
-    timer.cancel()
-    stopped_after = time.monotonic() - t0
+    presser.join()
     chunks = list((out / ".partial").glob("chunk-*.csv"))
-    assert chunks, "no checkpoint kept"
+    assert 2 <= len(chunks) < 50, len(chunks)  # stopped part-way, finished chunks kept
     assert not (out / "null.json").exists()
     ptacorr.null(demo_release, out=out, **args)
-    cli("null", demo_release, "--method", "simulate", "--time-domain", "--trials", 96,
+    cli("null", demo_release, "--method", "simulate", "--time-domain", "--trials", 400,
         "--seed", 8, "--no-analytic", "--out", work / "ctrl-c-cli")
     same_folder(work / "ctrl-c-cli", out)
-    print(f"interrupted after {stopped_after:.1f} s with {len(chunks)} chunks kept")

@@ -129,7 +129,7 @@ merge=$(sed 's/.*merge=\([0-9]*\).*/\1/' <<<"$ids")
 # Kill task 2 once it has checkpointed some chunks, and requeue it.
 killed=
 for _ in $(seq 1 600); do
-  n=$(find recipe-null/shards/shard-2/.partial -name 'chunk-*.csv' 2>/dev/null | wc -l)
+  n=$({ find recipe-null/shards/shard-2/.partial -name 'chunk-*.csv' 2>/dev/null || true; } | wc -l)
   if [ "$n" -ge 2 ]; then
     scontrol requeue "${array}_2" || fail "scontrol requeue ${array}_2 failed"
     killed=$n
