@@ -12,6 +12,7 @@ detection claim needs the collaboration's full analysis.
 """
 
 from os import PathLike
+from pathlib import Path
 from typing import Any, Literal, Optional, Sequence, Union
 
 import numpy as np
@@ -32,7 +33,7 @@ class Error(Exception):
 class InputError(Error):
     """A value in an input file is malformed or out of range."""
 
-    path: str
+    path: Path
     line: Optional[int]
     field: Optional[str]
     message: str
@@ -49,7 +50,7 @@ class NumericalError(Error):
 class FileError(Error):
     """A file could not be read or written."""
 
-    path: str
+    path: Path
     message: str
 
 class Release:
@@ -58,7 +59,7 @@ class Release:
     @property
     def title(self) -> str: ...
     @property
-    def path(self) -> str:
+    def path(self) -> Path:
         """The release folder."""
     @property
     def labels(self) -> list[str]:

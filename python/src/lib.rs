@@ -999,6 +999,10 @@ fn common<'py>(
     json_to_py(py, &summary)
 }
 
+/// ptacorr: the optimal-statistic search for a gravitational-wave background in pulsar-timing
+/// residuals. Every function runs the engine function the `ptacorr` command runs and writes the
+/// same output folders; p-values and Bayes factors assume the noise model (and the priors), and a
+/// detection claim needs the collaboration's full analysis. See help(ptacorr.correlate) etc.
 #[pymodule]
 #[pyo3(name = "ptacorr")]
 fn ptacorr_module(m: &Bound<'_, PyModule>) -> PyResult<()> {

@@ -107,9 +107,13 @@ wait_job() {
     [ "$t" -lt "$limit" ] || fail "job $job still queued after ${limit} s: $(squeue 2>&1)"
   done
 }
-# Files of two folders, byte for byte (manifest.json included).
+# Files of two folders, byte for byte; manifest.json too, except the line naming the command
+# that wrote the folder (`merge` for a merged folder, the campaign's command for one process).
 same_files() {
-  diff -r -q -x .lock "$1" "$2" >/dev/null || { diff -r -x .lock "$1" "$2" | head -n 40 >&2; fail "$1 and $2 differ"; }
+  diff -r -q -x .lock -x manifest.json "$1" "$2" >/dev/null ||
+    { diff -r -x .lock -x manifest.json "$1" "$2" | head -n 40 >&2; fail "$1 and $2 differ"; }
+  diff <(grep -v '^  "command": ' "$1/manifest.json") <(grep -v '^  "command": ' "$2/manifest.json") >&2 ||
+    fail "the manifests of $1 and $2 list different files or hashes"
 }
 now() { date +%s.%N; }
 
