@@ -20,6 +20,7 @@ mod common_cmd;
 mod demo;
 mod figures_cmd;
 mod inject_cmd;
+mod job_array_cmd;
 mod noise_cmd;
 mod null_cmd;
 
@@ -113,6 +114,9 @@ enum Command {
     Noise(noise_cmd::NoiseArgs),
     /// Merge the shard folders of one `ptacorr noise` run.
     MergeNoise(noise_cmd::MergeNoiseArgs),
+    /// Write a SLURM job-array recipe (array, merge job, submit script) for a null, inject or
+    /// noise campaign (docs/cluster.md).
+    JobArray(job_array_cmd::JobArrayArgs),
 }
 
 #[derive(clap::Args, Clone)]
@@ -336,6 +340,7 @@ fn run(cli: Cli) -> Result<()> {
         }
         Command::Noise(args) => noise_cmd::run(args),
         Command::MergeNoise(args) => noise_cmd::run_merge(args),
+        Command::JobArray(args) => job_array_cmd::run(args, cli.strict, cli.allow_outside_paths),
     }
 }
 

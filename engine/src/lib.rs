@@ -17,6 +17,7 @@ pub mod basis;
 pub mod bin_covariance;
 pub mod bins;
 pub mod chains;
+pub mod cluster;
 pub mod common;
 pub mod constants;
 pub mod error;

@@ -106,10 +106,11 @@ pub fn merge_shards(dirs: &[PathBuf]) -> Result<Outcome> {
         ));
     }
     state.shard = Shard::ALL;
-    Ok(Outcome::new(
-        state,
-        records,
-        rec.assumptions,
-        rec.provenance,
-    ))
+    // The merged folder is the whole campaign: its provenance names no shard, as one process's
+    // does (so the merge of a job array is byte for byte the single run, docs/cluster.md).
+    let mut provenance = rec.provenance;
+    if let Some(s) = provenance.pointer_mut("/settings/shard") {
+        *s = serde_json::to_value(Shard::ALL).unwrap_or_default();
+    }
+    Ok(Outcome::new(state, records, rec.assumptions, provenance))
 }
