@@ -15,6 +15,7 @@ extern crate openblas_src;
 pub mod analysis;
 pub mod basis;
 pub mod bins;
+pub mod chains;
 pub mod common;
 pub mod constants;
 pub mod error;

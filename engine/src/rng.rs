@@ -19,6 +19,10 @@ pub enum Purpose {
     TimeDomainNull = 8,
     NoiseStart = 9,
     NoiseChain = 10,
+    /// Posterior draws of the common process (`ptacorr common`, common-draws.csv).
+    CommonDraw = 21,
+    /// Chains of the common free spectrum.
+    FreeSpectrumChain = 22,
 }
 
 /// SplitMix64 finaliser (Steele, Lea & Flood 2014), used to spread seeds.
