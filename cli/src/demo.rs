@@ -26,18 +26,20 @@ pub fn run(out: &Path, seed: u64) -> Result<()> {
     c.write(&analysis_dir, &rel, &settings)?;
     crate::print_summary(&rel, &c);
     let figure_dir = out.join("figures");
-    let opts = ptacorr::figure::FigureOptions {
+    let opts = ptacorr_present::figure::FigureOptions {
         show_pairs: true,
         ..Default::default()
     };
-    ptacorr::figure::plot_folder(
+    ptacorr_present::figure::plot_folder(
         &analysis_dir,
-        ptacorr::figure::FigureFormat::Png,
+        ptacorr_present::figure::FigureFormat::Png,
         Some(&figure_dir),
         &opts,
     )?;
-    let report =
-        ptacorr::report::build_report(std::slice::from_ref(&analysis_dir), &out.join("report"))?;
+    let report = ptacorr_present::report::build_report(
+        std::slice::from_ref(&analysis_dir),
+        &out.join("report"),
+    )?;
     println!("wrote the analysis to {}", analysis_dir.display());
     println!(
         "wrote the figure to {}",

@@ -1,8 +1,8 @@
 //! `ptacorr plot` and `ptacorr report`: figures and the memo-ready report from output folders.
 
 use anyhow::{bail, Context, Result};
-use ptacorr::figure::{plot_folder, ColumnWidth, FigureFormat, FigureOptions};
-use ptacorr::report::build_report_with;
+use ptacorr_present::figure::{plot_folder, ColumnWidth, FigureFormat, FigureOptions};
+use ptacorr_present::report::build_report_with;
 use std::path::{Path, PathBuf};
 
 #[derive(clap::Args)]

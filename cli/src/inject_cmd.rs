@@ -84,6 +84,11 @@ pub struct InjectArgs {
     /// Time domain: the background ladder's spacing is 1/(factor T_span) (default 1).
     #[arg(long)]
     signal_span_factor: Option<usize>,
+    /// On a release: keep its TOAs, sky positions and noise model but draw fresh noise for
+    /// every realization instead of adding the signal to its residuals (the threshold then
+    /// comes from a simulated null of the same kind).
+    #[arg(long)]
+    fresh_noise: bool,
     /// Merge these shard folders instead of running (repeat the option).
     #[arg(long)]
     merge: Vec<PathBuf>,
@@ -116,8 +121,15 @@ pub fn run(args: InjectArgs) -> Result<()> {
     let target = if is_release {
         let rel =
             read_release(&path).with_context(|| format!("reading release {}", path.display()))?;
-        Target::from_release(&rel)
+        if args.fresh_noise {
+            Target::from_release_fresh_noise(&rel, args.frequencies)
+        } else {
+            Target::from_release(&rel)
+        }
     } else {
+        if args.fresh_noise {
+            bail!("--fresh-noise applies to a release target; a scenario always draws fresh noise");
+        }
         let text = std::fs::read_to_string(&path)
             .with_context(|| format!("reading scenario {}", path.display()))?;
         let s = Scenario::parse(&text, &path)?;
@@ -174,6 +186,7 @@ pub fn run(args: InjectArgs) -> Result<()> {
 
 fn print_table(out: &Outcome) {
     let s = &out.state;
+    println!("target: {}", s.target.describe());
     println!(
         "{} injections, {} pattern, {} realizations per amplitude; detection: snr > {:.3} (false-alarm probability {})",
         s.mode.name(),

@@ -88,6 +88,8 @@ enum Command {
         /// Which value of that fit's log10 A posterior to take.
         #[arg(long, value_enum, default_value = "median", requires = "common_fit")]
         common_fit_value: common_cmd::FitValueArg,
+        #[command(flatten)]
+        draws: NmosArgs,
     },
     /// Fit a common red process (CURN, HD, monopole, dipole) and compare them by Bayes factors.
     Common(Box<common_cmd::CommonArgs>),
@@ -99,7 +101,8 @@ enum Command {
     Inject(inject_cmd::InjectArgs),
     /// False-alarm probability of the observed SNR from null trials (and the analytic null).
     Null(Box<null_cmd::NullArgs>),
-    /// Merge the shard folders of one `ptacorr null` run.
+    /// Merge the shard folders of one `ptacorr null` run or of one `correlate` run with
+    /// noise draws.
     Merge {
         #[arg(required = true)]
         dirs: Vec<PathBuf>,
@@ -132,6 +135,56 @@ pub(crate) struct AnalysisArgs {
     /// Leave the common process out of the auto-power.
     #[arg(long)]
     no_common: bool,
+}
+
+/// The noise-marginalised OS of `correlate` (docs/noise-marginalised.md).
+#[derive(clap::Args, Clone)]
+pub(crate) struct NmosArgs {
+    /// Repeat the OS over noise draws from this folder of per-pulsar chain tables (LABEL.csv,
+    /// as `ptacorr noise` writes them under chains/).
+    #[arg(long)]
+    noise_draws: Option<PathBuf>,
+    /// Also draw the common process's amplitude from this table (common-draws.csv of
+    /// `ptacorr common`).
+    #[arg(long)]
+    common_draws: Option<PathBuf>,
+    /// Number of noise draws (over all shards).
+    #[arg(long, default_value_t = ptacorr::nmos::DEFAULT_DRAWS)]
+    draws: u64,
+    /// Seed of the row picks: draw d uses (seed, d) alone.
+    #[arg(long, default_value_t = 0, allow_negative_numbers = true, value_parser = seed_arg)]
+    seed: u64,
+    /// Run only shard I of N of the draws (merge the folders with `ptacorr merge`).
+    #[arg(long)]
+    shard: Option<String>,
+}
+
+impl NmosArgs {
+    /// The settings, or None without any draw table.
+    fn settings(&self) -> ptacorr::Result<Option<ptacorr::nmos::NmosSettings>> {
+        if self.noise_draws.is_none() && self.common_draws.is_none() {
+            if self.shard.is_some() {
+                return Err(ptacorr::Error::setting(
+                    "shard",
+                    "correlate is sharded over noise draws; give --noise-draws or --common-draws",
+                ));
+            }
+            return Ok(None);
+        }
+        let shard = match &self.shard {
+            Some(s) => ptacorr::shard::Shard::parse(s)?,
+            None => ptacorr::shard::Shard::ALL,
+        };
+        let s = ptacorr::nmos::NmosSettings {
+            chains: self.noise_draws.clone(),
+            common_draws: self.common_draws.clone(),
+            draws: self.draws,
+            seed: self.seed,
+            shard,
+        };
+        s.validate()?;
+        Ok(Some(s))
+    }
 }
 
 /// A correlation pattern on the command line.
@@ -224,7 +277,9 @@ fn run(cli: Cli) -> Result<()> {
             analysis,
             common_fit,
             common_fit_value,
+            draws,
         } => {
+            let nmos = draws.settings()?;
             let mut settings = analysis.settings();
             if let Some(dir) = common_fit {
                 settings.common = CommonAutoPower::FromCommonFit(common_cmd::common_from_fit(
@@ -232,10 +287,34 @@ fn run(cli: Cli) -> Result<()> {
                     common_fit_value,
                 )?);
             }
+            settings.validate()?;
+            let Some(nmos) = nmos else {
+                let (rel, c) = correlate_release(&release, &settings)?;
+                c.write(&out, &rel, &settings)?;
+                print_summary(&rel, &c);
+                println!("wrote {}/summary.json, pairs.csv, bins.csv", out.display());
+                return Ok(());
+            };
+            // The chain tables are read and checked before any work.
+            let rel = read_release(&release)
+                .with_context(|| format!("reading release {}", release.display()))?;
+            let tables = ptacorr::nmos::read_tables(&rel, &nmos, &settings)?;
             let (rel, c) = correlate_release(&release, &settings)?;
-            c.write(&out, &rel, &settings)?;
+            let t = Instant::now();
+            let (summary, results) = ptacorr::nmos::run(&rel, &settings, &nmos, &tables)?;
+            eprintln!(
+                "{} noise draws in {:.3} s",
+                results.len(),
+                t.elapsed().as_secs_f64()
+            );
+            c.write_with(&out, &rel, &settings, Some((&summary, &results)))?;
             print_summary(&rel, &c);
-            println!("wrote {}/summary.json, pairs.csv, bins.csv", out.display());
+            print_nmos(&summary);
+            println!(
+                "wrote {}/summary.json, pairs.csv, bins.csv, {}",
+                out.display(),
+                ptacorr::nmos::DRAWS_FILE
+            );
             Ok(())
         }
         Command::Common(args) => common_cmd::run(&args),
@@ -243,7 +322,18 @@ fn run(cli: Cli) -> Result<()> {
         Command::Report(args) => figures_cmd::report(&args).map(|_| ()),
         Command::Inject(args) => inject_cmd::run(args),
         Command::Null(args) => null_cmd::run_null(*args),
-        Command::Merge { dirs, out } => null_cmd::run_merge(&dirs, &out),
+        Command::Merge { dirs, out } => {
+            // Shards of a correlate run with noise draws, or of a null run.
+            let first = ptacorr::output::check_manifest(&dirs[0])?;
+            if first.command == "correlate" {
+                let s = ptacorr::nmos::merge_shards(&dirs, &out)?;
+                print_nmos(&s);
+                println!("merged {} shards into {}", dirs.len(), out.display());
+                Ok(())
+            } else {
+                null_cmd::run_merge(&dirs, &out)
+            }
+        }
         Command::Noise(args) => noise_cmd::run(args),
         Command::MergeNoise(args) => noise_cmd::run_merge(args),
     }
@@ -328,4 +418,35 @@ pub(crate) fn print_summary(rel: &Release, c: &Correlation) {
         );
     }
     println!("  SNR is not a false-alarm probability: use `ptacorr null` for that.");
+}
+
+/// The noise-marginalised OS in a few lines.
+pub(crate) fn print_nmos(s: &ptacorr::nmos::NmosSummary) {
+    println!(
+        "  noise-marginalised over {} draws ({} pulsars drawn, {} at noise.toml{}):",
+        s.draws,
+        s.pulsars_drawn.len(),
+        s.pulsars_fixed.len(),
+        if s.common_draws.is_some() {
+            ", common amplitude drawn"
+        } else {
+            ""
+        }
+    );
+    println!(
+        "  {:<9} {:>12} {:>25} {:>7} {:>15}",
+        "pattern", "median A^2", "68% interval of A^2", "SNR", "68% of SNR"
+    );
+    for (p, x) in &s.patterns {
+        println!(
+            "  {:<9} {:>12.3e} {:>12.3e}..{:<11.3e} {:>7.2} {:>6.2}..{:<6.2}",
+            p.name(),
+            x.amplitude2.median,
+            x.amplitude2.interval_68[0],
+            x.amplitude2.interval_68[1],
+            x.snr.median,
+            x.snr.interval_68[0],
+            x.snr.interval_68[1]
+        );
+    }
 }

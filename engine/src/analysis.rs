@@ -1,16 +1,19 @@
 //! The correlation analysis of a release, end to end: reduce every pulsar, correlate every pair,
 //! fit the patterns, bin by angle, and write `summary.json`, `pairs.csv` and `bins.csv`.
 
-use crate::bins::{bin_pairs, Bin, Binning};
+use crate::bin_covariance::{bin_covariance, fit_bins, BinCovariance, BinFit, MAX_STACKED};
+use crate::bins::{bin_groups, bin_pairs, Bin, Binning};
 use crate::constants::{GAMMA_BINARIES, SECONDS_PER_YEAR};
 use crate::error::{Error, Result};
+use crate::hd_spread::{hd_spread, HdSpread, BAND_STEPS};
 use crate::noise::RedProcess;
 use crate::optimal::{
-    multiple_component, optimal_statistic, pair_correlations, MultiComponent, OsEstimate,
-    PairCorrelations,
+    multiple_component, optimal_statistic, pair_correlations, weight, MultiComponent, OsEstimate,
+    PairCorrelations, Weighted,
 };
-use crate::orf::{hellings_downs, Pattern};
+use crate::orf::{hellings_downs, pattern_matrix, Pattern};
 use crate::output::fmt_f64;
+use crate::per_frequency::{per_frequency, PerFrequency};
 use crate::reduce::{reduce_release, FrequencyGrid, Reduced};
 use crate::release::Release;
 use crate::spectrum::{template, PowerLaw};
@@ -124,6 +127,14 @@ pub struct Correlation {
     pub common: Option<PowerLaw>,
     /// Spectral index of the template.
     pub spectral_index: f64,
+    /// The Hellings-Downs OS at each frequency (per_frequency.rs); None without pairs.
+    pub per_frequency: Option<PerFrequency>,
+    /// The expected spread of the Hellings-Downs correlation at the measured amplitude
+    /// (hd_spread.rs); None without pairs.
+    pub hd_spread: Option<HdSpread>,
+    /// The covariance of the bins with the signal at the measured amplitude and the fit of the
+    /// Hellings-Downs curve to them (bin_covariance.rs), or why they were not computed.
+    pub bin_covariance: std::result::Result<(BinCovariance, BinFit), String>,
 }
 
 /// Run the correlation analysis of a release.
@@ -169,7 +180,7 @@ pub fn correlate_reduced(
 ) -> Result<Correlation> {
     let phi = template(settings.spectral_index, &grid.freqs, grid.t_span);
     let pairs = pair_correlations(&reduced, &phi)?;
-    let estimates = Pattern::ALL
+    let estimates: BTreeMap<Pattern, OsEstimate> = Pattern::ALL
         .iter()
         .map(|&p| {
             (
@@ -187,6 +198,24 @@ pub fn correlate_reduced(
         Err(e) => return Err(e),
     };
     let bins = bin_pairs(&pairs, settings.n_bins, settings.binning);
+    let extras = if pairs.is_empty() {
+        Extras {
+            per_frequency: None,
+            hd_spread: None,
+            bin_covariance: Err("no pulsar pairs".into()),
+        }
+    } else {
+        extras(
+            &reduced,
+            &grid,
+            &phi,
+            &pairs,
+            &bins,
+            estimates[&Pattern::Hd],
+            common.as_ref(),
+            settings,
+        )?
+    };
     Ok(Correlation {
         labels: reduced.iter().map(|r| r.label.clone()).collect(),
         grid,
@@ -198,6 +227,101 @@ pub fn correlate_reduced(
         bins,
         common,
         spectral_index: settings.spectral_index,
+        per_frequency: extras.per_frequency,
+        hd_spread: extras.hd_spread,
+        bin_covariance: extras.bin_covariance,
+    })
+}
+
+struct Extras {
+    per_frequency: Option<PerFrequency>,
+    hd_spread: Option<HdSpread>,
+    bin_covariance: std::result::Result<(BinCovariance, BinFit), String>,
+}
+
+/// D_c = Phi_c / Phi: the common auto-power inside the analysis covariance in units of the
+/// template (length 2K; docs/pair-covariance.md).
+pub fn common_in_template_units(
+    common: Option<&PowerLaw>,
+    spectral_index: f64,
+    grid: &FrequencyGrid,
+) -> Vec<f64> {
+    grid.freqs
+        .iter()
+        .flat_map(|&f| {
+            let r = common.map_or(0.0, |l| {
+                l.coefficient_variance(f, grid.t_span)
+                    / crate::spectrum::power_law_phi(1.0, spectral_index, f, grid.t_span)
+            });
+            [r, r]
+        })
+        .collect()
+}
+
+/// The per-frequency OS, the Hellings-Downs spread and the bin covariance with its fit, all at
+/// the measured Hellings-Downs amplitude.
+fn extras(
+    reduced: &[Reduced],
+    grid: &FrequencyGrid,
+    phi: &[f64],
+    pairs: &PairCorrelations,
+    bins: &[Bin],
+    hd: OsEstimate,
+    common: Option<&PowerLaw>,
+    settings: &CorrelateSettings,
+) -> Result<Extras> {
+    use rayon::prelude::*;
+    let w: Vec<Weighted> = reduced.par_iter().map(|r| weight(r, phi)).collect();
+    let g_pairs = pairs.pattern_values(Pattern::Hd);
+    let mut pf = per_frequency(&w, &g_pairs, &grid.freqs, phi)?;
+    let spread = hd_spread(&w, hd.amplitude2)?;
+    let n = w.len();
+    let m = 2 * grid.k();
+    if n * m <= MAX_STACKED {
+        let dirs: Vec<_> = reduced.iter().map(|r| r.direction).collect();
+        let g = ndarray::Array2::from_shape_vec((n, n), pattern_matrix(Pattern::Hd, &dirs))
+            .expect("square pattern matrix");
+        let dc = common_in_template_units(common, settings.spectral_index, grid);
+        let a2 = hd.amplitude2.max(0.0);
+        pf.covariance_signal = Some(crate::per_frequency::signal_covariance(
+            &w,
+            &g,
+            &dc,
+            a2,
+            &pf.amplitude2_sigma,
+        )?);
+        pf.signal_amplitude2 = Some(a2);
+    }
+    let bin_cov = if n * m > MAX_STACKED {
+        Err(format!(
+            "not computed: N 2K = {} exceeds {MAX_STACKED} (memory of the joint covariance)",
+            n * m
+        ))
+    } else {
+        let dirs: Vec<_> = reduced.iter().map(|r| r.direction).collect();
+        let g = ndarray::Array2::from_shape_vec((n, n), pattern_matrix(Pattern::Hd, &dirs))
+            .expect("square pattern matrix");
+        let dc = common_in_template_units(common, settings.spectral_index, grid);
+        let groups: Vec<Vec<usize>> = bin_groups(pairs, settings.n_bins, settings.binning)
+            .into_iter()
+            .map(|g| g.2)
+            .collect();
+        let bc = bin_covariance(&w, &g, &dc, hd.amplitude2, &groups)?;
+        let rho: Vec<f64> = bins.iter().map(|b| b.rho).collect();
+        let hdv: Vec<f64> = bins.iter().map(|b| b.hd).collect();
+        match fit_bins(&rho, &hdv, &bc) {
+            Ok(f) => Ok((bc, f)),
+            Err(Error::NotPositiveDefinite { .. }) => Err(
+                "not computed: the covariance of the bins is not positive definite (bins with too few pairs?)"
+                    .to_string(),
+            ),
+            Err(e) => return Err(e),
+        }
+    };
+    Ok(Extras {
+        per_frequency: Some(pf),
+        hd_spread: Some(spread),
+        bin_covariance: bin_cov,
     })
 }
 
@@ -240,9 +364,46 @@ struct Summary<'a> {
     common_auto_power: Option<PowerLaw>,
     patterns: BTreeMap<&'static str, OsEstimate>,
     multiple_component: Option<&'a MultiComponent>,
+    per_frequency: Option<PerFrequencySummary>,
+    hd_spread: Option<HdSpreadSummary>,
+    bin_fit: BinFitSummary<'a>,
     notes: &'static str,
     provenance: &'a Provenance,
+    /// The noise-marginalised OS (nmos/); kept the last field (its shard merge splices it).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    noise_marginalised: Option<&'a crate::nmos::NmosSummary>,
 }
+
+/// The per-frequency section of summary.json (the table is in per-frequency.csv).
+#[derive(Serialize)]
+struct PerFrequencySummary {
+    pattern: &'static str,
+    /// The GLS combination of the per-frequency estimates (equal to the broadband HD OS).
+    combined: OsEstimate,
+    notes: &'static str,
+}
+
+/// The Hellings-Downs spread section of summary.json (the band is in hd-spread.csv).
+#[derive(Serialize)]
+struct HdSpreadSummary {
+    #[serde(flatten)]
+    spread: HdSpread,
+    notes: &'static str,
+}
+
+/// The bin fit of summary.json, or why there is none.
+#[derive(Serialize)]
+#[serde(untagged)]
+enum BinFitSummary<'a> {
+    Fit(&'a BinFit),
+    Skipped { skipped: &'a str },
+}
+
+/// What per-frequency.csv holds.
+pub const PER_FREQUENCY_NOTES: &str = "per-frequency.csv: the Hellings-Downs optimal statistic at each analysis frequency alone (amplitude2 in units of the template's A^2; power_s2 = amplitude2 phi(f) in s^2), with its no-signal uncertainty; per-frequency-covariance.csv holds their covariance without signal; power_law_s2 is the power law at the broadband amplitude and expected_s2 the same with the leakage between frequencies; `combined` is their generalised least-squares combination, equal to the broadband statistic.";
+
+/// What hd-spread.csv holds.
+pub const HD_SPREAD_NOTES: &str = "hd-spread.csv: the Hellings-Downs curve at the measured amplitude with the expected spread of a Gaussian background around it (Allen 2023): cosmic_sigma for the average of infinitely many pulsar pairs at one separation in one sky, total_sigma for one pair with its pulsar terms; both scale as 1/sqrt(effective_modes), the effective number of independent modes of one pair correlation of this array (mean over pairs, an approximation when pulsars differ); noise is not included.";
 
 /// What every summary says about its numbers.
 pub const SUMMARY_NOTES: &str = "amplitude2 estimates A^2 of the template power law (Phi with A = 1) under the noise model given; amplitude2_sigma is the no-signal uncertainty sigma_0, which understates the scatter when a signal is present; snr = amplitude2 / amplitude2_sigma is not a false-alarm probability (see `ptacorr null`); a detection claim needs the collaboration's full analysis.";
@@ -259,8 +420,22 @@ impl Correlation {
         self.reduced.iter().map(|r| r.flops).sum()
     }
 
-    /// Write summary.json, pairs.csv and bins.csv into `dir` as one output set (with manifest.json).
+    /// Write summary.json, pairs.csv, bins.csv and (when there are pairs) per-frequency.csv,
+    /// per-frequency-covariance.csv, hd-spread.csv and bins-covariance.csv into `dir` as one
+    /// output set (with manifest.json).
     pub fn write(&self, dir: &Path, release: &Release, settings: &CorrelateSettings) -> Result<()> {
+        self.write_with(dir, release, settings, None)
+    }
+
+    /// [`Correlation::write`], with the noise-marginalised OS when given: its block closes
+    /// summary.json and its draws go to `nmos-draws.csv` (nmos/files.rs).
+    pub fn write_with(
+        &self,
+        dir: &Path,
+        release: &Release,
+        settings: &CorrelateSettings,
+        nmos: Option<(&crate::nmos::NmosSummary, &[crate::nmos::DrawResult])>,
+    ) -> Result<()> {
         let provenance = Provenance::new(release, settings);
         let summary = Summary {
             title: &release.title,
@@ -273,8 +448,22 @@ impl Correlation {
             common_auto_power: self.common,
             patterns: self.estimates.iter().map(|(p, e)| (p.name(), *e)).collect(),
             multiple_component: self.multi.as_ref(),
+            per_frequency: self.per_frequency.as_ref().map(|p| PerFrequencySummary {
+                pattern: Pattern::Hd.name(),
+                combined: p.combined,
+                notes: PER_FREQUENCY_NOTES,
+            }),
+            hd_spread: self.hd_spread.map(|s| HdSpreadSummary {
+                spread: s,
+                notes: HD_SPREAD_NOTES,
+            }),
+            bin_fit: match &self.bin_covariance {
+                Ok((_, f)) => BinFitSummary::Fit(f),
+                Err(why) => BinFitSummary::Skipped { skipped: why },
+            },
             notes: SUMMARY_NOTES,
             provenance: &provenance,
+            noise_marginalised: nmos.map(|n| n.0),
         };
         let pairs = self.pairs_csv();
         let bins = bins_csv(&self.bins);
@@ -283,6 +472,36 @@ impl Correlation {
         set.write_json("summary.json", &summary)?;
         set.write("pairs.csv", pairs.as_bytes())?;
         set.write("bins.csv", bins.as_bytes())?;
+        use crate::common::write::to_csv;
+        if let Some(pf) = &self.per_frequency {
+            let a2 = self.estimates[&Pattern::Hd].amplitude2;
+            set.write(
+                "per-frequency.csv",
+                &to_csv(&pf.rows(a2), "per-frequency.csv")?,
+            )?;
+            set.write(
+                "per-frequency-covariance.csv",
+                &to_csv(&pf.covariance_rows(), "per-frequency-covariance.csv")?,
+            )?;
+        }
+        if let Some(sp) = &self.hd_spread {
+            set.write(
+                "hd-spread.csv",
+                &to_csv(&sp.rows(BAND_STEPS), "hd-spread.csv")?,
+            )?;
+        }
+        if let Ok((bc, _)) = &self.bin_covariance {
+            set.write(
+                "bins-covariance.csv",
+                &to_csv(&bc.rows(), "bins-covariance.csv")?,
+            )?;
+        }
+        if let Some((_, draws)) = nmos {
+            set.write(
+                crate::nmos::DRAWS_FILE,
+                crate::nmos::files::draws_csv(draws)?.as_bytes(),
+            )?;
+        }
         set.commit().map(|_| ())
     }
 

@@ -1,6 +1,8 @@
 //! Angular binning of pair correlations for the angular-correlation figure: inverse-variance
 //! weighted means of rho in bins of separation (Chamberlin et al. 2015). Bins are correlated
-//! once a signal is present (Allen & Romano 2023), so they are for display, not for fitting.
+//! once a signal is present (Allen & Romano 2023): their `sigma` is the independent-pair error
+//! bar; the full covariance and the fit of the Hellings-Downs curve to the bins are in
+//! bin_covariance.rs.
 
 use crate::optimal::PairCorrelations;
 use crate::orf::hellings_downs;
@@ -34,6 +36,38 @@ pub struct Bin {
 
 /// Bin the pairs into `n_bins` bins.
 pub fn bin_pairs(pairs: &PairCorrelations, n_bins: usize, binning: Binning) -> Vec<Bin> {
+    let angles: Vec<f64> = pairs.angle.iter().map(|a| a.to_degrees()).collect();
+    bin_groups(pairs, n_bins, binning)
+        .into_iter()
+        .map(|(lo, hi, idx)| {
+            let (mut sw, mut swr, mut swa, mut swg) = (0.0, 0.0, 0.0, 0.0);
+            for &i in &idx {
+                let w = 1.0 / (pairs.sigma[i] * pairs.sigma[i]);
+                sw += w;
+                swr += w * pairs.rho[i];
+                swa += w * angles[i];
+                swg += w * hellings_downs(pairs.cos_angle[i]);
+            }
+            Bin {
+                angle_lo_deg: lo,
+                angle_hi_deg: hi,
+                angle_mean_deg: swa / sw,
+                n_pairs: idx.len(),
+                rho: swr / sw,
+                sigma: sw.powf(-0.5),
+                hd: swg / sw,
+            }
+        })
+        .collect()
+}
+
+/// The bins of [`bin_pairs`] as (lower edge, upper edge, indices of the bin's pairs), for the
+/// covariance of the binned correlations (bin_covariance.rs).
+pub fn bin_groups(
+    pairs: &PairCorrelations,
+    n_bins: usize,
+    binning: Binning,
+) -> Vec<(f64, f64, Vec<usize>)> {
     let n = pairs.len();
     if n == 0 || n_bins == 0 {
         return Vec::new();
@@ -77,27 +111,6 @@ pub fn bin_pairs(pairs: &PairCorrelations, n_bins: usize, binning: Binning) -> V
         }
     };
     groups
-        .into_iter()
-        .map(|(lo, hi, idx)| {
-            let (mut sw, mut swr, mut swa, mut swg) = (0.0, 0.0, 0.0, 0.0);
-            for &i in &idx {
-                let w = 1.0 / (pairs.sigma[i] * pairs.sigma[i]);
-                sw += w;
-                swr += w * pairs.rho[i];
-                swa += w * angles[i];
-                swg += w * hellings_downs(pairs.cos_angle[i]);
-            }
-            Bin {
-                angle_lo_deg: lo,
-                angle_hi_deg: hi,
-                angle_mean_deg: swa / sw,
-                n_pairs: idx.len(),
-                rho: swr / sw,
-                sigma: sw.powf(-0.5),
-                hd: swg / sw,
-            }
-        })
-        .collect()
 }
 
 fn midpoint(angles: &[f64], order: &[usize], k: usize) -> f64 {

@@ -136,9 +136,32 @@ impl PulsarModel {
         grid: &FrequencyGrid,
         auto: AutoPower,
     ) -> Result<Self> {
+        let basis = PulsarBasis::new(p, noise, grid, auto)?;
+        Self::build_on(p, noise, grid, auto, &basis)
+    }
+
+    /// [`PulsarModel::build`] on a basis computed before (the same bytes as `build`): the
+    /// noise-marginalised OS builds one model per draw of the noise parameters and reuses
+    /// the basis of every pulsar. `noise` must have the processes `basis` was made for.
+    pub fn build_on(
+        p: &Pulsar,
+        noise: &PulsarNoise,
+        grid: &FrequencyGrid,
+        auto: AutoPower,
+        basis: &PulsarBasis,
+    ) -> Result<Self> {
+        if !basis.fits(noise, grid, auto) {
+            return Err(Error::setting(
+                "noise model",
+                format!(
+                    "pulsar {}: the noise model has other processes or frequency counts than the basis it is built on",
+                    p.label
+                ),
+            ));
+        }
         let n = p.n_toa();
         let k = grid.k();
-        let t = grid.seconds(&p.mjd);
+        let t = &basis.t;
 
         // White noise D_ii = (EFAC sigma_i)^2 + EQUAD^2 per backend.
         let whites: Vec<_> = p.backends.iter().map(|b| noise.white_for(b)).collect();
@@ -151,27 +174,17 @@ impl PulsarModel {
             .collect();
 
         // Frequencies needed by any block; one Fourier basis serves them all.
-        let k_common = if auto.common.is_some() { k } else { 0 };
-        let k_red = noise.red.map_or(0, |r| r.n_frequencies.unwrap_or(k));
+        let (k_common, k_red, k_dm) = (basis.k_common, basis.k_red, basis.k_dm);
         let k_r = k_common.max(k_red);
-        let k_dm = noise.dm.map_or(0, |d| d.n_frequencies.unwrap_or(k));
         let k_f = k.max(k_r);
-        let k_all = k_f.max(k_dm);
-        let ladder = grid.ladder(k_all);
+        let ladder = &basis.ladder;
 
         // The distinct columns U = [M | Fourier (k_f) | chromatic Fourier (k_dm)], whitened,
         // written row by row in one pass.
-        let m = timing_model(p, &t)?;
-        let n_m = m.ncols();
+        let n_m = basis.m.ncols();
         let (c_four, c_dm) = (n_m, n_m + 2 * k_f);
         let n_cols = c_dm + 2 * k_dm;
-        let dm_scale = if k_dm > 0 {
-            chromatic_scale(&p.freq_mhz)
-        } else {
-            Vec::new()
-        };
-        let wa = basis_columns(&m, &t, &ladder, k_f, k_dm, &dm_scale, &sqrt_dinv);
-        drop(m);
+        let wa = basis.whitened(&sqrt_dinv);
 
         // T's columns in U and the prior inverses of T (0 for the timing model's flat prior).
         let mut t_cols: Vec<usize> = (0..n_m).collect();
@@ -202,7 +215,7 @@ impl PulsarModel {
         // ECORR epochs and their Sherman-Morrison terms; V's rows carry beta^(1/2).
         let use_ecorr: Vec<bool> = whites.iter().map(|w| w.ecorr().is_some()).collect();
         let epochs: Vec<(Vec<usize>, f64)> = if use_ecorr.iter().any(|&u| u) {
-            ecorr_epochs(&t, &p.backend, &use_ecorr, ECORR_EPOCH_GAP_S)
+            ecorr_epochs(t, &p.backend, &use_ecorr, ECORR_EPOCH_GAP_S)
                 .into_iter()
                 .map(|(b, idx)| {
                     let c2 = whites[b].ecorr().expect("ecorr backend").powi(2);
@@ -299,6 +312,117 @@ impl PulsarModel {
     /// updates U^T D^-1 U (n c (c + 1)) and V^T V, V itself, and the small dense steps.
     pub fn flops(&self) -> f64 {
         self.flops
+    }
+}
+
+/// The parts of one pulsar's model that depend only on its TOAs and on which processes it has
+/// (not on the noise parameters' values): times, timing model, chromatic scale and the Fourier
+/// table sin/cos(2 pi f_j t_i) over j = 1..max(K, K_red, K_dm). Computed once per pulsar and
+/// reused for every draw of the noise parameters ([`PulsarModel::build_on`]); it holds
+/// 8 n (n_m + 2 max(K, K_red, K_dm) + 2) bytes.
+#[derive(Clone, Debug)]
+pub struct PulsarBasis {
+    t: Vec<f64>,
+    m: Array2<f64>,
+    dm_scale: Vec<f64>,
+    /// Row i: [sin, cos] of 2 pi f_j t_i for each ladder frequency (n x 2 k_all).
+    trig: Array2<f64>,
+    ladder: Vec<f64>,
+    k_common: usize,
+    k_red: usize,
+    k_dm: usize,
+    /// Fourier columns of U: max(K, K_common, K_red).
+    k_f: usize,
+}
+
+impl PulsarBasis {
+    /// The basis of pulsar `p` for a noise model with `noise`'s processes.
+    pub fn new(
+        p: &Pulsar,
+        noise: &PulsarNoise,
+        grid: &FrequencyGrid,
+        auto: AutoPower,
+    ) -> Result<Self> {
+        let k = grid.k();
+        let t = grid.seconds(&p.mjd);
+        let (k_common, k_red, k_dm) = Self::counts(noise, grid, auto);
+        let k_f = k.max(k_common.max(k_red));
+        let k_all = k_f.max(k_dm);
+        let ladder = grid.ladder(k_all);
+        let m = timing_model(p, &t)?;
+        let dm_scale = if k_dm > 0 {
+            chromatic_scale(&p.freq_mhz)
+        } else {
+            Vec::new()
+        };
+        let mut trig = Array2::<f64>::zeros((t.len(), 2 * k_all));
+        if k_all > 0 {
+            for (i, mut row) in trig.rows_mut().into_iter().enumerate() {
+                fourier_row_ladder(
+                    t[i],
+                    ladder[0],
+                    row.as_slice_mut().expect("standard layout"),
+                );
+            }
+        }
+        Ok(PulsarBasis {
+            t,
+            m,
+            dm_scale,
+            trig,
+            ladder,
+            k_common,
+            k_red,
+            k_dm,
+            k_f,
+        })
+    }
+
+    /// Frequencies of the common, red and DM blocks (0 when absent).
+    fn counts(noise: &PulsarNoise, grid: &FrequencyGrid, auto: AutoPower) -> (usize, usize, usize) {
+        let k = grid.k();
+        let k_common = if auto.common.is_some() { k } else { 0 };
+        let k_red = noise.red.map_or(0, |r| r.n_frequencies.unwrap_or(k));
+        let k_dm = noise.dm.map_or(0, |d| d.n_frequencies.unwrap_or(k));
+        (k_common, k_red, k_dm)
+    }
+
+    /// Whether a model with `noise`'s processes has this basis.
+    pub fn fits(&self, noise: &PulsarNoise, grid: &FrequencyGrid, auto: AutoPower) -> bool {
+        let (k_common, k_red, k_dm) = Self::counts(noise, grid, auto);
+        (k_common, k_red, k_dm) == (self.k_common, self.k_red, self.k_dm)
+            && grid.k().max(k_common.max(k_red)) == self.k_f
+            && self.ladder == grid.ladder(self.ladder.len())
+    }
+
+    /// D^-1/2 U: the distinct columns [M | Fourier (k_f) | chromatic Fourier (k_dm)], row i
+    /// scaled by `w[i]` (the same arithmetic as [`basis_columns`]).
+    fn whitened(&self, w: &[f64]) -> Array2<f64> {
+        let n = self.t.len();
+        let n_m = self.m.ncols();
+        let k_f = self.k_f;
+        let (c_four, c_dm) = (n_m, n_m + 2 * k_f);
+        let n_cols = c_dm + 2 * self.k_dm;
+        let mut wa = Array2::<f64>::zeros((n, n_cols));
+        for (i, mut row) in wa.rows_mut().into_iter().enumerate() {
+            let row = row.as_slice_mut().expect("standard layout");
+            let trig = self.trig.row(i);
+            let trig = trig.as_slice().expect("standard layout");
+            let w = w[i];
+            for (dst, &src) in row[..n_m].iter_mut().zip(self.m.row(i)) {
+                *dst = w * src;
+            }
+            for (dst, &src) in row[c_four..c_dm].iter_mut().zip(trig) {
+                *dst = w * src;
+            }
+            if self.k_dm > 0 {
+                let wd = w * self.dm_scale[i];
+                for (dst, &src) in row[c_dm..].iter_mut().zip(trig) {
+                    *dst = wd * src;
+                }
+            }
+        }
+        wa
     }
 }
 
@@ -401,7 +525,24 @@ pub fn reduce_pulsar(
             what: format!("the reduction of pulsar {}: {why}", p.label),
         });
     }
-    let model = PulsarModel::build(p, noise, grid, auto)?;
+    let basis = PulsarBasis::new(p, noise, grid, auto)?;
+    reduce_pulsar_on(p, noise, grid, auto, &basis)
+}
+
+/// [`reduce_pulsar`] on a basis computed before (the same bytes).
+pub fn reduce_pulsar_on(
+    p: &Pulsar,
+    noise: &PulsarNoise,
+    grid: &FrequencyGrid,
+    auto: AutoPower,
+    basis: &PulsarBasis,
+) -> Result<Reduced> {
+    if let Some(why) = overflow_row(p, noise) {
+        return Err(Error::NonFinite {
+            what: format!("the reduction of pulsar {}: {why}", p.label),
+        });
+    }
+    let model = PulsarModel::build_on(p, noise, grid, auto, basis)?;
     let x = model.reduce(&p.residual);
     let flops = model.flops() + 2.0 * p.n_toa() as f64 * model.wa.ncols() as f64;
     if x.iter().chain(model.z.iter()).any(|v| !v.is_finite()) {

@@ -19,6 +19,8 @@ pub enum Purpose {
     TimeDomainNull = 8,
     NoiseStart = 9,
     NoiseChain = 10,
+    /// Row picks of the noise-marginalised OS (nmos/).
+    NoiseDraws = 13,
     /// Posterior draws of the common process (`ptacorr common`, common-draws.csv).
     CommonDraw = 21,
     /// Chains of the common free spectrum.

@@ -133,7 +133,7 @@ const KNOWN: &[(&str, &str, &str, &str)] = &[
     ),
     (
         "writer",
-        "engine/src/figure/mod.rs",
+        "present/src/figure/mod.rs",
         "std::fs::File::create(&tmp)",
         "the figures' second atomic writer (issue 10 point 2: one writer)",
     ),

@@ -133,7 +133,8 @@ fn interp(t: &Tabulated, x: f64) -> (f64, f64) {
     (lerp(&t.density), lerp(&t.cdf))
 }
 
-fn to_csv<T: Serialize>(rows: &[T], what: &str) -> Result<Vec<u8>> {
+/// CSV bytes of serde rows (header from the row type), through the `csv` crate.
+pub(crate) fn to_csv<T: Serialize>(rows: &[T], what: &str) -> Result<Vec<u8>> {
     let mut w = csv::Writer::from_writer(Vec::new());
     for r in rows {
         w.serialize(r).map_err(|e| Error::NonFinite {

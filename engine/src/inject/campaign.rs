@@ -159,7 +159,7 @@ impl Campaign {
                 }
                 Some(d)
             }
-            TargetKind::Scenario => None,
+            TargetKind::Scenario | TargetKind::ReleaseFreshNoise => None,
         };
         let dirs: Vec<_> = target.pulsars.iter().map(|p| p.direction).collect();
         let g = Array2::from_shape_vec((n, n), pattern_matrix(settings.pattern, &dirs))
@@ -438,6 +438,33 @@ impl Campaign {
             .collect()
     }
 
+    /// SNRs of time-domain simulated null trials: fresh noise residuals of the target
+    /// (timing model fitted out), reduced and analysed as at A = 0; trial t draws from
+    /// `simulate_residuals(.., seed, Injection, NULL_STREAM_BASE + t)`.
+    pub fn simulated_null_time_domain(&self, trials: usize) -> Result<Vec<f64>> {
+        (0..trials as u64)
+            .into_par_iter()
+            .map(|t| {
+                let r = simulate_residuals(
+                    &self.target.pulsars,
+                    self.grid.t0_mjd,
+                    self.grid.t_span,
+                    Ingredients {
+                        noise: &self.target.noise,
+                        background: None,
+                        simulation: self.target.simulation,
+                        include_noise: true,
+                    },
+                    self.settings.seed,
+                    Purpose::Injection,
+                    NULL_STREAM_BASE + t,
+                )?;
+                let x = self.reduce_weighted(&r, 1.0);
+                Ok(self.estimate(&self.null_analysis, &x).1)
+            })
+            .collect()
+    }
+
     /// The variance polynomial of each amplitude's analysis.
     pub fn polynomials(&self) -> Vec<VariancePolynomial> {
         self.analyses.iter().map(|a| a.poly).collect()
@@ -481,6 +508,7 @@ pub fn assumptions(c: &Campaign, null_source: &str) -> String {
     };
     let target = match c.target.kind {
         TargetKind::Scenario => "scenario target: one laid-out array, fresh noise every realization from the true noise model; the reference for bias and coverage is A^2".to_string(),
+        TargetKind::ReleaseFreshNoise => "release geometry with fresh noise: the release's TOAs, sky positions, uncertainties, backends and timing model with fresh noise every realization from its noise model (noise.toml without [common]); its residuals are not used; the reference for bias and coverage is A^2; the detection probability is that of this array under its noise model".to_string(),
         TargetKind::Release => "release target: the signal is added to the release's actual residuals (one fixed noise realization); the reference for bias and coverage is A^2 plus the data's own A2_hat under the same analysis (campaign.json baseline_amplitude2), and coverage is conditional on that noise realization".to_string(),
     };
     format!(
@@ -500,6 +528,19 @@ pub fn run_campaign(target: Target, settings: InjectSettings) -> Result<Outcome>
             read_null_trials(d)?,
             format!("the null trials in {}", d.join("trials.csv").display()),
         ),
+        // A fresh-noise campaign on a release's geometry takes its threshold from a null of
+        // the same kind as its realizations (time-domain noise for time-domain injections).
+        None if campaign.target.kind == TargetKind::ReleaseFreshNoise
+            && campaign.settings.mode == Mode::TimeDomain =>
+        {
+            (
+                campaign.simulated_null_time_domain(campaign.settings.null_trials)?,
+                format!(
+                    "{} time-domain simulated null trials of the same array (fresh noise residuals from its noise model, timing model fitted out, analysed as at A = 0)",
+                    campaign.settings.null_trials
+                ),
+            )
+        }
         None => (
             campaign.simulated_null(campaign.settings.null_trials),
             format!(

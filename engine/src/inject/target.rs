@@ -14,6 +14,21 @@ pub enum TargetKind {
     Release,
     /// A scenario: fresh noise every realization on one laid-out array.
     Scenario,
+    /// A release's own geometry (TOAs, sky positions, uncertainties, backends, design
+    /// matrices) and noise model, with fresh noise drawn from that model every realization;
+    /// its residuals are not used.
+    ReleaseFreshNoise,
+}
+
+impl TargetKind {
+    /// The plain name shown in outputs and captions.
+    pub fn describe(self) -> &'static str {
+        match self {
+            TargetKind::Release => "signal added to the release's own residuals",
+            TargetKind::Scenario => "scenario array with fresh noise",
+            TargetKind::ReleaseFreshNoise => "release geometry with fresh noise",
+        }
+    }
 }
 
 /// The array an injection campaign works on.
@@ -39,6 +54,32 @@ impl Target {
             pulsars: r.pulsars.clone(),
             noise: r.noise.clone(),
             simulation: SimulationSpec::default(),
+        }
+    }
+
+    /// A release's geometry and noise model as the target, with fresh noise every
+    /// realization (its residuals are not used); the `[common]` process of noise.toml, if
+    /// any, is dropped (the injection replaces it), as for a scenario. Time-domain red and DM
+    /// noise are simulated on the model's own frequencies j / T_span, j = 1..max(K, the
+    /// largest `n_frequencies` of the model), K being the analysis's `n_frequencies`.
+    pub fn from_release_fresh_noise(r: &Release, n_frequencies: usize) -> Target {
+        let mut noise = r.noise.clone();
+        noise.common = None;
+        let k = noise
+            .pulsars
+            .values()
+            .flat_map(|p| [p.red, p.dm])
+            .flatten()
+            .filter_map(|q| q.n_frequencies)
+            .fold(n_frequencies, usize::max);
+        Target {
+            kind: TargetKind::ReleaseFreshNoise,
+            noise,
+            simulation: SimulationSpec {
+                n_frequencies: k,
+                span_factor: 1,
+            },
+            ..Target::from_release(r)
         }
     }
 

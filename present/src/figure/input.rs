@@ -10,6 +10,10 @@ use super::FigureError;
 pub const SUMMARY_JSON: &str = "summary.json";
 pub const BINS_CSV: &str = "bins.csv";
 pub const PAIRS_CSV: &str = "pairs.csv";
+/// Optional files of a correlate folder (absent in folders written before they existed).
+pub const HD_SPREAD_CSV: &str = "hd-spread.csv";
+pub const BINS_COVARIANCE_CSV: &str = "bins-covariance.csv";
+pub const PER_FREQUENCY_CSV: &str = "per-frequency.csv";
 pub const NULL_JSON: &str = "null.json";
 pub const TRIALS_CSV: &str = "trials.csv";
 pub const RECOVERY_JSON: &str = "recovery.json";
@@ -243,7 +247,19 @@ pub struct Summary {
     /// Fits in display order: hd, monopole, dipole, then any other pattern by name.
     pub patterns: Vec<PatternFit>,
     pub multiple_component: Option<MultiFit>,
+    /// The fit of the HD curve to the bins with their full covariance (`bin_fit`), if any.
+    pub bin_fit: Option<BinFitRead>,
     pub provenance: Provenance,
+}
+
+/// `bin_fit` of a correlate summary.
+#[derive(Clone, Debug, PartialEq)]
+pub struct BinFitRead {
+    pub amplitude2: f64,
+    pub amplitude2_sigma: f64,
+    pub chi2: f64,
+    pub degrees_of_freedom: u64,
+    pub p_value: Option<f64>,
 }
 
 impl Summary {
@@ -355,6 +371,16 @@ fn load_summary(path: &Path) -> Result<Summary, FigureError> {
         frequencies_hz: doc.f64_vec("frequencies_hz")?,
         patterns,
         multiple_component,
+        bin_fit: match doc.opt("bin_fit.chi2") {
+            None => None,
+            Some(_) => Some(BinFitRead {
+                amplitude2: doc.f64("bin_fit.amplitude2")?,
+                amplitude2_sigma: doc.f64("bin_fit.amplitude2_sigma")?,
+                chi2: doc.f64("bin_fit.chi2")?,
+                degrees_of_freedom: doc.u64("bin_fit.degrees_of_freedom")?,
+                p_value: doc.opt_f64("bin_fit.p_value")?,
+            }),
+        },
         provenance,
     })
 }
@@ -512,6 +538,27 @@ pub struct Pair {
     pub hd: f64,
 }
 
+/// One row of hd-spread.csv.
+#[derive(Clone, Debug, PartialEq)]
+pub struct SpreadRow {
+    pub angle_deg: f64,
+    pub hd: f64,
+    pub cosmic_sigma: f64,
+    pub total_sigma: f64,
+}
+
+/// One row of per-frequency.csv.
+#[derive(Clone, Debug, PartialEq)]
+pub struct PerFrequencyRead {
+    pub index: u64,
+    pub frequency_hz: f64,
+    pub amplitude2: f64,
+    pub amplitude2_sigma: f64,
+    pub amplitude2_sigma_signal: Option<f64>,
+    pub power_s2: f64,
+    pub expected_s2: f64,
+}
+
 /// Everything in a correlate folder.
 #[derive(Clone, Debug, PartialEq)]
 pub struct CorrelateData {
@@ -519,6 +566,105 @@ pub struct CorrelateData {
     pub summary: Summary,
     pub bins: Vec<Bin>,
     pub pairs: Vec<Pair>,
+    /// hd-spread.csv (empty when the folder has none).
+    pub spread: Vec<SpreadRow>,
+    /// The full-covariance error bar of each bin, from bins-covariance.csv, when present.
+    pub bin_sigma_full: Option<Vec<f64>>,
+    /// per-frequency.csv (empty when the folder has none).
+    pub per_frequency: Vec<PerFrequencyRead>,
+}
+
+fn load_spread(dir: &Path) -> Result<Vec<SpreadRow>, FigureError> {
+    let path = dir.join(HD_SPREAD_CSV);
+    if !path.is_file() {
+        return Ok(Vec::new());
+    }
+    let t = Table::read(&path, &["angle_deg", "hd", "cosmic_sigma", "total_sigma"])?;
+    t.rows
+        .iter()
+        .map(|r| {
+            Ok(SpreadRow {
+                angle_deg: t.angle(r, "angle_deg")?,
+                hd: t.f64(r, "hd", true)?,
+                cosmic_sigma: t.nonneg(r, "cosmic_sigma")?,
+                total_sigma: t.nonneg(r, "total_sigma")?,
+            })
+        })
+        .collect()
+}
+
+fn load_bin_sigma(dir: &Path, n_bins: usize) -> Result<Option<Vec<f64>>, FigureError> {
+    let path = dir.join(BINS_COVARIANCE_CSV);
+    if !path.is_file() {
+        return Ok(None);
+    }
+    let t = Table::read(&path, &["bin_a", "bin_b", "covariance"])?;
+    let mut sig = vec![None; n_bins];
+    for r in &t.rows {
+        let (a, b) = (t.u64(r, "bin_a")?, t.u64(r, "bin_b")?);
+        let line = r.position().map_or(0, |p| p.line());
+        if a == 0 || a as usize > n_bins || b == 0 || b as usize > n_bins {
+            return Err(t.bad(
+                line,
+                "bin_a",
+                format!("bins run from 1 to {n_bins} (bins.csv)"),
+            ));
+        }
+        if a == b {
+            sig[a as usize - 1] = Some(t.nonneg(r, "covariance")?.sqrt());
+        }
+    }
+    sig.into_iter()
+        .enumerate()
+        .map(|(i, s)| {
+            s.ok_or_else(|| {
+                t.bad(
+                    0,
+                    "bin_a",
+                    format!("no variance for bin {} (row bin_a = bin_b missing)", i + 1),
+                )
+            })
+        })
+        .collect::<Result<Vec<f64>, _>>()
+        .map(Some)
+}
+
+fn load_per_frequency(dir: &Path) -> Result<Vec<PerFrequencyRead>, FigureError> {
+    let path = dir.join(PER_FREQUENCY_CSV);
+    if !path.is_file() {
+        return Ok(Vec::new());
+    }
+    let t = Table::read(
+        &path,
+        &[
+            "index",
+            "frequency_hz",
+            "amplitude2",
+            "amplitude2_sigma",
+            "amplitude2_sigma_signal",
+            "power_s2",
+            "expected_s2",
+        ],
+    )?;
+    t.rows
+        .iter()
+        .map(|r| {
+            let (sig, _) = t.cell(r, "amplitude2_sigma_signal")?;
+            Ok(PerFrequencyRead {
+                index: t.u64(r, "index")?,
+                frequency_hz: t.nonneg(r, "frequency_hz")?,
+                amplitude2: t.f64(r, "amplitude2", true)?,
+                amplitude2_sigma: t.nonneg(r, "amplitude2_sigma")?,
+                amplitude2_sigma_signal: if sig.is_empty() {
+                    None
+                } else {
+                    Some(t.nonneg(r, "amplitude2_sigma_signal")?)
+                },
+                power_s2: t.f64(r, "power_s2", true)?,
+                expected_s2: t.f64(r, "expected_s2", true)?,
+            })
+        })
+        .collect()
 }
 
 impl CorrelateData {
@@ -569,11 +715,15 @@ impl CorrelateData {
                 hd: t.f64(r, "hd", true)?,
             });
         }
+        let bin_sigma_full = load_bin_sigma(dir, bins.len())?;
         Ok(Self {
             dir: dir.to_path_buf(),
             summary,
             bins,
             pairs,
+            spread: load_spread(dir)?,
+            bin_sigma_full,
+            per_frequency: load_per_frequency(dir)?,
         })
     }
 }
@@ -716,7 +866,7 @@ impl NullData {
 }
 
 /// One row of recovery.csv: the same type the injection campaign writes.
-pub use crate::inject::RecoveryRow;
+pub use ptacorr::inject::RecoveryRow;
 
 /// Everything in an inject folder.
 #[derive(Clone, Debug, PartialEq)]

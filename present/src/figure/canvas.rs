@@ -353,6 +353,24 @@ impl Svg {
         );
     }
 
+    /// A filled closed polygon without outline (shaded bands).
+    pub(crate) fn area(&mut self, pts: &[(f64, f64)], fill: &str, opacity: f64, class: &str) {
+        if pts.len() < 3 {
+            return;
+        }
+        let mut d = String::new();
+        for (i, (x, y)) in pts.iter().enumerate() {
+            d.push(if i == 0 { 'M' } else { 'L' });
+            let _ = write!(d, "{} {}", n(*x), n(*y));
+        }
+        d.push('Z');
+        let _ = writeln!(
+            self.body,
+            "<path class=\"{class}\" d=\"{d}\" fill=\"{fill}\" fill-opacity=\"{}\" stroke=\"none\"/>",
+            n(opacity)
+        );
+    }
+
     /// A vertical error bar from y1 to y2 at x with end caps of half-width `cap`.
     pub(crate) fn error_bar(
         &mut self,

@@ -460,6 +460,52 @@ fn correlate_section(b: &mut Vec<Block>, label: &str, d: &CorrelateData) {
             rows,
         }));
     }
+    if let Some(f) = &s.bin_fit {
+        let p = f
+            .p_value
+            .map(|p| format!(", p = {}", format::general(p, 2, Style::Text)))
+            .unwrap_or_default();
+        b.push(Block::Para(vec![t(format!(
+            "Hellings-Downs curve fitted to the {} bins with their full covariance (signal at the measured amplitude): A² = {}, chi-square {} for {} degrees of freedom{p}. The p-value assumes Gaussian bins, the noise model and the template spectrum; it checks the pattern, it is not a detection statistic.",
+            d.bins.len(),
+            format::plus_minus(f.amplitude2, f.amplitude2_sigma, 3, Style::Text),
+            format::fixed(f.chi2, 2, Style::Text),
+            f.degrees_of_freedom
+        ))]));
+    }
+    if !d.per_frequency.is_empty() {
+        let rows = d
+            .per_frequency
+            .iter()
+            .map(|r| {
+                vec![
+                    num_int(r.index),
+                    Cell::Text(format::nanohertz(r.frequency_hz, Style::Text)),
+                    num_sci(r.amplitude2, 3),
+                    num_sci(r.amplitude2_sigma, 3),
+                    opt_cell(r.amplitude2_sigma_signal, |v| num_sci(v, 3)),
+                    num_sci(r.power_s2, 3),
+                    num_sci(r.expected_s2, 3),
+                ]
+            })
+            .collect();
+        b.push(Block::Table(Table {
+            caption: format!(
+                "Hellings-Downs statistic at each frequency alone ({label}): A² estimate, its sigma without signal and with the signal at the measured amplitude, the measured power (s²) and the power-law prediction at the broadband amplitude with leakage between frequencies."
+            ),
+            header: vec![
+                ("k".into(), "$k$".into()),
+                ("frequency".into(), "frequency".into()),
+                ("A² estimate".into(), "$\\hat{A}^2_k$".into()),
+                ("sigma (no signal)".into(), "$\\sigma_0$".into()),
+                ("sigma (signal)".into(), "$\\sigma$".into()),
+                ("power [s²]".into(), "power [s$^2$]".into()),
+                ("power law [s²]".into(), "power law [s$^2$]".into()),
+            ],
+            right: vec![true, true, true, true, true, true, true],
+            rows,
+        }));
+    }
 }
 
 fn null_section(b: &mut Vec<Block>, label: &str, d: &NullData) {

@@ -20,6 +20,7 @@ pub(crate) mod format;
 mod input;
 mod null;
 mod recovery;
+mod spectrum;
 
 use std::io::Write as _;
 use std::path::{Path, PathBuf};
@@ -196,12 +197,22 @@ pub(crate) fn draw_kind(
     Ok(match kind {
         FolderKind::Correlate => {
             let data = CorrelateData::load(dir)?;
-            vec![angular::draw(
+            let mut v = vec![angular::draw(
                 &data,
                 opts,
                 &format!("{}{stem_suffix}", angular::STEM),
                 &source,
-            )?]
+            )?];
+            // The per-frequency figure, when the folder has per-frequency.csv.
+            if !data.per_frequency.is_empty() {
+                v.push(spectrum::draw(
+                    &data,
+                    opts,
+                    &format!("{}{stem_suffix}", spectrum::STEM),
+                    &source,
+                )?);
+            }
+            v
         }
         FolderKind::Null => {
             let data = NullData::load(dir)?;

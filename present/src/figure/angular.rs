@@ -1,7 +1,10 @@
 //! Figure 1: the angular correlation. Binned cross-correlations with 1σ error bars against
 //! angular separation, the Hellings-Downs curve scaled by its fitted amplitude, the monopole
 //! and dipole curves scaled by theirs, a zero line and, optionally, every pair as a faint
-//! point behind the bins.
+//! point behind the bins. When the folder has them: the expected spread of a Gaussian
+//! background around the Hellings-Downs curve as shaded bands (hd-spread.csv; cosmic and total
+//! variance, Allen 2023, engine/src/hd_spread.rs) and each bin's error bar from the full
+//! covariance of the bins with the signal (bins-covariance.csv, engine/src/bin_covariance.rs).
 
 use serde::Serialize;
 
@@ -42,6 +45,17 @@ struct SideBin {
     /// Plotted value and error bar half-length (rho and sigma divided by `y_divisor`).
     y: f64,
     y_err: f64,
+    /// The full-covariance error bar (plotted units), when the folder has bins-covariance.csv.
+    y_err_full: Option<f64>,
+}
+
+#[derive(Serialize)]
+struct SideBand {
+    angle_deg: Vec<f64>,
+    /// A2 G(zeta) and the cosmic and total standard deviations, in plotted units.
+    y: Vec<f64>,
+    cosmic: Vec<f64>,
+    total: Vec<f64>,
 }
 
 #[derive(Serialize)]
@@ -65,6 +79,7 @@ struct Sidecar {
     y_axis: [f64; 2],
     bins: Vec<SideBin>,
     curves: Vec<SideCurve>,
+    band: Option<SideBand>,
     pairs_shown: bool,
     pairs_in_file: usize,
     pairs_outside_axes: usize,
@@ -113,6 +128,11 @@ const BIN_MARKER: MarkerStyle = MarkerStyle {
     stroke: "#FFFFFF",
 };
 
+/// The full-covariance error bar: wide, grey, drawn behind the independent-pair bar.
+const FULL_BAR: Stroke = Stroke::new(PAIR_GREY, 2.2, LineStyle::Solid);
+const COSMIC_OPACITY: f64 = 0.35;
+const TOTAL_OPACITY: f64 = 0.13;
+
 fn quantile(sorted: &[f64], q: f64) -> f64 {
     let i = ((sorted.len() - 1) as f64 * q).round() as usize;
     sorted[i.min(sorted.len() - 1)]
@@ -149,7 +169,8 @@ pub(crate) fn draw(
     let bins: Vec<SideBin> = data
         .bins
         .iter()
-        .map(|b| SideBin {
+        .enumerate()
+        .map(|(i, b)| SideBin {
             angle_lo_deg: b.angle_lo_deg,
             angle_hi_deg: b.angle_hi_deg,
             angle_mean_deg: b.angle_mean_deg,
@@ -159,8 +180,15 @@ pub(crate) fn draw(
             hd: b.hd,
             y: b.rho / div,
             y_err: b.sigma / div,
+            y_err_full: data.bin_sigma_full.as_ref().map(|f| f[i] / div),
         })
         .collect();
+    let band = (!data.spread.is_empty()).then(|| SideBand {
+        angle_deg: data.spread.iter().map(|r| r.angle_deg).collect(),
+        y: data.spread.iter().map(|r| r.hd / div).collect(),
+        cosmic: data.spread.iter().map(|r| r.cosmic_sigma / div).collect(),
+        total: data.spread.iter().map(|r| r.total_sigma / div).collect(),
+    });
     let n_steps = (180.0 / CURVE_STEP_DEG).round() as usize;
     let angles: Vec<f64> = (0..=n_steps).map(|i| i as f64 * CURVE_STEP_DEG).collect();
     let mut curves = Vec::new();
@@ -186,8 +214,15 @@ pub(crate) fn draw(
     let mut lo: f64 = 0.0;
     let mut hi: f64 = 0.0;
     for b in &bins {
-        lo = lo.min(b.y - b.y_err);
-        hi = hi.max(b.y + b.y_err);
+        let e = b.y_err.max(b.y_err_full.unwrap_or(0.0));
+        lo = lo.min(b.y - e);
+        hi = hi.max(b.y + e);
+    }
+    if let Some(bd) = &band {
+        for (y, t) in bd.y.iter().zip(&bd.total) {
+            lo = lo.min(y - t);
+            hi = hi.max(y + t);
+        }
     }
     for c in &curves {
         for y in &c.y {
@@ -232,9 +267,29 @@ pub(crate) fn draw(
 
     // Legend.
     let mut items = vec![LegendItem {
-        label: "binned ρ ± 1σ".to_string(),
+        label: if bins.iter().any(|b| b.y_err_full.is_some()) {
+            "binned ρ ± 1σ (independent pairs)".to_string()
+        } else {
+            "binned ρ ± 1σ".to_string()
+        },
         sample: Sample::Marker(BIN_MARKER, true),
     }];
+    if bins.iter().any(|b| b.y_err_full.is_some()) {
+        items.push(LegendItem {
+            label: "± 1σ full covariance".to_string(),
+            sample: Sample::Line(FULL_BAR),
+        });
+    }
+    if band.is_some() {
+        items.push(LegendItem {
+            label: "HD spread: cosmic".to_string(),
+            sample: Sample::Patch(VERMILLION, COSMIC_OPACITY, VERMILLION),
+        });
+        items.push(LegendItem {
+            label: "total (one pair)".to_string(),
+            sample: Sample::Patch(VERMILLION, TOTAL_OPACITY, VERMILLION),
+        });
+    }
     for (spec, c) in curve_specs.iter().zip(&curves) {
         let label = if opts.normalised && spec.pattern == "hd" {
             format!("{} G(ζ)", spec.label)
@@ -297,6 +352,27 @@ pub(crate) fn draw(
         format::fixed(s.spectral_index, 2, Style::Figure),
         format::general(s.span_years, 3, Style::Figure),
     );
+    if bins.iter().any(|b| b.y_err_full.is_some()) {
+        caption.push_str(
+            " Black error bars: independent-pair 1σ; wide grey bars: 1σ from the full covariance of the bins with the signal at Â²(HD) (pairs sharing a pulsar and the signal's own scatter included).",
+        );
+    }
+    if band.is_some() {
+        caption.push_str(
+            " Shaded: expected spread of a Gaussian background around the HD curve at Â²(HD) (Allen 2023), dark the cosmic variance of the pair-averaged correlation, light the total variance of one pair with pulsar terms; noise not included.",
+        );
+    }
+    if let Some(f) = &s.bin_fit {
+        let p = f
+            .p_value
+            .map(|p| format!(", p = {}", format::general(p, 2, Style::Figure)))
+            .unwrap_or_default();
+        caption.push_str(&format!(
+            " HD curve fitted to the bins with their full covariance: χ² = {} for {} degrees of freedom{p} (assumes Gaussian bins and the noise model).",
+            format::fixed(f.chi2, 1, Style::Figure),
+            f.degrees_of_freedom
+        ));
+    }
     if pairs_outside > 0 {
         caption.push_str(&format!(
             " {pairs_outside} pair points lie outside the axes."
@@ -358,6 +434,31 @@ pub(crate) fn draw(
         }
         svg.close();
     }
+    if let Some(bd) = &band {
+        svg.open("hd-spread", Some(&clip), "");
+        for (sig, op, class) in [
+            (&bd.total, TOTAL_OPACITY, "band-total"),
+            (&bd.cosmic, COSMIC_OPACITY, "band-cosmic"),
+        ] {
+            let mut pts: Vec<(f64, f64)> = bd
+                .angle_deg
+                .iter()
+                .zip(&bd.y)
+                .zip(sig)
+                .map(|((a, y), e)| (xs.map(*a), ys.map(y + e)))
+                .collect();
+            pts.extend(
+                bd.angle_deg
+                    .iter()
+                    .zip(&bd.y)
+                    .zip(sig)
+                    .rev()
+                    .map(|((a, y), e)| (xs.map(*a), ys.map(y - e))),
+            );
+            svg.area(&pts, VERMILLION, op, class);
+        }
+        svg.close();
+    }
     svg.open("curves", Some(&clip), "");
     for (spec, c) in curve_specs.iter().zip(&curves) {
         let pts: Vec<(f64, f64)> = c
@@ -371,6 +472,19 @@ pub(crate) fn draw(
     svg.close();
     svg.open("bins", Some(&clip), "");
     let bar = Stroke::new(INK, 0.7, LineStyle::Solid);
+    for b in &bins {
+        if let Some(e) = b.y_err_full {
+            let x = xs.map(b.angle_mean_deg);
+            svg.error_bar(
+                x,
+                ys.map(b.y - e),
+                ys.map(b.y + e),
+                2.4,
+                &FULL_BAR,
+                "bin-errorbar-full",
+            );
+        }
+    }
     for b in &bins {
         let x = xs.map(b.angle_mean_deg);
         svg.error_bar(
@@ -405,6 +519,7 @@ pub(crate) fn draw(
         y_axis: [yt.lo, yt.hi],
         bins,
         curves,
+        band,
         pairs_shown: opts.show_pairs,
         pairs_in_file: data.pairs.len(),
         pairs_outside_axes: pairs_outside,

@@ -1,0 +1,392 @@
+//! The covariance of the binned pair correlations with a signal present, and the goodness of
+//! fit of the Hellings-Downs curve to the bins with that covariance (docs/frequency-spread-bins.md).
+//!
+//! A bin's correlation is the inverse-variance weighted mean rho_B = Q_B / W_B of its pairs
+//! ([`crate::bins`]), with rho_ab / sigma_ab^2 = x~_a . x~_b in the template-weighted space of
+//! [`crate::optimal::weight`]:
+//!
+//!   Q_B = sum_{(a,b) in B} x~_a . x~_b = (1/2) x^T (H_B (x) I) x,   W_B = sum_{(a,b) in B} sigma_ab^-2,
+//!
+//! with H_B the symmetric N x N indicator of the bin's pairs and x the stacked x~. For Gaussian x
+//! with covariance C (the signal-present C~ = C0 + A^2 C1 of Allen & Romano 2023 in the reduced
+//! space, [`crate::paircov::joint_covariance`]) Isserlis' theorem (Isserlis 1918) gives
+//! Cov(x^T M x, x^T M' x) = 2 tr(M C M' C), so
+//!
+//!   Cov(Q_B, Q_B') = (1/2) tr((H_B (x) I) C (H_B' (x) I) C)
+//!                  = (1/2) sum_{a,c} (H_B')_{ca} tau_B[a, c],
+//!   tau_B[a, c] = sum_i ((C P_B) block (a, c))_{ii},   P_B = (H_B (x) I) C,
+//!
+//! and Cov(rho_B, rho_B') = Cov(Q_B, Q_B') / (W_B W_B'). Without signal (C = blockdiag Z~_a)
+//! this is diagonal with Var(rho_B) = 1 / W_B = sigma_B^2, the independent-pair error bar.
+//!
+//! The fit: with the covariance evaluated at the measured amplitude and held fixed, the
+//! generalised least-squares amplitude of A^2 hd_B to the bins and
+//! chi^2 = (rho - A2 hd)^T Cov^-1 (rho - A2 hd), with n_bins - 1 degrees of freedom (one
+//! amplitude fitted). Its p-value assumes Gaussian bins (they are sums of products of Gaussian
+//! data, so only approximately), the noise model, the Hellings-Downs pattern with the template's
+//! spectrum, and that the covariance at the measured amplitude is the true one.
+
+use crate::error::{Error, Result};
+use crate::linalg::cholesky_lower;
+use crate::optimal::Weighted;
+use crate::paircov::joint_covariance;
+use ndarray::{s, Array1, Array2};
+use statrs::distribution::{ChiSquared, ContinuousCDF};
+
+/// Largest stacked dimension N 2K for which the covariance is computed: the joint covariance
+/// and one work matrix of (N 2K)^2 doubles each, 128 MB each at the limit.
+pub const MAX_STACKED: usize = 4096;
+
+/// The covariance of the binned correlations at one amplitude.
+#[derive(Clone, Debug, PartialEq, serde::Serialize)]
+pub struct BinCovariance {
+    /// The amplitude squared of the signal in C (the measured HD A2_hat, clamped at 0).
+    pub amplitude2: f64,
+    /// Cov(rho_B, rho_B'), n_bins x n_bins.
+    pub covariance: Vec<Vec<f64>>,
+}
+
+impl BinCovariance {
+    /// The full-covariance error bar of each bin.
+    pub fn sigma(&self) -> Vec<f64> {
+        (0..self.covariance.len())
+            .map(|i| self.covariance[i][i].max(0.0).sqrt())
+            .collect()
+    }
+
+    /// The rows of `bins-covariance.csv` (every (B, B'), row-major).
+    pub fn rows(&self) -> Vec<BinCovarianceRow> {
+        let sig = self.sigma();
+        let nb = sig.len();
+        let mut out = Vec::with_capacity(nb * nb);
+        for i in 0..nb {
+            for j in 0..nb {
+                let c = self.covariance[i][j];
+                out.push(BinCovarianceRow {
+                    bin_a: i + 1,
+                    bin_b: j + 1,
+                    covariance: c,
+                    correlation: c / (sig[i] * sig[j]),
+                });
+            }
+        }
+        out
+    }
+}
+
+/// One entry of `bins-covariance.csv`.
+#[derive(Clone, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct BinCovarianceRow {
+    /// 1-based bin numbers in the order of bins.csv.
+    pub bin_a: usize,
+    pub bin_b: usize,
+    /// Cov(rho_B, rho_B') with the signal at the measured amplitude (units of A^2, squared).
+    pub covariance: f64,
+    pub correlation: f64,
+}
+
+/// The covariance of the bins `groups` (pair indices in row-major pair order, as
+/// [`crate::bins::bin_groups`]) for weighted pulsars `w`, pattern matrix `g` (N x N, unit
+/// diagonal), common auto-power `dc` in the analysis (template units, length 2K; see
+/// [`crate::paircov`]) and signal amplitude squared `a2`.
+pub fn bin_covariance(
+    w: &[Weighted],
+    g: &Array2<f64>,
+    dc: &[f64],
+    a2: f64,
+    groups: &[Vec<usize>],
+) -> Result<BinCovariance> {
+    let n = w.len();
+    let m = w.first().map_or(0, |x| x.z.nrows());
+    let nm = n * m;
+    if nm > MAX_STACKED {
+        return Err(Error::setting(
+            "bin covariance",
+            format!(
+                "N 2K = {nm} exceeds {MAX_STACKED} (the joint covariance would need {:.0} MB)",
+                (nm * nm * 8) as f64 / 1e6
+            ),
+        ));
+    }
+    let a2 = a2.max(0.0);
+    let z: Vec<Array2<f64>> = w.iter().map(|x| x.z.clone()).collect();
+    let c = joint_covariance(&z, g, dc, a2)?;
+    // Pair index -> (a, b) and the bin weights W_B = sum tr(Z~_a Z~_b).
+    let mut pair_ab = Vec::with_capacity(n * n.saturating_sub(1) / 2);
+    for a in 0..n {
+        for b in a + 1..n {
+            pair_ab.push((a, b));
+        }
+    }
+    let nb = groups.len();
+    let mut h = Vec::with_capacity(nb);
+    let mut wb = Vec::with_capacity(nb);
+    let mut members = Vec::with_capacity(nb);
+    for idx in groups {
+        let mut hb = Array2::<f64>::zeros((n, n));
+        let mut sum = 0.0;
+        let mut ab = Vec::with_capacity(idx.len());
+        for &p in idx {
+            let (a, b) = *pair_ab.get(p).ok_or_else(|| {
+                Error::setting("bin covariance", "a bin names a pair that does not exist")
+            })?;
+            hb[[a, b]] = 1.0;
+            hb[[b, a]] = 1.0;
+            sum += crate::optimal::frobenius(&z[a], &z[b]);
+            ab.push((a, b));
+        }
+        h.push(hb);
+        wb.push(sum);
+        members.push(ab);
+    }
+    let mut cov = vec![vec![0.0; nb]; nb];
+    let mut p = Array2::<f64>::zeros((nm, nm));
+    for bi in 0..nb {
+        // P_B = (H_B (x) I) C: block row a of P_B is the sum of the block rows b of C over the
+        // bin's pairs (a, b); H_B is sparse, so add rows instead of multiplying by it.
+        p.fill(0.0);
+        for &(a, b) in &members[bi] {
+            let (ra, rb) = (a * m..(a + 1) * m, b * m..(b + 1) * m);
+            p.slice_mut(s![ra.clone(), ..])
+                .scaled_add(1.0, &c.slice(s![rb.clone(), ..]));
+            p.slice_mut(s![rb, ..])
+                .scaled_add(1.0, &c.slice(s![ra, ..]));
+        }
+        // tau_B[a, c] = sum_i sum_{e, j} C[(a,i), (e,j)] P_B[(e,j), (c,i)].
+        let mut tau = Array2::<f64>::zeros((n, n));
+        for i in 0..m {
+            let ci = c.slice(s![i..;m, ..]);
+            let pi = p.slice(s![.., i..;m]);
+            tau += &ci.dot(&pi);
+        }
+        for bj in 0..nb {
+            let q = 0.5 * (&h[bj].t() * &tau).sum();
+            cov[bi][bj] = q / (wb[bi] * wb[bj]);
+        }
+    }
+    // Symmetric in exact arithmetic; remove rounding asymmetry.
+    for i in 0..nb {
+        for j in i + 1..nb {
+            let v = 0.5 * (cov[i][j] + cov[j][i]);
+            cov[i][j] = v;
+            cov[j][i] = v;
+        }
+    }
+    if cov.iter().flatten().any(|v| !v.is_finite()) {
+        return Err(Error::NonFinite {
+            what: "the covariance of the binned correlations".into(),
+        });
+    }
+    Ok(BinCovariance {
+        amplitude2: a2,
+        covariance: cov,
+    })
+}
+
+/// The fit of the Hellings-Downs curve to the bins with their full covariance.
+#[derive(Clone, Debug, PartialEq, serde::Serialize)]
+pub struct BinFit {
+    /// Generalised least-squares A^2 of rho_B = A^2 hd_B.
+    pub amplitude2: f64,
+    /// Its uncertainty (hd^T Cov^-1 hd)^(-1/2).
+    pub amplitude2_sigma: f64,
+    pub chi2: f64,
+    /// n_bins - 1.
+    pub degrees_of_freedom: usize,
+    /// P(chi^2_dof > chi2); absent with one bin (no degrees of freedom).
+    pub p_value: Option<f64>,
+    /// The A^2 at which the covariance was evaluated.
+    pub covariance_amplitude2: f64,
+    pub assumptions: &'static str,
+}
+
+/// What the bin fit's p-value assumes.
+pub const BIN_FIT_ASSUMPTIONS: &str = "chi-square of the Hellings-Downs curve (amplitude fitted by generalised least squares) to the binned correlations with their full covariance evaluated at the measured amplitude and held fixed; degrees of freedom n_bins - 1; the p-value assumes Gaussian bins (only approximately true: bins are sums of products of Gaussian data), the noise model, and a background with the template's spectrum; it is a consistency check of the pattern, not a detection statistic; a detection claim needs the collaboration's full analysis.";
+
+/// Fit A^2 hd to the bin correlations `rho` with covariance `cov`.
+pub fn fit_bins(rho: &[f64], hd: &[f64], cov: &BinCovariance) -> Result<BinFit> {
+    let nb = rho.len();
+    if nb == 0 || hd.len() != nb || cov.covariance.len() != nb {
+        return Err(Error::setting(
+            "bin fit",
+            "bins, Hellings-Downs values and covariance must have one size",
+        ));
+    }
+    let c = Array2::from_shape_fn((nb, nb), |(i, j)| cov.covariance[i][j]);
+    // Scale to unit diagonal before the Cholesky factor (the entries are ~A^4).
+    let d: Vec<f64> = (0..nb).map(|i| c[[i, i]].sqrt()).collect();
+    if d.iter().any(|v| !(v.is_finite() && *v > 0.0)) {
+        return Err(Error::NotPositiveDefinite {
+            what: "the covariance of the binned correlations (a bin with zero variance)".into(),
+            pivot: 0,
+        });
+    }
+    let cs = Array2::from_shape_fn((nb, nb), |(i, j)| c[[i, j]] / (d[i] * d[j]));
+    let l = cholesky_lower(&cs, "the covariance of the binned correlations")?;
+    let solve = |v: &[f64]| -> Array1<f64> {
+        // forward substitution L y = v / d
+        let mut y = Array1::<f64>::zeros(nb);
+        for i in 0..nb {
+            let mut s = v[i] / d[i];
+            for k in 0..i {
+                s -= l[[i, k]] * y[k];
+            }
+            y[i] = s / l[[i, i]];
+        }
+        y
+    };
+    let r = solve(rho);
+    let mvec = solve(hd);
+    let mm = mvec.dot(&mvec);
+    let a2 = mvec.dot(&r) / mm;
+    let resid = &r - &(&mvec * a2);
+    let chi2 = resid.dot(&resid);
+    let dof = nb - 1;
+    let p_value = if dof > 0 {
+        let dist = ChiSquared::new(dof as f64).map_err(|_| Error::NonFinite {
+            what: "the chi-square distribution of the bin fit".into(),
+        })?;
+        Some(dist.sf(chi2))
+    } else {
+        None
+    };
+    Ok(BinFit {
+        amplitude2: a2,
+        amplitude2_sigma: mm.powf(-0.5),
+        chi2,
+        degrees_of_freedom: dof,
+        p_value,
+        covariance_amplitude2: cov.amplitude2,
+        assumptions: BIN_FIT_ASSUMPTIONS,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::optimal::frobenius;
+    use crate::orf::{pattern_matrix, Pattern};
+    use crate::rng::{stream, Purpose};
+    use crate::sky::isotropic_direction;
+    use rand::Rng;
+    use rand_distr::StandardNormal;
+
+    fn toy(n: usize, m: usize, seed: u64) -> (Vec<Weighted>, Array2<f64>) {
+        let mut r = stream(seed, Purpose::Injection, 0);
+        let w = (0..n)
+            .map(|_| {
+                let a = Array2::from_shape_fn((m, m + 2), |_| r.sample::<f64, _>(StandardNormal));
+                Weighted {
+                    x: Array1::zeros(m),
+                    z: a.dot(&a.t()) * 0.3 + Array2::<f64>::eye(m) * 0.2,
+                }
+            })
+            .collect();
+        let dirs: Vec<_> = (0..n)
+            .map(|_| isotropic_direction(r.random(), r.random()))
+            .collect();
+        let g = Array2::from_shape_vec((n, n), pattern_matrix(Pattern::Hd, &dirs)).unwrap();
+        (w, g)
+    }
+
+    fn groups(n: usize, nb: usize) -> Vec<Vec<usize>> {
+        let np = n * (n - 1) / 2;
+        (0..nb)
+            .map(|k| (k * np / nb..(k + 1) * np / nb).collect())
+            .collect()
+    }
+
+    /// Without signal and without common auto-power the bins are independent with variance
+    /// 1 / W_B = sigma_B^2 (Chamberlin et al. 2015: pairs are independent under the null).
+    #[test]
+    fn without_signal_the_bins_are_independent() {
+        let (w, g) = toy(6, 4, 1);
+        let gr = groups(6, 4);
+        let bc = bin_covariance(&w, &g, &[0.0; 4], 0.0, &gr).unwrap();
+        let mut pair = Vec::new();
+        for a in 0..6 {
+            for b in a + 1..6 {
+                pair.push((a, b));
+            }
+        }
+        for (i, idx) in gr.iter().enumerate() {
+            let wsum: f64 = idx
+                .iter()
+                .map(|&p| frobenius(&w[pair[p].0].z, &w[pair[p].1].z))
+                .sum();
+            assert!((bc.covariance[i][i] * wsum - 1.0).abs() < 1e-12);
+            for j in 0..gr.len() {
+                if j != i {
+                    assert!(bc.covariance[i][j].abs() < 1e-14 * bc.covariance[i][i]);
+                }
+            }
+        }
+    }
+
+    /// The trace form equals the explicit sum over pairs of pairs of the Isserlis covariance
+    /// Cov(n_ab, n_cd) = <C~_ac, C~_bd> + <C~_ad, C~_bc> (Allen & Romano 2023 in the reduced
+    /// space; docs/pair-covariance.md), with and without common auto-power in P.
+    #[test]
+    fn trace_form_matches_the_sum_over_pairs() {
+        let (n, m) = (5, 4);
+        let (w, g) = toy(n, m, 2);
+        let z: Vec<Array2<f64>> = w.iter().map(|x| x.z.clone()).collect();
+        let gr = groups(n, 3);
+        let mut pair = Vec::new();
+        for a in 0..n {
+            for b in a + 1..n {
+                pair.push((a, b));
+            }
+        }
+        for dc in [vec![0.0; m], vec![0.5, 0.5, 0.1, 0.1]] {
+            let a2 = 1.7;
+            let bc = bin_covariance(&w, &g, &dc, a2, &gr).unwrap();
+            let c = joint_covariance(&z, &g, &dc, a2).unwrap();
+            let blk = |a: usize, b: usize| {
+                c.slice(s![a * m..(a + 1) * m, b * m..(b + 1) * m])
+                    .to_owned()
+            };
+            for (i, gi) in gr.iter().enumerate() {
+                for (j, gj) in gr.iter().enumerate() {
+                    let (mut q, mut wi, mut wj) = (0.0, 0.0, 0.0);
+                    for &p in gi {
+                        let (a, b) = pair[p];
+                        wi += frobenius(&z[a], &z[b]);
+                        for &p2 in gj {
+                            let (cc, d) = pair[p2];
+                            q += frobenius(&blk(a, cc), &blk(b, d))
+                                + frobenius(&blk(a, d), &blk(b, cc));
+                        }
+                    }
+                    for &p2 in gj {
+                        let (cc, d) = pair[p2];
+                        wj += frobenius(&z[cc], &z[d]);
+                    }
+                    let want = q / (wi * wj);
+                    assert!(
+                        (bc.covariance[i][j] - want).abs() < 1e-10 * want.abs().max(1e-300),
+                        "({i},{j}) {} vs {want}",
+                        bc.covariance[i][j]
+                    );
+                }
+            }
+        }
+    }
+
+    /// The fit recovers an exact Hellings-Downs line with chi^2 = 0, and its p-value follows
+    /// statrs' chi-square survival function.
+    #[test]
+    fn fit_of_an_exact_line() {
+        let (w, g) = toy(6, 4, 3);
+        let gr = groups(6, 4);
+        let bc = bin_covariance(&w, &g, &[0.0; 4], 2.0, &gr).unwrap();
+        let hd = [0.3, 0.05, -0.12, 0.1];
+        let rho: Vec<f64> = hd.iter().map(|h| 2.5 * h).collect();
+        let f = fit_bins(&rho, &hd, &bc).unwrap();
+        assert!((f.amplitude2 - 2.5).abs() < 1e-12);
+        assert!(f.chi2 < 1e-20);
+        assert_eq!(f.degrees_of_freedom, 3);
+        assert!((f.p_value.unwrap() - 1.0).abs() < 1e-12);
+        assert!(fit_bins(&rho[..2], &hd, &bc).is_err());
+    }
+}
