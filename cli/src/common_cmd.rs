@@ -3,9 +3,11 @@
 
 use anyhow::{Context, Result};
 use ptacorr::common::{
-    comparison_name, fit_common, read_fitted_common, AmplitudePrior, CommonData, CommonModel,
-    CommonSettings, FitStatistic, FittedCommon, COMMON_ASSUMPTIONS,
+    check_draws, comparison_name, draw_curn, fit_common, read_fitted_common, AmplitudePrior,
+    CommonData, CommonModel, CommonSettings, DrawIndex, DrawSettings, FitStatistic, FittedCommon,
+    COMMON_ASSUMPTIONS,
 };
+use ptacorr::output::OutputSet;
 use ptacorr::release::read_release;
 use std::path::{Path, PathBuf};
 use std::time::Instant;
@@ -45,6 +47,21 @@ pub struct CommonArgs {
     amplitude_points: usize,
     #[arg(long, value_enum, default_value = "uniform-log10")]
     amplitude_prior: PriorArg,
+    /// Number of posterior draws of the CURN common process in common-draws.csv.
+    #[arg(long, default_value_t = 1000)]
+    draws: usize,
+    /// Draw (log10 A, gamma) from the varied-index posterior, or log10 A at the fixed index.
+    #[arg(long, value_enum, default_value = "varied")]
+    draw_index: DrawIndexArg,
+    /// Seed of the posterior draws (draw i depends on (seed, i) alone).
+    #[arg(long, default_value_t = 2026, allow_negative_numbers = true, value_parser = crate::seed_arg)]
+    seed: u64,
+}
+
+#[derive(Clone, Copy, clap::ValueEnum)]
+pub enum DrawIndexArg {
+    Varied,
+    Fixed,
 }
 
 fn parse_range(s: &str, name: &str) -> Result<(f64, f64)> {
@@ -78,19 +95,41 @@ impl CommonArgs {
             ..Default::default()
         };
         s.validate()?;
+        check_draws(self.draws)?;
         Ok(s)
+    }
+
+    fn draw_settings(&self) -> DrawSettings {
+        DrawSettings {
+            n_draws: self.draws,
+            seed: self.seed,
+            index: match self.draw_index {
+                DrawIndexArg::Varied => DrawIndex::Varied,
+                DrawIndexArg::Fixed => DrawIndex::Fixed,
+            },
+        }
     }
 }
 
 /// Run `ptacorr common`.
 pub fn run(args: &CommonArgs) -> Result<()> {
     let settings = args.settings()?;
+    let draw_settings = args.draw_settings();
     let t = Instant::now();
+    let mut set = OutputSet::begin(&args.out, "common")?;
     let rel = read_release(&args.release)
         .with_context(|| format!("reading release {}", args.release.display()))?;
     let data = CommonData::from_release(&rel, &rel.noise, settings.n_frequencies)?;
     let fit = fit_common(&data, &settings)?;
-    fit.write(&args.out, &rel, &data)?;
+    let draws = draw_curn(
+        &data,
+        &fit,
+        draw_settings.index,
+        draw_settings.n_draws,
+        draw_settings.seed,
+    )?;
+    fit.write(&mut set, &rel, &data, Some((&draw_settings, &draws)))?;
+    set.commit()?;
     println!(
         "{} pulsars, {} frequencies; prior: {} on [{}, {}], gamma uniform on [{}, {}]",
         data.n_pulsars(),
@@ -130,7 +169,8 @@ pub fn run(args: &CommonArgs) -> Result<()> {
     println!("  {COMMON_ASSUMPTIONS}");
     eprintln!("fitted in {:.2} s", t.elapsed().as_secs_f64());
     println!(
-        "wrote {}/summary.json, posterior-fixed-index.csv, posterior-grid.csv, marginals.csv",
+        "wrote {}/summary.json, posterior-fixed-index.csv, posterior-grid.csv, marginals.csv, \
+         common-draws.csv",
         args.out.display()
     );
     Ok(())

@@ -21,6 +21,10 @@ pub enum Purpose {
     NoiseChain = 10,
     /// Row picks of the noise-marginalised OS (nmos/).
     NoiseDraws = 13,
+    /// Posterior draws of the common process (`ptacorr common`, common-draws.csv).
+    CommonDraw = 21,
+    /// Chains of the common free spectrum.
+    FreeSpectrumChain = 22,
 }
 
 /// SplitMix64 finaliser (Steele, Lea & Flood 2014), used to spread seeds.

@@ -53,3 +53,31 @@ pub fn simulate_release(scenario: &str, dir: &Path, seed: u64) -> Release {
     simulate_scenario(&layout, seed, dir).expect("simulation runs");
     read_release(dir).expect("release reads")
 }
+
+/// The Python with NumPy for the peer checks: $PTACORR_PYTHON, else the repository's .venv
+/// (made by `./run setup` and `./run test`). Its absence is a failure, never a silent pass: a
+/// peer check that cannot run has checked nothing.
+pub fn numpy_python() -> PathBuf {
+    let repo = Path::new(env!("CARGO_MANIFEST_DIR"))
+        .parent()
+        .expect("repository root")
+        .to_path_buf();
+    let candidates: Vec<PathBuf> = std::env::var_os("PTACORR_PYTHON")
+        .map(PathBuf::from)
+        .into_iter()
+        .chain([repo.join(".venv/bin/python")])
+        .collect();
+    for c in &candidates {
+        let ok = std::process::Command::new(c)
+            .args(["-c", "import numpy"])
+            .status()
+            .is_ok_and(|s| s.success());
+        if ok {
+            return c.clone();
+        }
+    }
+    panic!(
+        "the NumPy peer check needs a Python with NumPy and found none (tried {candidates:?}): \
+         run `./run setup` (it makes .venv with NumPy) or set PTACORR_PYTHON to such a Python"
+    );
+}

@@ -1180,3 +1180,152 @@ fn chain_tables_are_checked_against_the_release_before_any_work() {
     t.finish("chain tables");
     fs::remove_dir_all(&rel_dir).ok();
 }
+
+/// The common process (`ptacorr common`, docs/common-process.md): a grid with no points, priors
+/// that hold no mass and a degenerate noise model (a singular Z_a, so B = Z + Z Phi_int Z is
+/// singular) are clear errors that say what to change, before any work; a prior range far from
+/// the likelihood still gives finite Bayes factors, never NaN.
+#[test]
+fn common_process_grids_priors_and_degenerate_noise_are_refused() {
+    use ptacorr::common::{fit_common, AmplitudePrior, CommonData, CommonSettings};
+    let mut t = Tally(Vec::new());
+    let settings = |f: &dyn Fn(&mut CommonSettings)| {
+        let mut s = CommonSettings::default();
+        f(&mut s);
+        s.validate().map_err(|e| e.to_string())
+    };
+    let cases: Vec<(&str, Box<dyn Fn(&mut CommonSettings)>, Vec<&str>)> = vec![
+        (
+            "no index points",
+            Box::new(|s| s.n_spectral_index = 0),
+            vec!["index-points", "odd number of points >= 3"],
+        ),
+        (
+            "one index point",
+            Box::new(|s| s.n_spectral_index = 1),
+            vec!["index-points", "odd number"],
+        ),
+        (
+            "even index points",
+            Box::new(|s| s.n_spectral_index = 40),
+            vec!["index-points", "odd number", "got 40"],
+        ),
+        (
+            "no amplitude points",
+            Box::new(|s| s.n_table_amplitudes = 0),
+            vec!["amplitude-points", "at least 2"],
+        ),
+        (
+            "no frequencies",
+            Box::new(|s| s.n_frequencies = 0),
+            vec!["frequencies", "1..=1000"],
+        ),
+        (
+            "no models",
+            Box::new(|s| s.models.clear()),
+            vec!["models", "no correlation model"],
+        ),
+        (
+            "empty amplitude prior",
+            Box::new(|s| s.log10_amplitude_max = s.log10_amplitude_min),
+            vec!["log10-amplitude-range", "holds no mass", "LO < HI"],
+        ),
+        (
+            "reversed amplitude prior",
+            Box::new(|s| {
+                s.log10_amplitude_min = -12.0;
+                s.log10_amplitude_max = -18.0;
+            }),
+            vec!["log10-amplitude-range", "holds no mass"],
+        ),
+        (
+            "nan amplitude prior",
+            Box::new(|s| s.log10_amplitude_min = f64::NAN),
+            vec!["log10-amplitude-range"],
+        ),
+        (
+            "empty uniform-amplitude prior",
+            Box::new(|s| {
+                s.amplitude_prior = AmplitudePrior::UniformAmplitude;
+                s.log10_amplitude_min = -14.0;
+                s.log10_amplitude_max = -14.0;
+            }),
+            vec!["log10-amplitude-range", "holds no mass"],
+        ),
+        (
+            "amplitude prior beyond range",
+            Box::new(|s| s.log10_amplitude_max = 3.0),
+            vec!["log10-amplitude-range", "[-30, 0]"],
+        ),
+        (
+            "empty index prior",
+            Box::new(|s| {
+                s.spectral_index_min = 3.0;
+                s.spectral_index_max = 3.0;
+            }),
+            vec![
+                "spectral-index-range",
+                "holds no mass",
+                "0 <= LO < HI <= 10",
+            ],
+        ),
+        (
+            "negative index prior",
+            Box::new(|s| s.spectral_index_min = -2.0),
+            vec!["spectral-index-range"],
+        ),
+        (
+            "nan fixed index",
+            Box::new(|s| s.fixed_spectral_index = f64::NAN),
+            vec!["fixed-index", "[0, 10]"],
+        ),
+    ];
+    for (name, f, expect) in &cases {
+        t.add(name, judge(|| settings(f.as_ref()), expect));
+    }
+    // A degenerate noise model: 2K = 120 Fourier columns on pulsars with about 74 TOAs, so Z_a
+    // is singular. The message names the pulsar and what to change.
+    let dir = good_release("common-singular");
+    let rel = read_release(&dir).unwrap();
+    t.add(
+        "singular Z (more frequencies than TOAs)",
+        judge(
+            || {
+                CommonData::from_release(&rel, &rel.noise, 60)
+                    .map(|_| ())
+                    .map_err(|e| e.to_string())
+            },
+            &["pulsar P0", "fewer frequencies", "not positive definite"],
+        ),
+    );
+    // Never a NaN Bayes factor: a prior range where the likelihood is flat (far below any
+    // detectable amplitude) gives ln BF near 0, and a range far above it a very negative but
+    // finite one.
+    let data = CommonData::from_release(&rel, &rel.noise, 5).unwrap();
+    for (lo, hi) in [(-30.0, -28.0), (-4.0, -1.0)] {
+        let s = CommonSettings {
+            n_frequencies: 5,
+            log10_amplitude_min: lo,
+            log10_amplitude_max: hi,
+            n_spectral_index: 5,
+            ..Default::default()
+        };
+        let fit = fit_common(&data, &s).unwrap();
+        for fixed in [true, false] {
+            for b in fit.standard_bayes_factors(fixed) {
+                assert!(
+                    b.ln_bayes_factor.is_finite() && b.ln_error.is_finite(),
+                    "[{lo}, {hi}]: {b:?}"
+                );
+            }
+        }
+        let flat = fit.bayes_factor(ptacorr::common::CommonModel::Curn, None, true);
+        if lo < -20.0 {
+            assert!(flat.unwrap().ln_bayes_factor.abs() < 1e-6);
+        } else {
+            assert!(flat.unwrap().ln_bayes_factor < -10.0);
+        }
+    }
+    fs::remove_dir_all(&dir).ok();
+    t.finish("common process");
+}

@@ -181,7 +181,7 @@ impl CommonSettings {
         )
     }
 
-    fn ln_prior(&self, u: f64) -> f64 {
+    pub(crate) fn ln_prior(&self, u: f64) -> f64 {
         self.amplitude_prior
             .ln_density(u, self.log10_amplitude_min, self.log10_amplitude_max)
     }

@@ -111,15 +111,27 @@ impl CommonData {
             return Err(Error::setting("release", "the release has no pulsars"));
         }
         for r in reduced {
-            ScaledCholesky::new(
-                &r.z,
-                &format!(
-                    "Z = F^T P^-1 F of pulsar {} (its Fourier-basis precision without the common \
-                     process; if its red or DM process or timing model absorbs a frequency, use \
-                     fewer frequencies or fix the noise model of {})",
-                    r.label, r.label
-                ),
-            )?;
+            let what = format!(
+                "Z = F^T P^-1 F of pulsar {} (its Fourier-basis precision without the common \
+                 process; if its red or DM process or timing model absorbs a frequency, or it \
+                 has fewer TOAs than twice the number of frequencies, use fewer frequencies or \
+                 fix the noise model of {})",
+                r.label, r.label
+            );
+            let chol = ScaledCholesky::new(&r.z, &what)?;
+            // Exactly singular Z_a (more Fourier columns than the TOAs left after the timing
+            // model, say) can factor with rounding-level pivots; a pivot below this is no
+            // information at all in that direction (kappa_2 > 1e12: the likelihood would not be
+            // accurate to the 1e-8 of docs/common-process.md anyway).
+            let pivot = chol.smallest_pivot();
+            if pivot < MIN_RELATIVE_PIVOT {
+                return Err(Error::NotPositiveDefinite {
+                    what: format!(
+                        "{what}: numerically singular, smallest relative pivot {pivot:.1e}"
+                    ),
+                    pivot: 0,
+                });
+            }
         }
         Ok(CommonData {
             labels: reduced.iter().map(|r| r.label.clone()).collect(),
@@ -194,6 +206,10 @@ impl CommonData {
         Ok(AmplitudeCurve { mu, t2 })
     }
 }
+
+/// The smallest accepted squared pivot of a pulsar's diagonally scaled Z_a
+/// ([`ScaledCholesky::smallest_pivot`]).
+pub const MIN_RELATIVE_PIVOT: f64 = 1e-12;
 
 /// R (N x r) with R R^T = Gamma from the symmetric eigendecomposition of the pattern matrix,
 /// keeping eigenvalues above 1e-12 of the largest (rank-deficient patterns keep their rank:

@@ -3,10 +3,14 @@
 //! correlation, its posterior on a (log10 A, gamma) grid, and Bayes factors between correlation
 //! models (docs/common-process.md).
 
+pub mod draws;
 pub mod evidence;
+pub mod free_spectrum;
 pub mod likelihood;
 pub mod write;
 
+pub use draws::*;
 pub use evidence::*;
+pub use free_spectrum::*;
 pub use likelihood::*;
 pub use write::*;

@@ -2,12 +2,13 @@
 //! upper limits, priors, assumptions, provenance) and CSV tables of the posteriors, and the
 //! reader `correlate` uses to take its auto-power common process from such a run.
 
+use super::draws::{draws_csv, CommonDraw, DrawSettings};
 use super::evidence::{BayesFactor, CommonFit, Interval1d, Tabulated};
 use super::likelihood::{CommonData, CommonModel};
 use crate::analysis::Provenance;
 use crate::constants::SECONDS_PER_YEAR;
 use crate::error::{Error, Result};
-use crate::output::{write_atomic, write_json};
+use crate::output::{check_manifest, OutputSet};
 use crate::release::Release;
 use crate::spectrum::PowerLaw;
 use serde::{Deserialize, Serialize};
@@ -70,6 +71,8 @@ struct Summary<'a> {
     models: BTreeMap<&'static str, ModelSummary>,
     bayes_factors_fixed_index: Vec<BayesRow>,
     bayes_factors_varied_index: Vec<BayesRow>,
+    /// The posterior draws of the CURN common process in common-draws.csv, if written.
+    draws: Option<DrawSettings>,
     assumptions: &'static str,
     provenance: Provenance,
 }
@@ -144,9 +147,16 @@ pub(crate) fn to_csv<T: Serialize>(rows: &[T], what: &str) -> Result<Vec<u8>> {
 }
 
 impl CommonFit {
-    /// Write summary.json, posterior-fixed-index.csv, posterior-grid.csv and marginals.csv
-    /// into `dir`, each atomically, after all of them have been formed.
-    pub fn write(&self, dir: &Path, release: &Release, data: &CommonData) -> Result<()> {
+    /// Stage summary.json, posterior-fixed-index.csv, posterior-grid.csv, marginals.csv and,
+    /// with `draws`, common-draws.csv into the output set `set` (committed by the caller, so
+    /// the folder gets all of them or none).
+    pub fn write(
+        &self,
+        set: &mut OutputSet,
+        release: &Release,
+        data: &CommonData,
+        draws: Option<(&DrawSettings, &[CommonDraw])>,
+    ) -> Result<()> {
         let s = &self.settings;
         let ul = |u: f64| 10f64.powf(u);
         let models = self
@@ -207,6 +217,7 @@ impl CommonFit {
             models,
             bayes_factors_fixed_index: bayes_rows(self.standard_bayes_factors(true)),
             bayes_factors_varied_index: bayes_rows(self.standard_bayes_factors(false)),
+            draws: draws.map(|(d, _)| *d),
             assumptions: COMMON_ASSUMPTIONS,
             provenance: Provenance::new(release, s),
         };
@@ -267,10 +278,15 @@ impl CommonFit {
         let fixed_csv = to_csv(&fixed_rows, "posterior-fixed-index.csv")?;
         let grid_csv = to_csv(&grid_rows, "posterior-grid.csv")?;
         let marg_csv = to_csv(&marg_rows, "marginals.csv")?;
-        write_json(&dir.join("summary.json"), &summary)?;
-        write_atomic(&dir.join("posterior-fixed-index.csv"), &fixed_csv)?;
-        write_atomic(&dir.join("posterior-grid.csv"), &grid_csv)?;
-        write_atomic(&dir.join("marginals.csv"), &marg_csv)
+        let draws_csv = draws.map(|(_, d)| draws_csv(d)).transpose()?;
+        set.write_json("summary.json", &summary)?;
+        set.write("posterior-fixed-index.csv", &fixed_csv)?;
+        set.write("posterior-grid.csv", &grid_csv)?;
+        set.write("marginals.csv", &marg_csv)?;
+        if let Some(d) = draws_csv {
+            set.write("common-draws.csv", &d)?;
+        }
+        Ok(())
     }
 }
 
@@ -302,6 +318,7 @@ pub fn read_fitted_common(
     model: CommonModel,
     statistic: FitStatistic,
 ) -> Result<FittedCommon> {
+    check_manifest(dir)?;
     let path = dir.join("summary.json");
     let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
     let v: serde_json::Value = serde_json::from_str(&text)
