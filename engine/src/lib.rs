@@ -40,6 +40,7 @@ pub mod pvalue;
 pub mod reduce;
 pub mod release;
 pub mod rng;
+pub mod sampler;
 pub mod scenario;
 pub mod shard;
 pub mod simulate;

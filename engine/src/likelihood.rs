@@ -84,7 +84,7 @@ pub enum Hyper {
 }
 
 /// One hyperparameter: its kind and its name in chain tables (`efac.KRK-L`,
-/// `log10_equad_s.KRK-L`, `red.log10_amplitude`, ...).
+/// `equad_log10_s.KRK-L`, `red.log10_amplitude`, ...: the keys of `noise.toml`).
 #[derive(Clone, Debug, PartialEq)]
 pub struct Hyperparameter {
     pub name: String,
@@ -104,6 +104,109 @@ struct WhiteIndex {
 struct Block {
     start: usize,
     freqs: Vec<f64>,
+}
+
+/// The white-noise part of one evaluation (see [`PulsarLikelihood::white`]).
+struct White {
+    efac: Vec<f64>,
+    equad2: Vec<f64>,
+    ecorr2: Vec<f64>,
+    /// D_ii = (EFAC sigma_i)^2 + EQUAD^2.
+    d: Vec<f64>,
+    sqrt_dinv: Vec<f64>,
+    /// D^-1/2 T and D^-1/2 r.
+    wa: Array2<f64>,
+    wr: Array1<f64>,
+    /// Per ECORR epoch: sum of D^-1 over its TOAs.
+    sum_dinv: Vec<f64>,
+    /// Per ECORR epoch: its TOAs and beta^(1/2) of the Sherman-Morrison fold.
+    fold: Vec<(Vec<usize>, f64)>,
+    /// Per ECORR epoch: beta^(1/2) sum of D^-1/2 rows of D^-1/2 T.
+    v: Array2<f64>,
+    /// T^T N^-1 T and T^T N^-1 r.
+    gram: Array2<f64>,
+    tnr: Array1<f64>,
+}
+
+/// The likelihood with the white noise held at fixed values (`ptacorr noise --fixed-white`):
+/// T^T N^-1 T, T^T N^-1 r, r^T N^-1 r and ln det N are computed once, so an evaluation costs
+/// O(c^3) for c columns of T instead of O(n c^2). With S = B^-1 + T^T N^-1 T and
+/// a = S^-1 T^T N^-1 r, r^T P r = r^T N^-1 r - a^T T^T N^-1 r (Woodbury identity; Press et al.
+/// 2007, Numerical Recipes, sec. 2.7.3; the same S as in [`PulsarLikelihood`]). This scalar
+/// difference loses about log10(r^T N^-1 r / r^T P r) digits, a few at most for residuals
+/// dominated by red noise; the gradient in the power-law parameters is the same formula as the
+/// full likelihood's, and the white-noise entries of the gradient are zero.
+pub struct FixedWhite<'a> {
+    lik: &'a PulsarLikelihood,
+    /// (index, value) of every white-noise hyperparameter.
+    white: Vec<(usize, f64)>,
+    gram: Array2<f64>,
+    tnr: Array1<f64>,
+    rnr: f64,
+    log_det_n: f64,
+}
+
+impl FixedWhite<'_> {
+    /// The fixed white-noise values (index in the parameter vector, value).
+    pub fn white(&self) -> &[(usize, f64)] {
+        &self.white
+    }
+
+    /// ln L at `theta` (its white-noise entries are ignored: the fixed values hold) and its
+    /// gradient (zero in the white-noise entries).
+    pub fn log_likelihood_and_gradient(&self, theta: &[f64], grad: &mut [f64]) -> Result<f64> {
+        let lik = self.lik;
+        lik.check_theta(theta)?;
+        if grad.len() != lik.params.len() {
+            return Err(Error::setting(
+                "gradient",
+                "gradient buffer has the wrong length",
+            ));
+        }
+        let (n, cols) = lik.t.dim();
+        let (phi, binv, red_share, common_share) = lik.prior_variances(theta)?;
+        let mut s = self.gram.clone();
+        for c in lik.n_m..cols {
+            s[[c, c]] += binv[c];
+        }
+        let chol = ScaledCholesky::new(
+            &s,
+            &format!("S = B^-1 + T^T N^-1 T of pulsar {}", lik.label),
+        )?;
+        let w_half = chol.whiten(&Array2::eye(cols));
+        let a = w_half.t().dot(&w_half.dot(&self.tnr));
+        let chi2 = self.rnr - a.dot(&self.tnr);
+        let log_det_b: f64 = phi[lik.n_m..].iter().map(|p| p.ln()).sum();
+        let lnl = -0.5 * (chi2 + self.log_det_n + log_det_b + chol.log_det())
+            - 0.5 * (n - lik.n_m) as f64 * (2.0 * PI).ln();
+        if !lnl.is_finite() {
+            return Err(Error::NonFinite {
+                what: format!("the likelihood of pulsar {} (ln L)", lik.label),
+            });
+        }
+        grad.iter_mut().for_each(|g| *g = 0.0);
+        // (S^-1 T^T N^-1 T)_cc = 1 - (S^-1)_cc / phi_c since T^T N^-1 T = S - B^-1.
+        let h: Vec<f64> = (0..cols)
+            .map(|c| {
+                if c < lik.n_m {
+                    0.0
+                } else {
+                    let s_inv_cc = w_half.column(c).dot(&w_half.column(c));
+                    0.5 * (a[c] * a[c] * binv[c] - 1.0 + s_inv_cc * binv[c])
+                }
+            })
+            .collect();
+        lik.power_law_gradient(&h, &red_share, &common_share, grad);
+        if let Some(k) = grad.iter().position(|g| !g.is_finite()) {
+            return Err(Error::NonFinite {
+                what: format!(
+                    "the likelihood of pulsar {} (gradient in {})",
+                    lik.label, lik.params[k].name
+                ),
+            });
+        }
+        Ok(lnl)
+    }
 }
 
 /// The likelihood of one pulsar, with everything that does not depend on the hyperparameters
@@ -191,14 +294,14 @@ impl PulsarLikelihood {
             if terms.log10_equad {
                 w.equad = Some(push(
                     &mut params,
-                    format!("log10_equad_s.{name}"),
+                    format!("equad_log10_s.{name}"),
                     Hyper::Log10Equad(b),
                 ));
             }
             if terms.log10_ecorr {
                 w.ecorr = Some(push(
                     &mut params,
-                    format!("log10_ecorr_s.{name}"),
+                    format!("ecorr_log10_s.{name}"),
                     Hyper::Log10Ecorr(b),
                 ));
             }
@@ -301,7 +404,9 @@ impl PulsarLikelihood {
     }
 
     /// Floating-point operations of one value-and-gradient evaluation as counted: the rank-k
-    /// update T^T D^-1 T (n c (c + 1)), V^T V, the triangular solve L^-1 (N^-1 T)^T (n c^2),
+    /// update T^T D^-1 T (n c (c + 1)), V^T V, the quadratic forms of diag(P) (counted as n c^2,
+    /// what a triangular solve L^-1 (N^-1 T)^T needs; the code uses one dgemm (N^-1 T) S^-1 of
+    /// 2 n c^2 flops, which runs faster than the solve and keeps rows contiguous),
     /// forming V, N^-1 T and diag(P) (2 n c each), and the small dense steps on S (c^3 / 3 for
     /// the factor, c^3 for S^-1/2, 2 c^3 for S^-1).
     pub fn flops(&self) -> f64 {
@@ -346,30 +451,138 @@ impl PulsarLikelihood {
         }
     }
 
-    fn evaluate(&self, theta: &[f64], grad: Option<&mut [f64]>) -> Result<f64> {
-        if theta.len() != self.params.len() {
-            return Err(Error::setting(
-                "parameters",
-                format!(
-                    "pulsar {}: expected {} hyperparameters, got {}",
-                    self.label,
-                    self.params.len(),
-                    theta.len()
-                ),
-            ));
+    /// Prior variances phi of every column of T (infinite on the timing model's), their
+    /// inverses, and the shares of red noise and the common process in each red column (for the
+    /// gradient). phi(f) as in [`crate::spectrum::power_law_phi`].
+    #[allow(clippy::type_complexity)]
+    fn prior_variances(&self, theta: &[f64]) -> Result<(Vec<f64>, Vec<f64>, Vec<f64>, Vec<f64>)> {
+        let cols = self.t.ncols();
+        let mut phi = vec![f64::INFINITY; cols];
+        let mut red_share = vec![0.0; cols];
+        let mut common_share = vec![0.0; cols];
+        if let Some(block) = &self.red_block {
+            let red = self.red_index.map(|i| (theta[i], theta[i + 1]));
+            let common = match self.common {
+                Some(CommonTerm::Fixed(c)) => Some((c.log10_amplitude, c.spectral_index)),
+                Some(CommonTerm::Free) => self.common_index.map(|i| (theta[i], theta[i + 1])),
+                None => None,
+            };
+            for (j, &f) in block.freqs.iter().enumerate() {
+                let pr = red.filter(|_| j < self.k_red).map_or(0.0, |(a, g)| {
+                    power_law_phi(10f64.powf(2.0 * a), g, f, self.t_span)
+                });
+                let pc = common.filter(|_| j < self.k_common).map_or(0.0, |(a, g)| {
+                    power_law_phi(10f64.powf(2.0 * a), g, f, self.t_span)
+                });
+                for c in [block.start + 2 * j, block.start + 2 * j + 1] {
+                    phi[c] = pr + pc;
+                    red_share[c] = pr / (pr + pc);
+                    common_share[c] = pc / (pr + pc);
+                }
+            }
         }
+        if let (Some(block), Some(i)) = (&self.dm_block, self.dm_index) {
+            for (j, &f) in block.freqs.iter().enumerate() {
+                let p = power_law_phi(10f64.powf(2.0 * theta[i]), theta[i + 1], f, self.t_span);
+                phi[block.start + 2 * j] = p;
+                phi[block.start + 2 * j + 1] = p;
+            }
+        }
+        let binv: Vec<f64> = phi.iter().map(|p| 1.0 / p).collect();
+        if phi[self.n_m..].iter().any(|p| !(p.is_finite() && *p > 0.0)) {
+            return Err(Error::NonFinite {
+                what: format!(
+                    "the likelihood of pulsar {} (power-law prior variance not positive)",
+                    self.label
+                ),
+            });
+        }
+        Ok((phi, binv, red_share, common_share))
+    }
+
+    /// Chain rule from h_c = d ln L / d ln phi_c to the power-law parameters:
+    /// d ln phi / d log10 A = 2 ln 10, d ln phi / d gamma = ln(f_yr / f).
+    fn power_law_gradient(
+        &self,
+        h: &[f64],
+        red_share: &[f64],
+        common_share: &[f64],
+        grad: &mut [f64],
+    ) {
+        let mut power_law = |block: &Block, index: usize, share: &dyn Fn(usize, usize) -> f64| {
+            for (j, &f) in block.freqs.iter().enumerate() {
+                let dln_gamma = (F_YR / f).ln();
+                for c in [block.start + 2 * j, block.start + 2 * j + 1] {
+                    let w = share(j, c) * h[c];
+                    grad[index] += 2.0 * LN_10 * w;
+                    grad[index + 1] += dln_gamma * w;
+                }
+            }
+        };
+        if let (Some(block), Some(i)) = (&self.red_block, self.red_index) {
+            power_law(block, i, &|j, c| {
+                if j < self.k_red {
+                    red_share[c]
+                } else {
+                    0.0
+                }
+            });
+        }
+        if let (Some(block), Some(i)) = (&self.red_block, self.common_index) {
+            power_law(block, i, &|j, c| {
+                if j < self.k_common {
+                    common_share[c]
+                } else {
+                    0.0
+                }
+            });
+        }
+        if let (Some(block), Some(i)) = (&self.dm_block, self.dm_index) {
+            power_law(block, i, &|_, _| 1.0);
+        }
+    }
+
+    /// Indices of the white-noise hyperparameters (EFAC, EQUAD, ECORR of every backend).
+    pub fn white_parameters(&self) -> Vec<usize> {
+        self.params
+            .iter()
+            .enumerate()
+            .filter(|(_, p)| {
+                matches!(
+                    p.kind,
+                    Hyper::Efac(_) | Hyper::Log10Equad(_) | Hyper::Log10Ecorr(_)
+                )
+            })
+            .map(|(i, _)| i)
+            .collect()
+    }
+
+    /// The white-noise products at `theta` that a fixed white noise leaves constant:
+    /// T^T N^-1 T, T^T N^-1 r, r^T N^-1 r and ln det N ([`FixedWhite`]).
+    pub fn fixed_white(&self, theta: &[f64]) -> Result<FixedWhite<'_>> {
+        let probe = self.white_products(theta)?;
+        Ok(FixedWhite {
+            lik: self,
+            white: self
+                .white_parameters()
+                .into_iter()
+                .map(|i| (i, theta[i]))
+                .collect(),
+            gram: probe.0,
+            tnr: probe.1,
+            rnr: probe.2,
+            log_det_n: probe.3,
+        })
+    }
+
+    /// The white-noise part at `theta`: D, the whitened T and r, ECORR's Sherman-Morrison
+    /// terms, T^T N^-1 T and T^T N^-1 r.
+    fn white(&self, theta: &[f64]) -> Result<White> {
         let non_finite = |what: &str| Error::NonFinite {
             what: format!("the likelihood of pulsar {} ({what})", self.label),
         };
-        if let Some(i) = theta.iter().position(|v| !v.is_finite()) {
-            return Err(non_finite(&format!(
-                "parameter {} is {}",
-                self.params[i].name, theta[i]
-            )));
-        }
-        let (n, cols) = self.t.dim();
+        let n = self.t.nrows();
         let nb = self.backends.len();
-
         // White noise per backend: D_ii = (EFAC sigma_i)^2 + EQUAD^2, ECORR^2 per epoch.
         let mut efac = vec![1.0; nb];
         let mut equad2 = vec![0.0; nb];
@@ -431,43 +644,103 @@ impl PulsarLikelihood {
             tnr -= &v.t().dot(&epoch_sums(&wr));
         }
 
-        // Prior variances phi of every power-law column; the shares split the red columns
-        // between red noise and the common process for the gradient.
-        let mut phi = vec![f64::INFINITY; cols];
-        let mut red_share = vec![0.0; cols];
-        let mut common_share = vec![0.0; cols];
-        if let Some(block) = &self.red_block {
-            let red = self.red_index.map(|i| (theta[i], theta[i + 1]));
-            let common = match self.common {
-                Some(CommonTerm::Fixed(c)) => Some((c.log10_amplitude, c.spectral_index)),
-                Some(CommonTerm::Free) => self.common_index.map(|i| (theta[i], theta[i + 1])),
-                None => None,
-            };
-            for (j, &f) in block.freqs.iter().enumerate() {
-                let pr = red.filter(|_| j < self.k_red).map_or(0.0, |(a, g)| {
-                    power_law_phi(10f64.powf(2.0 * a), g, f, self.t_span)
-                });
-                let pc = common.filter(|_| j < self.k_common).map_or(0.0, |(a, g)| {
-                    power_law_phi(10f64.powf(2.0 * a), g, f, self.t_span)
-                });
-                for c in [block.start + 2 * j, block.start + 2 * j + 1] {
-                    phi[c] = pr + pc;
-                    red_share[c] = pr / (pr + pc);
-                    common_share[c] = pc / (pr + pc);
-                }
-            }
+        Ok(White {
+            efac,
+            equad2,
+            ecorr2,
+            d,
+            sqrt_dinv,
+            wa,
+            wr,
+            sum_dinv,
+            fold,
+            v,
+            gram,
+            tnr,
+        })
+    }
+
+    /// T^T N^-1 T, T^T N^-1 r, r^T N^-1 r and ln det N at `theta`.
+    fn white_products(&self, theta: &[f64]) -> Result<(Array2<f64>, Array1<f64>, f64, f64)> {
+        self.check_theta(theta)?;
+        let w = self.white(theta)?;
+        let es: f64 = w
+            .fold
+            .iter()
+            .map(|(idx, sb)| {
+                let x = sb * idx.iter().map(|&i| w.sqrt_dinv[i] * w.wr[i]).sum::<f64>();
+                x * x
+            })
+            .sum();
+        let rnr = w.wr.dot(&w.wr) - es;
+        let log_det_n = self.log_det_n(&w.d, &w.sum_dinv, &w.ecorr2);
+        Ok((w.gram, w.tnr, rnr, log_det_n))
+    }
+
+    /// ln det N: the diagonal and, per ECORR epoch, ln(1 + c^2 sum D^-1) (matrix determinant
+    /// lemma).
+    fn log_det_n(&self, d: &[f64], sum_dinv: &[f64], ecorr2: &[f64]) -> f64 {
+        d.iter().map(|v| v.ln()).sum::<f64>()
+            + self
+                .epochs
+                .iter()
+                .zip(sum_dinv)
+                .map(|((b, _), s)| (ecorr2[*b] * s).ln_1p())
+                .sum::<f64>()
+    }
+
+    fn check_theta(&self, theta: &[f64]) -> Result<()> {
+        if theta.len() != self.params.len() {
+            return Err(Error::setting(
+                "parameters",
+                format!(
+                    "pulsar {}: expected {} hyperparameters, got {}",
+                    self.label,
+                    self.params.len(),
+                    theta.len()
+                ),
+            ));
         }
-        if let (Some(block), Some(i)) = (&self.dm_block, self.dm_index) {
-            for (j, &f) in block.freqs.iter().enumerate() {
-                let p = power_law_phi(10f64.powf(2.0 * theta[i]), theta[i + 1], f, self.t_span);
-                phi[block.start + 2 * j] = p;
-                phi[block.start + 2 * j + 1] = p;
-            }
+        if let Some(i) = theta.iter().position(|v| !v.is_finite()) {
+            return Err(Error::NonFinite {
+                what: format!(
+                    "the likelihood of pulsar {} (parameter {} is {})",
+                    self.label, self.params[i].name, theta[i]
+                ),
+            });
         }
-        let binv: Vec<f64> = phi.iter().map(|p| 1.0 / p).collect();
-        if phi[self.n_m..].iter().any(|p| !(p.is_finite() && *p > 0.0)) {
-            return Err(non_finite("power-law prior variance not positive"));
-        }
+        Ok(())
+    }
+
+    fn evaluate(&self, theta: &[f64], grad: Option<&mut [f64]>) -> Result<f64> {
+        self.check_theta(theta)?;
+        let non_finite = |what: &str| Error::NonFinite {
+            what: format!("the likelihood of pulsar {} ({what})", self.label),
+        };
+        let (n, cols) = self.t.dim();
+
+        let White {
+            efac,
+            equad2,
+            ecorr2,
+            d,
+            sqrt_dinv,
+            wa,
+            wr,
+            sum_dinv,
+            fold,
+            v,
+            gram,
+            tnr,
+        } = self.white(theta)?;
+        // Sum over an epoch of D^-1/2 x, times beta^(1/2), for a whitened vector x.
+        let epoch_sums = |x: &Array1<f64>| -> Array1<f64> {
+            fold.iter()
+                .map(|(idx, sb)| sb * idx.iter().map(|&i| sqrt_dinv[i] * x[i]).sum::<f64>())
+                .collect()
+        };
+
+        let (phi, binv, red_share, common_share) = self.prior_variances(theta)?;
 
         // S = B^-1 + T^T N^-1 T, a = S^-1 T^T N^-1 r.
         let mut s = gram.clone();
@@ -486,13 +759,7 @@ impl PulsarLikelihood {
         let es = epoch_sums(&e);
         let chi2 =
             e.dot(&e) - es.dot(&es) + (self.n_m..cols).map(|c| binv[c] * a[c] * a[c]).sum::<f64>();
-        let log_det_n: f64 = d.iter().map(|v| v.ln()).sum::<f64>()
-            + self
-                .epochs
-                .iter()
-                .zip(&sum_dinv)
-                .map(|((b, _), s)| (ecorr2[*b] * s).ln_1p())
-                .sum::<f64>();
+        let log_det_n = self.log_det_n(&d, &sum_dinv, &ecorr2);
         let log_det_b: f64 = phi[self.n_m..].iter().map(|p| p.ln()).sum();
         let lnl = -0.5 * (chi2 + log_det_n + log_det_b + chol.log_det())
             - 0.5 * (n - self.n_m) as f64 * (2.0 * PI).ln();
@@ -528,8 +795,7 @@ impl PulsarLikelihood {
                 sqrt_dinv[i] * (e[i] - corr)
             })
             .collect();
-        // N^-1 T (n x cols), then Q = L^-1 D^-1 (N^-1 T)^T so that T^T N^-1 S^-1 N^-1 T = Q^T Q
-        // and diag(P)_i = (N^-1)_ii - |Q e_i|^2.
+        // N^-1 T (n x cols); diag(P)_i = (N^-1)_ii - (N^-1 T S^-1 T^T N^-1)_ii.
         let mut nit = wa;
         for (i, mut row) in nit.rows_mut().into_iter().enumerate() {
             let k = epoch_of[i];
@@ -538,7 +804,10 @@ impl PulsarLikelihood {
             }
             row *= sqrt_dinv[i];
         }
-        let q = chol.whiten(&nit.t().to_owned());
+        // With X = N^-1 T (n x cols, rows contiguous) and Y = X S^-1 (one dgemm),
+        // (N^-1 T S^-1 T^T N^-1)_ii = X_i . Y_i: row by row, no transposed copy.
+        let s_inv = w_half.t().dot(&w_half);
+        let y = nit.dot(&s_inv);
         let diag_p: Vec<f64> = (0..n)
             .map(|i| {
                 let k = epoch_of[i];
@@ -548,8 +817,7 @@ impl PulsarLikelihood {
                     fold[k].1 * fold[k].1
                 };
                 let di = sqrt_dinv[i] * sqrt_dinv[i];
-                let qi = q.column(i);
-                di - beta * di * di - qi.dot(&qi)
+                di - beta * di * di - nit.row(i).dot(&y.row(i))
             })
             .collect();
 
@@ -564,23 +832,25 @@ impl PulsarLikelihood {
                 grad[k] += 0.5 * 2.0 * LN_10 * equad2[b] * h;
             }
         }
-        // ECORR: dC = 2 ln 10 c^2 1 1^T per epoch; 1^T P 1 = s/(1 + c^2 s) - |Q 1|^2.
+        // ECORR: dC = 2 ln 10 c^2 1 1^T per epoch; 1^T P 1 = s/(1 + c^2 s) - 1^T N^-1 T S^-1 T^T N^-1 1.
         for (k, (b, idx)) in self.epochs.iter().enumerate() {
             let Some(g) = self.white_index[*b].ecorr else {
                 continue;
             };
             let c2 = ecorr2[*b];
             let one_pr: f64 = idx.iter().map(|&i| pr[i]).sum();
-            let mut q1 = Array1::<f64>::zeros(cols);
+            // (1^T X) S^-1 (X^T 1) = (sum of X rows) . (sum of Y rows) over the epoch.
+            let mut x1 = Array1::<f64>::zeros(cols);
+            let mut y1 = Array1::<f64>::zeros(cols);
             for &i in idx {
-                q1 += &q.column(i);
+                x1 += &nit.row(i);
+                y1 += &y.row(i);
             }
-            let one_p_one = sum_dinv[k] / (1.0 + c2 * sum_dinv[k]) - q1.dot(&q1);
+            let one_p_one = sum_dinv[k] / (1.0 + c2 * sum_dinv[k]) - x1.dot(&y1);
             grad[g] += 0.5 * 2.0 * LN_10 * c2 * (one_pr * one_pr - one_p_one);
         }
 
         // Power laws: d ln L / d ln phi_j = 1/2 [a_j^2 / phi_j - (S^-1 T^T N^-1 T)_jj].
-        let s_inv = w_half.t().dot(&w_half);
         let h: Vec<f64> = (0..cols)
             .map(|c| {
                 if c < self.n_m {
@@ -590,37 +860,7 @@ impl PulsarLikelihood {
                 }
             })
             .collect();
-        let mut power_law = |block: &Block, index: usize, share: &dyn Fn(usize, usize) -> f64| {
-            for (j, &f) in block.freqs.iter().enumerate() {
-                let dln_gamma = (F_YR / f).ln();
-                for c in [block.start + 2 * j, block.start + 2 * j + 1] {
-                    let w = share(j, c) * h[c];
-                    grad[index] += 2.0 * LN_10 * w;
-                    grad[index + 1] += dln_gamma * w;
-                }
-            }
-        };
-        if let (Some(block), Some(i)) = (&self.red_block, self.red_index) {
-            power_law(block, i, &|j, c| {
-                if j < self.k_red {
-                    red_share[c]
-                } else {
-                    0.0
-                }
-            });
-        }
-        if let (Some(block), Some(i)) = (&self.red_block, self.common_index) {
-            power_law(block, i, &|j, c| {
-                if j < self.k_common {
-                    common_share[c]
-                } else {
-                    0.0
-                }
-            });
-        }
-        if let (Some(block), Some(i)) = (&self.dm_block, self.dm_index) {
-            power_law(block, i, &|_, _| 1.0);
-        }
+        self.power_law_gradient(&h, &red_share, &common_share, grad);
         if let Some(k) = grad.iter().position(|g| !g.is_finite()) {
             return Err(non_finite(&format!("gradient in {}", self.params[k].name)));
         }

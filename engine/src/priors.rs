@@ -13,12 +13,13 @@
 //!
 //! [ranges]                     # uniform priors, [low, high]
 //! efac = [0.01, 10.0]
-//! log10_equad_s = [-9.0, -5.0]
+//! equad_log10_s = [-9.0, -5.0]  # the keys are the noise.toml names
+//! red.log10_amplitude = [-20.0, -11.0]
 //!
 //! [pulsar.P03]                 # per-pulsar choices, same keys as [components]
 //! dm = true
 //! ecorr_backends = ["KRK-L"]
-//! ranges = { red_log10_amplitude = [-18.0, -12.0] }
+//! ranges = { red = { log10_amplitude = [-18.0, -12.0] } }
 //!
 //! [common]                     # optional common process in every pulsar's auto-power
 //! process = "fixed"            # "none", "fixed" or "free"
@@ -31,7 +32,9 @@ use crate::error::{Error, Result};
 use crate::likelihood::{
     BackendTerms, CommonSpec, CommonTerm, Components, Hyper, PulsarLikelihood,
 };
-use crate::noise::toml_error;
+use crate::noise::{
+    toml_error, EFAC_RANGE, LOG10_AMPLITUDE_RANGE, SPECTRAL_INDEX_RANGE, WHITE_LOG10_S_RANGE,
+};
 use crate::release::{Pulsar, Release};
 use crate::spectrum::PowerLaw;
 use serde::{Deserialize, Serialize};
@@ -81,43 +84,50 @@ pub struct ComponentChoice {
     pub dm_frequencies: Option<usize>,
 }
 
-/// Uniform prior ranges [low, high]; absent keys fall back as for [`ComponentChoice`].
+/// The ranges of a power law's two parameters (`[ranges] red.log10_amplitude = [...]`).
+#[derive(Clone, Copy, Debug, Default, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct PowerLawRanges {
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub log10_amplitude: Option<[f64; 2]>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub spectral_index: Option<[f64; 2]>,
+}
+
+/// Uniform prior ranges [low, high], keyed by the `noise.toml` names of the parameters (a
+/// white-noise key covers every backend); absent keys fall back as for [`ComponentChoice`].
 #[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct Ranges {
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub efac: Option<[f64; 2]>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub log10_equad_s: Option<[f64; 2]>,
+    pub equad_log10_s: Option<[f64; 2]>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub log10_ecorr_s: Option<[f64; 2]>,
+    pub ecorr_log10_s: Option<[f64; 2]>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub red_log10_amplitude: Option<[f64; 2]>,
+    pub red: Option<PowerLawRanges>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub red_spectral_index: Option<[f64; 2]>,
+    pub dm: Option<PowerLawRanges>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub dm_log10_amplitude: Option<[f64; 2]>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub dm_spectral_index: Option<[f64; 2]>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub common_log10_amplitude: Option<[f64; 2]>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub common_spectral_index: Option<[f64; 2]>,
+    pub common: Option<PowerLawRanges>,
 }
 
 impl Ranges {
-    /// The named ranges, in file order, for checks and lookups.
+    /// The named ranges (dotted `noise.toml` names), in file order, for checks and lookups.
     fn entries(&self) -> [(&'static str, Option<[f64; 2]>); 9] {
+        let amp = |p: &Option<PowerLawRanges>| p.and_then(|p| p.log10_amplitude);
+        let idx = |p: &Option<PowerLawRanges>| p.and_then(|p| p.spectral_index);
         [
             ("efac", self.efac),
-            ("log10_equad_s", self.log10_equad_s),
-            ("log10_ecorr_s", self.log10_ecorr_s),
-            ("red_log10_amplitude", self.red_log10_amplitude),
-            ("red_spectral_index", self.red_spectral_index),
-            ("dm_log10_amplitude", self.dm_log10_amplitude),
-            ("dm_spectral_index", self.dm_spectral_index),
-            ("common_log10_amplitude", self.common_log10_amplitude),
-            ("common_spectral_index", self.common_spectral_index),
+            ("equad_log10_s", self.equad_log10_s),
+            ("ecorr_log10_s", self.ecorr_log10_s),
+            ("red.log10_amplitude", amp(&self.red)),
+            ("red.spectral_index", idx(&self.red)),
+            ("dm.log10_amplitude", amp(&self.dm)),
+            ("dm.spectral_index", idx(&self.dm)),
+            ("common.log10_amplitude", amp(&self.common)),
+            ("common.spectral_index", idx(&self.common)),
         ]
     }
 
@@ -243,6 +253,8 @@ impl PriorFile {
     fn error(&self, field: &str, message: impl Into<String>) -> Error {
         let parts: Vec<&str> = field.split('.').collect();
         let key = parts.last().copied().unwrap_or(field);
+        // A dotted range key (`red.log10_amplitude`) may be written as such on its line.
+        let dotted = (parts.len() >= 2).then(|| parts[parts.len() - 2..].join("."));
         // The table header: [pulsar.LABEL] for per-pulsar fields, else the first component.
         let header = if parts.first() == Some(&"pulsar") && parts.len() >= 2 {
             format!("[pulsar.{}]", parts[1])
@@ -253,7 +265,9 @@ impl PriorFile {
         let start = lines.iter().position(|l| l.trim() == header);
         let is_key = |l: &str| {
             let l = l.trim_start();
-            l.starts_with(key) && l[key.len()..].trim_start().starts_with('=')
+            let starts = |k: &str| l.starts_with(k) && l[k.len()..].trim_start().starts_with('=');
+            starts(key)
+                || dotted.as_deref().is_some_and(starts)
                 || l.contains(&format!("{{ {key} "))
                 || l.contains(&format!(", {key} "))
         };
@@ -293,10 +307,22 @@ impl PriorFile {
                         format!("EFAC range must be positive, got [{lo}, {hi}]"),
                     ));
                 }
-                if key.ends_with("_s") && hi > 0.0 {
+                // Every value of the range must be one noise.toml accepts (noise.rs), so the
+                // written model and chain tables are readable.
+                let (allowed, open_low) = match key {
+                    "efac" => (EFAC_RANGE, true),
+                    "equad_log10_s" | "ecorr_log10_s" => (WHITE_LOG10_S_RANGE, false),
+                    k if k.ends_with("log10_amplitude") => (LOG10_AMPLITUDE_RANGE, false),
+                    _ => (SPECTRAL_INDEX_RANGE, false),
+                };
+                let [a, b] = allowed;
+                if lo < a || hi > b || (open_low && lo <= a) {
                     return Err(self.error(
                         &field,
-                        format!("log10 of seconds must be <= 0, got [{lo}, {hi}]"),
+                        format!(
+                            "range [{lo}, {hi}] leaves the allowed {}{a}, {b}] of noise.toml",
+                            if open_low { "(" } else { "[" }
+                        ),
                     ));
                 }
             }
@@ -477,17 +503,17 @@ impl PriorFile {
             .into_iter()
             .map(|kind| match kind {
                 Hyper::Efac(_) => range("efac", DEFAULT_EFAC),
-                Hyper::Log10Equad(_) => range("log10_equad_s", DEFAULT_LOG10_WHITE_S),
-                Hyper::Log10Ecorr(_) => range("log10_ecorr_s", DEFAULT_LOG10_WHITE_S),
-                Hyper::RedLog10Amplitude => range("red_log10_amplitude", DEFAULT_LOG10_AMPLITUDE),
-                Hyper::RedSpectralIndex => range("red_spectral_index", DEFAULT_SPECTRAL_INDEX),
-                Hyper::DmLog10Amplitude => range("dm_log10_amplitude", DEFAULT_LOG10_AMPLITUDE),
-                Hyper::DmSpectralIndex => range("dm_spectral_index", DEFAULT_SPECTRAL_INDEX),
+                Hyper::Log10Equad(_) => range("equad_log10_s", DEFAULT_LOG10_WHITE_S),
+                Hyper::Log10Ecorr(_) => range("ecorr_log10_s", DEFAULT_LOG10_WHITE_S),
+                Hyper::RedLog10Amplitude => range("red.log10_amplitude", DEFAULT_LOG10_AMPLITUDE),
+                Hyper::RedSpectralIndex => range("red.spectral_index", DEFAULT_SPECTRAL_INDEX),
+                Hyper::DmLog10Amplitude => range("dm.log10_amplitude", DEFAULT_LOG10_AMPLITUDE),
+                Hyper::DmSpectralIndex => range("dm.spectral_index", DEFAULT_SPECTRAL_INDEX),
                 Hyper::CommonLog10Amplitude => {
-                    range("common_log10_amplitude", DEFAULT_LOG10_AMPLITUDE)
+                    range("common.log10_amplitude", DEFAULT_LOG10_AMPLITUDE)
                 }
                 Hyper::CommonSpectralIndex => {
-                    range("common_spectral_index", DEFAULT_SPECTRAL_INDEX)
+                    range("common.spectral_index", DEFAULT_SPECTRAL_INDEX)
                 }
             })
             .collect();
@@ -563,7 +589,7 @@ mod tests {
 
     #[test]
     fn per_pulsar_tables_override_the_defaults() {
-        let text = "[components]\necorr_backends = \"none\"\nred = false\n\n[pulsar.P01]\ndm = true\ndm_frequencies = 12\necorr_backends = [\"B\"]\nranges = { dm_spectral_index = [1.0, 5.0] }\n";
+        let text = "[components]\necorr_backends = \"none\"\nred = false\n\n[pulsar.P01]\ndm = true\ndm_frequencies = 12\necorr_backends = [\"B\"]\nranges = { dm = { spectral_index = [1.0, 5.0] } }\n";
         let f = PriorFile::parse(text, Path::new("priors.toml")).unwrap();
         let prior = f.pulsar(&pulsar(&["A", "B"])).unwrap();
         assert_eq!(prior.components.red, None);
@@ -583,12 +609,25 @@ mod tests {
         assert!(e.contains("priors.toml line 2, field ranges.efac"), "{e}");
         assert!(e.contains("empty or inverted"), "{e}");
         let e = PriorFile::parse(
-            "[ranges]\nred_spectral_index = [3.0, 3.0]\n",
+            "[ranges]\nefac = [0.5, 2.0]\nred.spectral_index = [3.0, 3.0]\n",
             Path::new("p.toml"),
         )
         .unwrap_err()
         .to_string();
-        assert!(e.contains("field ranges.red_spectral_index"), "{e}");
+        assert!(
+            e.contains("p.toml line 3, field ranges.red.spectral_index"),
+            "{e}"
+        );
+        let e = PriorFile::parse(
+            "[ranges]\nlog10_equad_s = [-8.0, -6.0]\n",
+            Path::new("p.toml"),
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(
+            e.contains("p.toml line 2") && e.contains("unknown field"),
+            "{e}"
+        );
         let f = PriorFile::parse(
             "[pulsar.P01]\necorr_backends = [\"C\"]\n",
             Path::new("p.toml"),

@@ -1329,3 +1329,168 @@ fn common_process_grids_priors_and_degenerate_noise_are_refused() {
     fs::remove_dir_all(&dir).ok();
     t.finish("common process");
 }
+
+/// `ptacorr noise`: priors files, sampler settings and degenerate models (issue 11.8). Each
+/// case is judged as above; nothing is computed before the check that refuses it.
+#[test]
+fn noise_priors_sampler_settings_and_degenerate_models() {
+    use ptacorr::noise_fit::sample::SampleMode;
+    use ptacorr::noise_fit::{fit_release, NoiseSettings};
+    use ptacorr::priors::PriorFile;
+    use ptacorr::sampler::SamplerSettings;
+    let dir = temp_dir("bad-noise");
+    let rel = simulate_release(SCENARIO, &dir.join("rel"), 3);
+    let path = Path::new("priors.toml");
+    let mut t = Tally(Vec::new());
+    let priors_cases: Vec<(&str, &str, Vec<&str>)> = vec![
+        (
+            "empty range",
+            "[ranges]\nefac = [1.0, 1.0]\n",
+            vec!["priors.toml line 2", "ranges.efac", "empty or inverted"],
+        ),
+        (
+            "inverted dotted range",
+            "[ranges]\nefac = [0.5, 2.0]\nred.log10_amplitude = [-12.0, -16.0]\n",
+            vec![
+                "priors.toml line 3",
+                "ranges.red.log10_amplitude",
+                "inverted",
+            ],
+        ),
+        (
+            "inverted inline range of one pulsar",
+            "[pulsar.P01]\nranges = { dm = { spectral_index = [5.0, 1.0] } }\n",
+            vec!["priors.toml line 2", "pulsar.P01.ranges.dm.spectral_index"],
+        ),
+        (
+            "range outside noise.toml",
+            "[ranges]\nred.spectral_index = [0.0, 12.0]\n",
+            vec!["ranges.red.spectral_index", "[0, 10]"],
+        ),
+        (
+            "nan range",
+            "[ranges]\nequad_log10_s = [nan, -6.0]\n",
+            vec!["priors.toml line 2", "ranges.equad_log10_s", "not finite"],
+        ),
+        (
+            "old key name",
+            "[ranges]\nlog10_equad_s = [-8.0, -6.0]\n",
+            vec!["priors.toml line 2", "unknown field"],
+        ),
+        (
+            "unknown process",
+            "[common]\nprocess = \"maybe\"\n",
+            vec!["common.process", "\"maybe\""],
+        ),
+    ];
+    for (name, text, expect) in priors_cases {
+        t.add(
+            name,
+            judge(
+                || PriorFile::parse(text, path).map_err(|e| e.to_string()),
+                &expect,
+            ),
+        );
+    }
+    let release_cases: Vec<(&str, &str, Vec<&str>)> = vec![
+        (
+            "ecorr for a backend the pulsar lacks",
+            "[pulsar.P02]\necorr_backends = [\"NOPE\"]\n",
+            vec![
+                "priors.toml line 2",
+                "pulsar.P02.ecorr_backends",
+                "no backend \"NOPE\"",
+            ],
+        ),
+        (
+            "ecorr for a backend no pulsar has",
+            "[components]\necorr_backends = [\"NOPE\"]\n",
+            vec!["components.ecorr_backends", "\"NOPE\""],
+        ),
+        (
+            "table of a pulsar not in the release",
+            "[pulsar.P99]\nred = false\n",
+            vec!["pulsar.P99", "not in the release"],
+        ),
+    ];
+    for (name, text, expect) in release_cases {
+        t.add(
+            name,
+            judge(
+                || {
+                    let f = PriorFile::parse(text, path).map_err(|e| e.to_string())?;
+                    f.check_release(&rel).map_err(|e| e.to_string())
+                },
+                &expect,
+            ),
+        );
+    }
+    let defaults = PriorFile::defaults();
+    let settings_cases: Vec<(&str, SamplerSettings, Vec<&str>)> = vec![
+        (
+            "one chain",
+            SamplerSettings {
+                chains: 1,
+                ..SamplerSettings::default()
+            },
+            vec!["chains", "[2, 64]"],
+        ),
+        (
+            "no draws",
+            SamplerSettings {
+                draws: 0,
+                ..SamplerSettings::default()
+            },
+            vec!["draws"],
+        ),
+        (
+            "target acceptance 1",
+            SamplerSettings {
+                target_accept: 1.0,
+                ..SamplerSettings::default()
+            },
+            vec!["target-accept"],
+        ),
+    ];
+    for (name, sampler, expect) in settings_cases {
+        let settings = NoiseSettings {
+            sampler,
+            ..NoiseSettings::default()
+        };
+        t.add(
+            name,
+            judge(
+                || fit_release(&rel, &defaults, &settings, &|| {}).map_err(|e| e.to_string()),
+                &expect,
+            ),
+        );
+    }
+    // A degenerate model: two identical timing-model columns make S singular at every point;
+    // the run stops naming the pulsar (no NaN reaches an output).
+    let n = rel.pulsars[0].n_toa();
+    let csv: String = std::iter::once("offset,offset_again,f0\n".to_string())
+        .chain((0..n).map(|i| format!("1.0,1.0,{i}.0\n")))
+        .collect();
+    fs::write(dir.join("rel/dm.csv"), csv).unwrap();
+    edit(&dir.join("rel/release.toml"), |t| {
+        t.replacen(
+            "residuals = \"residuals/P01.csv\"",
+            "residuals = \"residuals/P01.csv\"\ndesign_matrix = \"dm.csv\"",
+            1,
+        )
+    });
+    let degenerate = read_release(&dir.join("rel")).unwrap();
+    let map_only = NoiseSettings {
+        mode: SampleMode::MapOnly,
+        ..NoiseSettings::default()
+    };
+    t.add(
+        "degenerate timing model",
+        judge(
+            || fit_release(&degenerate, &defaults, &map_only, &|| {}).map_err(|e| e.to_string()),
+            &["pulsar P01"],
+        ),
+    );
+    fs::remove_dir_all(&dir).ok();
+    t.finish("noise priors, sampler settings and degenerate models");
+}

@@ -1,32 +1,51 @@
 //! Per-pulsar Bayesian noise estimation (`ptacorr noise`; docs/noise-estimation.md): for every
 //! pulsar of a release, the likelihood of [`crate::likelihood`] under the priors of
-//! [`crate::priors`], its maximum a posteriori point ([`map`]), and the output files: a
-//! `noise.toml` that `correlate` reads, a per-parameter estimates table, a per-pulsar
-//! diagnostics table, the priors used and a provenance record.
+//! [`crate::priors`], its maximum a posteriori point ([`map`]), posterior draws by NUTS
+//! ([`sample`]), and the output files: a `noise.toml` that `correlate` reads (posterior medians
+//! or MAP values), the chain table of every pulsar, a per-parameter estimates table, a
+//! per-pulsar diagnostics table, the priors used and a provenance record.
 
 pub mod map;
 pub mod posterior;
+pub mod sample;
 
 use crate::error::{Error, Result};
 use crate::likelihood::{CommonTerm, PulsarLikelihood};
 use crate::noise::{NoiseModel, PulsarNoise, RedProcess};
-use crate::output::{write_atomic, write_json};
+use crate::output::{check_manifest, OutputSet};
 use crate::priors::{PriorFile, PulsarPrior};
 use crate::reduce::FrequencyGrid;
 use crate::release::{Pulsar, Release};
+use crate::sampler::SamplerSettings;
 use crate::shard::Shard;
 use map::{maximum_a_posteriori, MapResult, MapSettings};
 use posterior::Posterior;
 use rayon::prelude::*;
+use sample::{sample_pulsar, Convergence, PulsarSamples, SampleMode};
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
 use std::path::Path;
+
+/// Which values `noise.toml` receives.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize, Default)]
+#[serde(rename_all = "kebab-case")]
+pub enum ModelValues {
+    /// Posterior medians of the sampled parameters (MAP for the others).
+    #[default]
+    Median,
+    /// MAP values.
+    Map,
+}
 
 /// Settings of a noise run.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct NoiseSettings {
     pub seed: u64,
     pub map: MapSettings,
+    pub mode: SampleMode,
+    pub sampler: SamplerSettings,
+    pub convergence: Convergence,
+    pub values: ModelValues,
     /// The pulsars of this shard (contiguous block of the release's order); recorded in the
     /// provenance as shard_index/shard_count, not among the settings that shards must share.
     #[serde(skip)]
@@ -38,6 +57,10 @@ impl Default for NoiseSettings {
         NoiseSettings {
             seed: 1,
             map: MapSettings::default(),
+            mode: SampleMode::Full,
+            sampler: SamplerSettings::default(),
+            convergence: Convergence::default(),
+            values: ModelValues::Median,
             shard: Shard::ALL,
         }
     }
@@ -54,6 +77,20 @@ pub struct Estimate {
     pub prior_high: f64,
     /// The MAP sits within 1e-3 of the prior range's width from an edge.
     pub map_at_edge: bool,
+    /// Sampled (false: held at its MAP, or no sampling).
+    pub sampled: bool,
+    /// Posterior summaries (empty when not sampled).
+    pub median: Option<f64>,
+    pub mean: Option<f64>,
+    pub sd: Option<f64>,
+    pub q05: Option<f64>,
+    pub q16: Option<f64>,
+    pub q84: Option<f64>,
+    pub q95: Option<f64>,
+    /// Split R-hat (rank-normalised, folded; Vehtari et al. 2021).
+    pub rhat: Option<f64>,
+    pub ess_bulk: Option<f64>,
+    pub ess_tail: Option<f64>,
 }
 
 /// The fit of one pulsar.
@@ -64,8 +101,10 @@ pub struct PulsarFit {
     pub parameters: Vec<String>,
     pub bounds: Vec<[f64; 2]>,
     pub map: MapResult,
-    /// The noise model at the MAP, in the types of `noise.toml`.
+    /// The noise model written to `noise.toml` (posterior medians or MAP, per the settings).
     pub noise: PulsarNoise,
+    /// Posterior draws (absent without sampling).
+    pub samples: Option<PulsarSamples>,
 }
 
 /// One row of `diagnostics.csv`.
@@ -80,6 +119,22 @@ pub struct DiagnosticsRow {
     pub map_agreeing_starts: usize,
     pub map_iterations: u64,
     pub map_stop_reason: String,
+    /// "map-only", "full" or "fixed-white".
+    pub mode: String,
+    pub sampled_parameters: usize,
+    pub chains: Option<usize>,
+    pub draws_per_chain: Option<u64>,
+    pub divergences: Option<usize>,
+    pub warmup_divergences: Option<usize>,
+    pub max_depth_hits: Option<usize>,
+    pub gradient_evaluations: Option<u64>,
+    pub max_rhat: Option<f64>,
+    pub min_ess_bulk: Option<f64>,
+    pub min_ess_tail: Option<f64>,
+    /// Every sampled parameter has R-hat and bulk/tail ESS within the thresholds.
+    pub posterior_converged: Option<bool>,
+    /// Divergences above the allowed share of the kept draws.
+    pub posterior_diverging: Option<bool>,
 }
 
 impl PulsarFit {
@@ -89,20 +144,43 @@ impl PulsarFit {
             .iter()
             .zip(&self.bounds)
             .zip(&self.map.values)
-            .map(|((name, &[lo, hi]), &v)| Estimate {
-                pulsar: self.label.clone(),
-                parameter: name.clone(),
-                map: v,
-                prior_low: lo,
-                prior_high: hi,
-                map_at_edge: (v - lo).min(hi - v) < 1e-3 * (hi - lo),
+            .enumerate()
+            .map(|(k, ((name, &[lo, hi]), &v))| {
+                let summary = self.samples.as_ref().and_then(|s| {
+                    s.indices
+                        .iter()
+                        .position(|&i| i == k)
+                        .map(|j| s.summaries[j].clone())
+                });
+                let get =
+                    |f: fn(&crate::sampler::diagnostics::Summary) -> f64| summary.as_ref().map(f);
+                Estimate {
+                    pulsar: self.label.clone(),
+                    parameter: name.clone(),
+                    map: v,
+                    prior_low: lo,
+                    prior_high: hi,
+                    map_at_edge: (v - lo).min(hi - v) < 1e-3 * (hi - lo),
+                    sampled: summary.is_some(),
+                    median: get(|s| s.median),
+                    mean: get(|s| s.mean),
+                    sd: get(|s| s.sd),
+                    q05: get(|s| s.q05),
+                    q16: get(|s| s.q16),
+                    q84: get(|s| s.q84),
+                    q95: get(|s| s.q95),
+                    rhat: get(|s| s.rhat),
+                    ess_bulk: get(|s| s.ess_bulk),
+                    ess_tail: get(|s| s.ess_tail),
+                }
             })
             .collect()
     }
 
     /// The diagnostics row of this pulsar.
-    pub fn diagnostics(&self) -> DiagnosticsRow {
+    pub fn diagnostics(&self, mode: SampleMode) -> DiagnosticsRow {
         let best = &self.map.runs[self.map.best];
+        let s = self.samples.as_ref();
         DiagnosticsRow {
             pulsar: self.label.clone(),
             n_toa: self.n_toa,
@@ -113,22 +191,133 @@ impl PulsarFit {
             map_agreeing_starts: self.map.agreeing_runs,
             map_iterations: best.iterations,
             map_stop_reason: best.reason.clone(),
+            mode: mode_name(mode).to_string(),
+            sampled_parameters: s.map_or(0, |s| s.parameters.len()),
+            chains: s.map(|s| s.chains.len()),
+            draws_per_chain: s.map(|s| s.chains.first().map_or(0, |c| c.len() as u64)),
+            divergences: s.map(|s| s.divergences),
+            warmup_divergences: s.map(|s| s.warmup_divergences),
+            max_depth_hits: s.map(|s| s.max_depth_hits),
+            gradient_evaluations: s.map(|s| s.gradient_evaluations),
+            max_rhat: s.map(PulsarSamples::max_rhat),
+            min_ess_bulk: s.map(PulsarSamples::min_ess_bulk),
+            min_ess_tail: s.map(PulsarSamples::min_ess_tail),
+            posterior_converged: s.map(|s| s.converged),
+            posterior_diverging: s.map(|s| s.diverging),
         }
+    }
+
+    /// Warnings about this pulsar's fit (MAP not converged, chains not converged, divergences).
+    pub fn warnings(&self) -> Vec<String> {
+        let mut w = Vec::new();
+        if !self.map.converged {
+            w.push(format!(
+                "pulsar {}: the MAP search did not converge ({} of {} starts agree)",
+                self.label,
+                self.map.agreeing_runs,
+                self.map.runs.len()
+            ));
+        }
+        if let Some(s) = &self.samples {
+            if !s.converged {
+                let worst = s
+                    .summaries
+                    .iter()
+                    .zip(&s.parameters)
+                    .max_by(|a, b| {
+                        let bad = |x: &crate::sampler::diagnostics::Summary| {
+                            if x.rhat.is_nan() {
+                                f64::INFINITY
+                            } else {
+                                x.rhat
+                            }
+                        };
+                        bad(a.0).total_cmp(&bad(b.0))
+                    })
+                    .map(|(x, n)| {
+                        format!(
+                            "{n}: R-hat {:.3}, bulk ESS {:.0}, tail ESS {:.0}",
+                            x.rhat, x.ess_bulk, x.ess_tail
+                        )
+                    })
+                    .unwrap_or_default();
+                w.push(format!(
+                    "pulsar {}: the chains have NOT converged (worst {worst}); do not use its posterior before running longer chains",
+                    self.label
+                ));
+            }
+            if s.diverging {
+                w.push(format!(
+                    "pulsar {}: {} divergent transitions in {} draws; the posterior may be improper or badly scaled and its summaries biased",
+                    self.label,
+                    s.divergences,
+                    s.chains.iter().map(|c| c.len()).sum::<usize>()
+                ));
+            }
+        }
+        w
     }
 }
 
-/// Fit one pulsar (the `index` of the pulsar in the release seeds its starting points).
+/// The name of a sampling mode in files.
+pub fn mode_name(mode: SampleMode) -> &'static str {
+    match mode {
+        SampleMode::MapOnly => "map-only",
+        SampleMode::Full => "full",
+        SampleMode::FixedWhite => "fixed-white",
+    }
+}
+
+/// Fit one pulsar: MAP, then (unless `MapOnly`) posterior draws started at the MAP. The
+/// `index` of the pulsar in the release seeds its starting points and chains; `chain_done` is
+/// called after each chain.
 pub fn fit_pulsar(
     p: &Pulsar,
     prior: &PulsarPrior,
     grid: &FrequencyGrid,
     settings: &NoiseSettings,
     index: u64,
+    chain_done: &(dyn Fn(usize) + Sync),
 ) -> Result<PulsarFit> {
     let lik = PulsarLikelihood::new(p, &prior.components, grid)?;
     let post = Posterior::new(&lik, prior)?;
     let map = maximum_a_posteriori(&post, &settings.map, settings.seed, index)?;
-    let theta = post.theta(&post.unconstrained(&map.values));
+    let theta_map = post.theta(&post.unconstrained(&map.values));
+    let samples = match settings.mode {
+        SampleMode::MapOnly => None,
+        SampleMode::Full => Some(sample_pulsar(
+            &post,
+            &map.values,
+            &settings.sampler,
+            &settings.convergence,
+            settings.seed,
+            index,
+            chain_done,
+        )?),
+        SampleMode::FixedWhite => {
+            let fixed = Posterior::with_fixed_white(&lik, prior, &theta_map)?;
+            if fixed.dim() == 0 {
+                None
+            } else {
+                let start: Vec<f64> = fixed.free().iter().map(|&i| theta_map[i]).collect();
+                Some(sample_pulsar(
+                    &fixed,
+                    &start,
+                    &settings.sampler,
+                    &settings.convergence,
+                    settings.seed,
+                    index,
+                    chain_done,
+                )?)
+            }
+        }
+    };
+    let mut theta = theta_map.clone();
+    if let (ModelValues::Median, Some(s)) = (settings.values, &samples) {
+        for (&i, summary) in s.indices.iter().zip(&s.summaries) {
+            theta[i] = summary.median;
+        }
+    }
     let noise = lik.noise_at(&theta);
     Ok(PulsarFit {
         label: p.label.clone(),
@@ -137,7 +326,17 @@ pub fn fit_pulsar(
         bounds: prior.bounds.clone(),
         noise,
         map,
+        samples,
     })
+}
+
+/// Units of progress of a run over `n_pulsars`: one per chain, or one per pulsar without
+/// sampling.
+pub fn progress_units(n_pulsars: u64, settings: &NoiseSettings) -> u64 {
+    match settings.mode {
+        SampleMode::MapOnly => n_pulsars,
+        _ => n_pulsars * settings.sampler.chains as u64,
+    }
 }
 
 /// The result of a noise run over the pulsars of one shard.
@@ -166,20 +365,39 @@ pub struct NoiseProvenance {
     /// Labels of the pulsars fitted here, in release order.
     pub pulsars: Vec<String>,
     pub n_pulsars_in_release: usize,
+    /// Warnings about the release (release.rs).
+    #[serde(default)]
+    pub warnings: Vec<String>,
+    /// Warnings about the fits (not converged, divergences), in pulsar order.
+    #[serde(default)]
+    pub fit_warnings: Vec<String>,
 }
 
-/// Fit the pulsars of `settings.shard` in parallel (one rayon task per pulsar); `progress` is
-/// called once per finished pulsar. Settings and priors are checked before any work.
+/// Check the settings of a run (before any work).
+pub fn check_settings(settings: &NoiseSettings) -> Result<()> {
+    if settings.map.starts == 0 || settings.map.starts > 1000 {
+        return Err(Error::setting(
+            "starts",
+            format!("{} is outside [1, 1000]", settings.map.starts),
+        ));
+    }
+    if settings.mode != SampleMode::MapOnly {
+        settings.sampler.check()?;
+    }
+    Ok(())
+}
+
+/// Fit the pulsars of `settings.shard` in parallel (one rayon task per pulsar, chains in
+/// parallel within); `progress` is called once per unit of [`progress_units`]. Settings and
+/// priors are checked before any work.
 pub fn fit_release(
     release: &Release,
     priors: &PriorFile,
     settings: &NoiseSettings,
-    progress: &(dyn Fn(&str) + Sync),
+    progress: &(dyn Fn() + Sync),
 ) -> Result<NoiseRun> {
+    check_settings(settings)?;
     priors.check_release(release)?;
-    if settings.map.starts == 0 {
-        return Err(Error::setting("starts", "need at least one starting point"));
-    }
     let grid = FrequencyGrid::for_release(release, 1)?;
     let range = settings.shard.range(release.pulsars.len() as u64);
     let chosen: Vec<(u64, &Pulsar)> = range
@@ -195,8 +413,14 @@ pub fn fit_release(
         .par_iter()
         .zip(&priors_per)
         .map(|((i, p), prior)| {
-            let fit = fit_pulsar(p, prior, &grid, settings, *i);
-            progress(&p.label);
+            let fit = fit_pulsar(p, prior, &grid, settings, *i, &|_| {
+                if settings.mode != SampleMode::MapOnly {
+                    progress();
+                }
+            });
+            if settings.mode == SampleMode::MapOnly {
+                progress();
+            }
             fit
         })
         .collect::<Result<_>>()?;
@@ -224,6 +448,8 @@ pub fn fit_release(
         shard_count: settings.shard.count,
         pulsars: fits.iter().map(|f| f.label.clone()).collect(),
         n_pulsars_in_release: release.pulsars.len(),
+        warnings: release.warnings.clone(),
+        fit_warnings: fits.iter().flat_map(PulsarFit::warnings).collect(),
     };
     Ok(NoiseRun {
         fits,
@@ -262,38 +488,77 @@ fn csv_text<T: Serialize>(rows: &[T], what: &str) -> Result<String> {
 /// The file names of a noise folder.
 pub const NOISE_FILE: &str = "noise.toml";
 /// First line of a written `noise.toml`.
-const NOISE_HEADER: &str = "# Noise model estimated by ptacorr noise (MAP values)\n";
+fn noise_header(values: ModelValues, mode: SampleMode) -> &'static str {
+    match (values, mode) {
+        (_, SampleMode::MapOnly) | (ModelValues::Map, _) => {
+            "# Noise model estimated by ptacorr noise (MAP values)\n"
+        }
+        (ModelValues::Median, SampleMode::Full) => {
+            "# Noise model estimated by ptacorr noise (posterior medians)\n"
+        }
+        (ModelValues::Median, SampleMode::FixedWhite) => {
+            "# Noise model estimated by ptacorr noise (white noise at MAP; red and DM posterior medians)\n"
+        }
+    }
+}
 pub const ESTIMATES_FILE: &str = "estimates.csv";
 pub const DIAGNOSTICS_FILE: &str = "diagnostics.csv";
 pub const PRIORS_FILE: &str = "priors.toml";
 pub const PROVENANCE_FILE: &str = "provenance.json";
+/// Folder of the chain tables, one `LABEL.csv` per pulsar.
+pub const CHAINS_DIR: &str = "chains";
 
-/// Write a run's files into `dir` (after all computation; each file atomically).
-pub fn write_run(run: &NoiseRun, dir: &Path) -> Result<()> {
+/// The settings of a run as recorded in its provenance.
+fn recorded_settings(prov: &NoiseProvenance) -> (ModelValues, SampleMode) {
+    let get = |k: &str| prov.settings.get(k).cloned();
+    let values = get("values")
+        .and_then(|v| serde_json::from_value(v).ok())
+        .unwrap_or_default();
+    let mode = get("mode")
+        .and_then(|v| serde_json::from_value(v).ok())
+        .unwrap_or(SampleMode::MapOnly);
+    (values, mode)
+}
+
+/// Stage a run's files in `set` (after all computation); the caller commits.
+pub fn write_run(run: &NoiseRun, set: &mut OutputSet) -> Result<()> {
+    let (values, mode) = recorded_settings(&run.provenance);
     let model = noise_model(run);
     let noise_text = toml::to_string(&model).map_err(|e| Error::NonFinite {
         what: format!("noise.toml ({e})"),
     })?;
     let estimates: Vec<Estimate> = run.fits.iter().flat_map(|f| f.estimates()).collect();
-    let diagnostics: Vec<DiagnosticsRow> = run.fits.iter().map(|f| f.diagnostics()).collect();
-    let files = [
-        (NOISE_FILE, format!("{NOISE_HEADER}{noise_text}")),
-        (ESTIMATES_FILE, csv_text(&estimates, ESTIMATES_FILE)?),
-        (DIAGNOSTICS_FILE, csv_text(&diagnostics, DIAGNOSTICS_FILE)?),
-        (PRIORS_FILE, run.priors_toml.clone()),
-    ];
-    crate::output::ensure_dir(dir)?;
-    for (name, text) in files {
-        write_atomic(&dir.join(name), text.as_bytes())?;
+    let diagnostics: Vec<DiagnosticsRow> = run.fits.iter().map(|f| f.diagnostics(mode)).collect();
+    set.write(
+        NOISE_FILE,
+        format!("{}{noise_text}", noise_header(values, mode)).as_bytes(),
+    )?;
+    set.write(
+        ESTIMATES_FILE,
+        csv_text(&estimates, ESTIMATES_FILE)?.as_bytes(),
+    )?;
+    set.write(
+        DIAGNOSTICS_FILE,
+        csv_text(&diagnostics, DIAGNOSTICS_FILE)?.as_bytes(),
+    )?;
+    set.write(PRIORS_FILE, run.priors_toml.as_bytes())?;
+    for f in &run.fits {
+        if let Some(s) = &f.samples {
+            set.write(
+                &format!("{CHAINS_DIR}/{}.csv", f.label),
+                s.table()?.to_csv()?.as_bytes(),
+            )?;
+        }
     }
-    write_json(&dir.join(PROVENANCE_FILE), &run.provenance)
+    set.write_json(PROVENANCE_FILE, &run.provenance)
 }
 
-/// Merge the folders of the shards of one noise run into `out`: every shard present once, all
-/// from the same release, priors and settings.
-pub fn merge_shards(dirs: &[&Path], out: &Path) -> Result<()> {
+/// Merge the folders of the shards of one noise run into the set `out`: every shard present
+/// once, all from the same release, priors and settings, each with a valid manifest.
+pub fn merge_shards(dirs: &[&Path], out: &mut OutputSet) -> Result<()> {
     let mut shards: Vec<(NoiseProvenance, &Path)> = Vec::new();
     for &d in dirs {
+        check_manifest(d)?;
         let path = d.join(PROVENANCE_FILE);
         let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
         let prov: NoiseProvenance = serde_json::from_str(&text)
@@ -330,10 +595,12 @@ pub fn merge_shards(dirs: &[&Path], out: &Path) -> Result<()> {
             ),
         ));
     }
+    let (values, mode) = recorded_settings(&first);
     let mut model = NoiseModel::default();
     let mut estimates = String::new();
     let mut diagnostics = String::new();
-    for (k, (_, d)) in shards.iter().enumerate() {
+    let mut chains: Vec<(String, Vec<u8>)> = Vec::new();
+    for (k, (prov, d)) in shards.iter().enumerate() {
         let path = d.join(NOISE_FILE);
         let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
         let m = NoiseModel::parse(&text, &path)?;
@@ -356,6 +623,16 @@ pub fn merge_shards(dirs: &[&Path], out: &Path) -> Result<()> {
                 acc.push('\n');
             }
         }
+        if mode != SampleMode::MapOnly {
+            for label in &prov.pulsars {
+                let name = format!("{CHAINS_DIR}/{label}.csv");
+                let path = d.join(&name);
+                if path.exists() {
+                    let bytes = std::fs::read(&path).map_err(|e| Error::io(&path, e))?;
+                    chains.push((name, bytes));
+                }
+            }
+        }
     }
     let priors_path = shards[0].1.join(PRIORS_FILE);
     let priors = std::fs::read_to_string(&priors_path).map_err(|e| Error::io(&priors_path, e))?;
@@ -363,16 +640,23 @@ pub fn merge_shards(dirs: &[&Path], out: &Path) -> Result<()> {
     prov.shard_index = 1;
     prov.shard_count = 1;
     prov.pulsars = shards.iter().flat_map(|(p, _)| p.pulsars.clone()).collect();
+    // Release warnings are the same in every shard; fit warnings are per pulsar.
+    prov.fit_warnings = shards
+        .iter()
+        .flat_map(|(p, _)| p.fit_warnings.clone())
+        .collect();
     let noise_text = toml::to_string(&model).map_err(|e| Error::NonFinite {
         what: format!("noise.toml ({e})"),
     })?;
-    crate::output::ensure_dir(out)?;
-    write_atomic(
-        &out.join(NOISE_FILE),
-        format!("{NOISE_HEADER}{noise_text}").as_bytes(),
+    out.write(
+        NOISE_FILE,
+        format!("{}{noise_text}", noise_header(values, mode)).as_bytes(),
     )?;
-    write_atomic(&out.join(ESTIMATES_FILE), estimates.as_bytes())?;
-    write_atomic(&out.join(DIAGNOSTICS_FILE), diagnostics.as_bytes())?;
-    write_atomic(&out.join(PRIORS_FILE), priors.as_bytes())?;
-    write_json(&out.join(PROVENANCE_FILE), &prov)
+    out.write(ESTIMATES_FILE, estimates.as_bytes())?;
+    out.write(DIAGNOSTICS_FILE, diagnostics.as_bytes())?;
+    out.write(PRIORS_FILE, priors.as_bytes())?;
+    for (name, bytes) in &chains {
+        out.write(name, bytes)?;
+    }
+    out.write_json(PROVENANCE_FILE, &prov)
 }

@@ -9,7 +9,7 @@
 //! Jacobian's (hi - lo).
 
 use crate::error::{Error, Result};
-use crate::likelihood::PulsarLikelihood;
+use crate::likelihood::{FixedWhite, PulsarLikelihood};
 use crate::priors::{matches, PulsarPrior};
 
 /// ln(1 + e^x) without overflow.
@@ -36,6 +36,8 @@ pub struct Posterior<'a> {
     bounds: Vec<[f64; 2]>,
     /// The full parameter vector; the free entries are overwritten at each evaluation.
     base: Vec<f64>,
+    /// With the white noise held: its precomputed products (the fast path).
+    fixed_white: Option<FixedWhite<'a>>,
 }
 
 impl<'a> Posterior<'a> {
@@ -76,7 +78,21 @@ impl<'a> Posterior<'a> {
             free,
             bounds,
             base,
+            fixed_white: None,
         })
+    }
+
+    /// The white-noise hyperparameters held at their values in `theta` (e.g. the MAP), the
+    /// others free; evaluations use [`FixedWhite`]'s precomputed white-noise products.
+    pub fn with_fixed_white(
+        lik: &'a PulsarLikelihood,
+        prior: &PulsarPrior,
+        theta: &[f64],
+    ) -> Result<Self> {
+        let fw = lik.fixed_white(theta)?;
+        let mut post = Self::with_fixed(lik, prior, fw.white())?;
+        post.fixed_white = Some(fw);
+        Ok(post)
     }
 
     /// Number of free hyperparameters.
@@ -144,7 +160,10 @@ impl<'a> Posterior<'a> {
         }
         let theta = self.theta(x);
         let mut g_theta = vec![0.0; theta.len()];
-        let mut value = self.lik.log_likelihood_and_gradient(&theta, &mut g_theta)?;
+        let mut value = match &self.fixed_white {
+            Some(fw) => fw.log_likelihood_and_gradient(&theta, &mut g_theta)?,
+            None => self.lik.log_likelihood_and_gradient(&theta, &mut g_theta)?,
+        };
         for (k, ((&i, &xk), [lo, hi])) in self.free.iter().zip(x).zip(&self.bounds).enumerate() {
             let s = logistic(xk);
             grad[k] = g_theta[i] * (hi - lo) * s * (1.0 - s);
@@ -157,6 +176,16 @@ impl<'a> Posterior<'a> {
             }
         }
         Ok(value)
+    }
+}
+
+impl crate::sampler::LogDensity for Posterior<'_> {
+    fn dim(&self) -> usize {
+        self.free.len()
+    }
+
+    fn log_density_and_gradient(&self, x: &[f64], grad: &mut [f64]) -> Result<f64> {
+        self.evaluate(x, grad, true)
     }
 }
 

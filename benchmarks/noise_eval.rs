@@ -1,0 +1,79 @@
+//! One pulsar's noise likelihood and gradient (engine/src/likelihood.rs) under the release's own
+//! noise.toml, timed; for benchmarks/noise, which runs the NumPy peer
+//! (tests/reference/noise_likelihood.py) on the same pulsar in the same run.
+//!
+//!     cargo run --release -p ptacorr-engine --example noise_eval -- RELEASE LABEL [REPEAT]
+//!
+//! Prints `ln_l`, `seconds_per_evaluation` (value and gradient), `flops` (counted) and the
+//! shape. Red and DM processes use their `n_frequencies` (14 when absent, as the peer).
+
+use ptacorr::likelihood::{BackendTerms, Components, Hyper, PulsarLikelihood};
+use ptacorr::linalg::single_threaded_blas;
+use ptacorr::reduce::FrequencyGrid;
+use ptacorr::release::read_release;
+use std::time::Instant;
+
+fn main() {
+    let args: Vec<String> = std::env::args().collect();
+    if args.len() < 3 {
+        eprintln!("usage: noise_eval RELEASE LABEL [REPEAT]");
+        std::process::exit(2);
+    }
+    let repeat: usize = args.get(3).map_or(50, |s| s.parse().expect("REPEAT"));
+    single_threaded_blas();
+    let rel = read_release(std::path::Path::new(&args[1])).expect("release");
+    let p = rel
+        .pulsars
+        .iter()
+        .find(|p| p.label == args[2])
+        .expect("pulsar");
+    let pn = rel.noise.pulsar(&p.label);
+    let white = |b: &str| pn.white.iter().find(|w| w.backend == b).cloned();
+    let comp = Components {
+        backends: p
+            .backends
+            .iter()
+            .map(|b| {
+                let w = white(b);
+                BackendTerms {
+                    efac: true,
+                    log10_equad: w.as_ref().is_some_and(|w| w.equad_log10_s.is_some()),
+                    log10_ecorr: w.as_ref().is_some_and(|w| w.ecorr_log10_s.is_some()),
+                }
+            })
+            .collect(),
+        red: pn.red.map(|r| r.n_frequencies.unwrap_or(14)),
+        dm: pn.dm.map(|r| r.n_frequencies.unwrap_or(14)),
+        common: None,
+    };
+    let grid = FrequencyGrid::for_release(&rel, 1).expect("grid");
+    let lik = PulsarLikelihood::new(p, &comp, &grid).expect("likelihood");
+    let theta: Vec<f64> = lik
+        .parameters()
+        .iter()
+        .map(|h| match h.kind {
+            Hyper::Efac(b) => white(&p.backends[b]).map_or(1.0, |w| w.efac),
+            Hyper::Log10Equad(b) => white(&p.backends[b]).and_then(|w| w.equad_log10_s).unwrap(),
+            Hyper::Log10Ecorr(b) => white(&p.backends[b]).and_then(|w| w.ecorr_log10_s).unwrap(),
+            Hyper::RedLog10Amplitude => pn.red.unwrap().log10_amplitude,
+            Hyper::RedSpectralIndex => pn.red.unwrap().spectral_index,
+            Hyper::DmLog10Amplitude => pn.dm.unwrap().log10_amplitude,
+            Hyper::DmSpectralIndex => pn.dm.unwrap().spectral_index,
+            Hyper::CommonLog10Amplitude | Hyper::CommonSpectralIndex => unreachable!(),
+        })
+        .collect();
+    let mut grad = vec![0.0; lik.dim()];
+    let value = lik
+        .log_likelihood_and_gradient(&theta, &mut grad)
+        .expect("ln L");
+    let start = Instant::now();
+    for _ in 0..repeat {
+        std::hint::black_box(lik.log_likelihood_and_gradient(&theta, &mut grad).unwrap());
+    }
+    let per = start.elapsed().as_secs_f64() / repeat as f64;
+    let (n, c) = lik.shape();
+    println!("ln_l {value:?}");
+    println!("seconds_per_evaluation {per:?}");
+    println!("flops {:?}", lik.flops());
+    println!("shape {n} {c}");
+}
