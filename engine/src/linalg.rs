@@ -180,6 +180,22 @@ pub struct ScaledCholesky {
     dinv: Array1<f64>,
 }
 
+/// The positive return code of a failed LAPACK call (for dpotrf: the order of the leading minor
+/// that is not positive definite), 0 when there is none. ndarray-linalg wraps the error of its
+/// LAPACK layer (`lax`) without re-exporting that type, so naming its variant would need `lax`
+/// as a direct dependency for this one match; its message, "... return_code = N", carries the
+/// code instead. The unit test `cholesky_error_names_the_failing_pivot` pins this format.
+fn lapack_failure_code(e: &ndarray_linalg::error::LinalgError) -> usize {
+    let text = e.to_string();
+    if !text.contains("Computational failure") {
+        return 0;
+    }
+    text.rsplit("return_code = ")
+        .next()
+        .and_then(|n| n.trim().parse::<i64>().ok())
+        .map_or(0, |n| n.max(0) as usize)
+}
+
 impl ScaledCholesky {
     /// Factor `s`; `what` names the matrix in the error.
     pub fn new(s: &Array2<f64>, what: &str) -> Result<Self> {
@@ -200,10 +216,8 @@ impl ScaledCholesky {
             *v *= dinv[i] * dinv[j];
         }
         let l = scaled.cholesky(UPLO::Lower).map_err(|e| {
-            let pivot = match e {
-                ndarray_linalg::error::LinalgError::Lapack(
-                    lax::error::Error::LapackComputationalFailure { return_code },
-                ) => return_code.max(0) as usize,
+            let pivot = match &e {
+                ndarray_linalg::error::LinalgError::Lapack(_) => lapack_failure_code(&e),
                 _ => 0,
             };
             Error::NotPositiveDefinite {
@@ -324,6 +338,22 @@ pub fn cholesky_lower(s: &Array2<f64>, what: &str) -> Result<Array2<f64>> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// diag(1, 1, -1, 1) (after scaling, a matrix whose third leading minor is negative; its
+    /// diagonal is positive so the check before LAPACK passes): dpotrf reports order 3
+    /// (LAPACK Users' Guide, dpotrf INFO > 0: "the leading minor of order i is not positive
+    /// definite"), and the error says so.
+    #[test]
+    fn cholesky_error_names_the_failing_pivot() {
+        let mut s = Array2::<f64>::eye(4);
+        s[[1, 2]] = 2.0;
+        s[[2, 1]] = 2.0;
+        // Leading minors: 1, 1, 1 - 4 = -3 < 0: order 3 fails.
+        match ScaledCholesky::new(&s, "test matrix") {
+            Err(Error::NotPositiveDefinite { pivot, .. }) => assert_eq!(pivot, 3),
+            other => panic!("expected a pivot-3 failure, got {:?}", other.err()),
+        }
+    }
 
     #[test]
     fn two_stage_eigenvalues_match_the_one_stage_solver() {

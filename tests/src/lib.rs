@@ -81,3 +81,25 @@ pub fn numpy_python() -> PathBuf {
          run `./run setup` (it makes .venv with NumPy) or set PTACORR_PYTHON to such a Python"
     );
 }
+
+/// The dense-reference scaffolding shared by the checks that rebuild a pulsar's covariance as
+/// an explicit n x n matrix (`dense_reference.rs`, `common_dense.rs`, `likelihood_dense.rs`).
+pub mod dense {
+    use ndarray::Array2;
+    use std::f64::consts::PI;
+
+    /// phi(f) = A^2/(12 pi^2) f_yr^(gamma-3) f^-gamma / T in s^2, f_yr = 1/(365.25 d)
+    /// (Lentati et al. 2013), written out here independently of `engine/src/spectrum.rs`.
+    pub fn phi(log10_a: f64, gamma: f64, f: f64, t: f64) -> f64 {
+        let fyr: f64 = 1.0 / (365.25 * 86400.0);
+        10f64.powf(2.0 * log10_a) / (12.0 * PI * PI) * fyr.powf(gamma - 3.0) * f.powf(-gamma) / t
+    }
+
+    /// Fourier columns sin, cos per frequency j / span (j = 1..k), times a row scale.
+    pub fn fourier(t: &[f64], k: usize, span: f64, scale: &[f64]) -> Array2<f64> {
+        Array2::from_shape_fn((t.len(), 2 * k), |(i, c)| {
+            let arg = 2.0 * PI * (c / 2 + 1) as f64 / span * t[i];
+            scale[i] * if c % 2 == 0 { arg.sin() } else { arg.cos() }
+        })
+    }
+}

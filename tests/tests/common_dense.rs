@@ -11,8 +11,8 @@ use ndarray::{Array1, Array2};
 use ndarray_linalg::{Cholesky, Inverse, UPLO};
 use ptacorr::common::{fit_fixed_index, CommonData, CommonModel, CommonSettings};
 use ptacorr::release::{Pulsar, Release};
+use ptacorr_checks::dense::{fourier, phi};
 use ptacorr_checks::{simulate_release, temp_dir};
-use std::f64::consts::PI;
 
 const SCENARIO: &str = r#"
 [array]
@@ -53,20 +53,6 @@ spectral_index = [2.0, 3.0]
 log10_amplitude = -13.8
 pattern = "hd"
 "#;
-
-/// phi(f) = A^2/(12 pi^2) f_yr^(gamma-3) f^-gamma / T (Lentati et al. 2013), s^2.
-fn phi(log10_a: f64, gamma: f64, f: f64, t: f64) -> f64 {
-    let fyr: f64 = 1.0 / (365.25 * 86400.0);
-    10f64.powf(2.0 * log10_a) / (12.0 * PI * PI) * fyr.powf(gamma - 3.0) * f.powf(-gamma) / t
-}
-
-/// Fourier columns sin, cos per frequency j / span, times a row scale.
-fn fourier(t: &[f64], k: usize, span: f64, scale: &[f64]) -> Array2<f64> {
-    Array2::from_shape_fn((t.len(), 2 * k), |(i, c)| {
-        let arg = 2.0 * PI * (c / 2 + 1) as f64 / span * t[i];
-        scale[i] * if c % 2 == 0 { arg.sin() } else { arg.cos() }
-    })
-}
 
 /// One pulsar's own covariance (white, ECORR, red, DM), its analysis Fourier basis and its
 /// timing-model columns (1, t, t^2; normalised, which leaves the projection unchanged).

@@ -8,6 +8,7 @@ use ndarray_linalg::Inverse;
 use ptacorr::analysis::{correlate, CorrelateSettings};
 use ptacorr::orf::Pattern;
 use ptacorr::release::{read_release, Pulsar, Release};
+use ptacorr_checks::dense::{fourier, phi};
 use ptacorr_checks::{simulate_release, temp_dir};
 use std::f64::consts::PI;
 
@@ -50,20 +51,6 @@ spectral_index = [2.0, 3.0]
 log10_amplitude = -13.7
 pattern = "hd"
 "#;
-
-/// phi(f) = A^2/(12 pi^2) f_yr^(gamma-3) f^-gamma / T (Lentati et al. 2013).
-fn phi(log10_a: f64, gamma: f64, f: f64, t: f64) -> f64 {
-    let fyr: f64 = 1.0 / (365.25 * 86400.0);
-    10f64.powf(2.0 * log10_a) / (12.0 * PI * PI) * fyr.powf(gamma - 3.0) * f.powf(-gamma) / t
-}
-
-/// Fourier columns sin, cos per frequency, times a row scale.
-fn fourier(t: &[f64], k: usize, span: f64, scale: &[f64]) -> Array2<f64> {
-    Array2::from_shape_fn((t.len(), 2 * k), |(i, c)| {
-        let arg = 2.0 * PI * (c / 2 + 1) as f64 / span * t[i];
-        scale[i] * if c % 2 == 0 { arg.sin() } else { arg.cos() }
-    })
-}
 
 /// Dense X = F^T P^-1 r and Z = F^T P^-1 F of one pulsar.
 fn dense_reduce(rel: &Release, p: &Pulsar, k: usize) -> (Array1<f64>, Array2<f64>) {

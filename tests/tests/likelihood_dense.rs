@@ -16,6 +16,7 @@ use ptacorr::likelihood::{
 use ptacorr::reduce::FrequencyGrid;
 use ptacorr::release::{DesignMatrix, Pulsar, Release};
 use ptacorr::spectrum::PowerLaw;
+use ptacorr_checks::dense::{fourier, phi};
 use ptacorr_checks::{simulate_release, temp_dir};
 use rand::{Rng, SeedableRng};
 use std::f64::consts::PI;
@@ -55,20 +56,6 @@ share = 1.0
 log10_amplitude = [-14.0, -13.5]
 spectral_index = [2.0, 3.0]
 "#;
-
-/// phi(f) = A^2/(12 pi^2) f_yr^(gamma-3) f^-gamma / T (Lentati et al. 2013), f_yr = 1/(365.25 d).
-fn phi(log10_a: f64, gamma: f64, f: f64, t: f64) -> f64 {
-    let fyr: f64 = 1.0 / (365.25 * 86400.0);
-    10f64.powf(2.0 * log10_a) / (12.0 * PI * PI) * fyr.powf(gamma - 3.0) * f.powf(-gamma) / t
-}
-
-/// Fourier columns sin, cos per frequency j / span, times a row scale.
-fn fourier(t: &[f64], k: usize, span: f64, scale: &[f64]) -> Array2<f64> {
-    Array2::from_shape_fn((t.len(), 2 * k), |(i, c)| {
-        let arg = 2.0 * PI * (c / 2 + 1) as f64 / span * t[i];
-        scale[i] * if c % 2 == 0 { arg.sin() } else { arg.cos() }
-    })
-}
 
 /// Values of the hyperparameters by kind, for the dense form.
 #[derive(Default)]

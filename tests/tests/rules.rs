@@ -132,12 +132,6 @@ const KNOWN: &[(&str, &str, &str, &str)] = &[
         "the fit's wall time for the progress line",
     ),
     (
-        "writer",
-        "present/src/figure/mod.rs",
-        "std::fs::File::create(&tmp)",
-        "the figures' second atomic writer (issue 10 point 2: one writer)",
-    ),
-    (
         "cli",
         "cli/src/main.rs",
         "t.elapsed().as_secs_f64(), cpu_seconds() - cpu",

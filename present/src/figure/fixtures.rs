@@ -45,6 +45,29 @@ impl Drop for TempDir {
     }
 }
 
+/// Closes a fixture folder as the engine closes an output set: every file in it (but the
+/// manifest itself) rewritten through `output::OutputSet`, which writes `manifest.json` last.
+/// Tests that edit a file on purpose call it again, as a run would.
+pub(crate) fn seal(dir: &Path) {
+    let mut files: Vec<(String, Vec<u8>)> = std::fs::read_dir(dir)
+        .expect("read fixture folder")
+        .flatten()
+        .filter(|e| e.path().is_file())
+        .map(|e| e.file_name().to_string_lossy().into_owned())
+        .filter(|n| !n.starts_with('.') && n != ptacorr::output::MANIFEST_FILE)
+        .map(|n| {
+            let bytes = std::fs::read(dir.join(&n)).expect("read fixture file");
+            (n, bytes)
+        })
+        .collect();
+    files.sort();
+    let mut set = ptacorr::output::OutputSet::begin(dir, "fixture").expect("lock fixture folder");
+    for (name, bytes) in &files {
+        set.write(name, bytes).expect("stage fixture file");
+    }
+    set.commit().expect("commit fixture folder");
+}
+
 /// SplitMix64 with Box-Muller normals: a fixed sequence for fixtures.
 struct Rng(u64);
 
@@ -98,6 +121,7 @@ pub(crate) fn edit_json(path: &Path, f: impl FnOnce(&mut Value)) {
     let mut v: Value = serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap();
     f(&mut v);
     write_json(path, &v);
+    seal(path.parent().expect("a file in a folder"));
 }
 
 /// Number of data rows of a folder's bins.csv.
@@ -196,6 +220,7 @@ pub(crate) fn write_correlate(dir: &Path) {
             "provenance": provenance("sha256:0f3c9a7e5b21d4c86a0e9f1b2c3d4e5f60718293a4b5c6d7e8f9011223344556")
         }),
     );
+    seal(dir);
 }
 
 /// A null folder with 2000 Gaussian trials; `with_density` adds the analytic density.
@@ -241,6 +266,7 @@ pub(crate) fn write_null(dir: &Path, with_density: bool) {
             "provenance": provenance("sha256:0f3c9a7e5b21d4c86a0e9f1b2c3d4e5f60718293a4b5c6d7e8f9011223344556")
         }),
     );
+    seal(dir);
 }
 
 /// An inject folder with six amplitudes, the first being zero (the false-alarm check) and
@@ -302,4 +328,5 @@ pub(crate) fn write_inject(dir: &Path) {
             "provenance": provenance("sha256:0f3c9a7e5b21d4c86a0e9f1b2c3d4e5f60718293a4b5c6d7e8f9011223344556")
         }),
     );
+    seal(dir);
 }

@@ -50,6 +50,8 @@ impl FolderKind {
 
 /// The kinds of output found in `dir`. A folder is of a kind when it holds that kind's JSON
 /// file; the kind's other files must then be there too.
+/// The folder's manifest is then checked (`output::check_manifest`), so a folder whose files
+/// come from different runs, or were edited since, is refused before anything is read.
 pub fn detect_kinds(dir: &Path) -> Result<Vec<FolderKind>, FigureError> {
     if !dir.is_dir() {
         return Err(FigureError::UnknownFolder {
@@ -79,6 +81,7 @@ pub fn detect_kinds(dir: &Path) -> Result<Vec<FolderKind>, FigureError> {
             reason: format!("none of {SUMMARY_JSON}, {NULL_JSON} or {RECOVERY_JSON} is there"),
         });
     }
+    ptacorr::output::check_manifest(dir)?;
     Ok(kinds)
 }
 

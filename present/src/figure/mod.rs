@@ -24,9 +24,7 @@ mod recovery;
 pub mod scaling;
 mod spectrum;
 
-use std::io::Write as _;
 use std::path::{Path, PathBuf};
-use std::sync::atomic::{AtomicU64, Ordering};
 
 pub use scaling::plot_scaling;
 
@@ -96,6 +94,9 @@ pub enum FigureError {
     Render { figure: String, reason: String },
     #[error("no input folders were given")]
     NoInputs,
+    /// An error of the engine's readers and writers (manifest check, atomic writes).
+    #[error(transparent)]
+    Engine(#[from] ptacorr::Error),
 }
 
 /// Output file format of a figure.
@@ -384,7 +385,8 @@ pub(crate) fn render_png(svg: &str, dpi: f64, figure: &str) -> Result<Vec<u8>, F
     Ok(out)
 }
 
-/// Converts an SVG to a one-page vector PDF of the same physical size.
+/// Converts an SVG to a one-page vector PDF of the same physical size, with its resource
+/// dictionaries in a fixed order ([`sort_pdf_resources`]) so the bytes are the same in every run.
 pub(crate) fn render_pdf(svg: &str, figure: &str) -> Result<Vec<u8>, FigureError> {
     let tree = parse_svg(svg, figure)?;
     svg2pdf::to_pdf(
@@ -392,42 +394,89 @@ pub(crate) fn render_pdf(svg: &str, figure: &str) -> Result<Vec<u8>, FigureError
         svg2pdf::ConversionOptions::default(),
         svg2pdf::PageOptions { dpi: 96.0 },
     )
+    .map(|pdf| sort_pdf_resources(&pdf))
     .map_err(|e| render_err(figure, e))
 }
 
-/// Writes `bytes` to a temporary file beside `path`, flushes it and renames it over `path`,
-/// so a reader never sees a half-written file.
-pub(crate) fn write_atomic(path: &Path, bytes: &[u8]) -> Result<(), FigureError> {
-    static COUNTER: AtomicU64 = AtomicU64::new(0);
-    let werr = |source| FigureError::Write {
-        path: path.to_path_buf(),
-        source,
-    };
-    let name = path
-        .file_name()
-        .ok_or_else(|| werr(std::io::Error::other("the path has no file name")))?;
-    let dir = match path.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
-        _ => PathBuf::from("."),
-    };
-    let tmp = dir.join(format!(
-        ".{}.tmp-{}-{}",
-        name.to_string_lossy(),
-        std::process::id(),
-        COUNTER.fetch_add(1, Ordering::Relaxed)
-    ));
-    let result = (|| {
-        let mut f = std::fs::File::create(&tmp)?;
-        f.write_all(bytes)?;
-        f.sync_all()?;
-        drop(f);
-        std::fs::rename(&tmp, path)
-    })();
-    if let Err(e) = result {
-        let _ = std::fs::remove_file(&tmp);
-        return Err(werr(e));
+/// Puts the entries of every resource sub-dictionary of a PDF in one order (by name, numbers
+/// compared as numbers), so the same figure gives the same bytes in every run (issue 9.8).
+///
+/// svg2pdf writes the graphics states, patterns and XObjects of a page from a hash map, whose
+/// iteration order changes from run to run; nothing else in its output depends on it (the
+/// objects themselves are numbered in drawing order). Each entry is one line `/name N 0 R`, so
+/// sorting the lines of a dictionary keeps its length and every offset in the cross-reference
+/// table stays right. Stream contents are skipped.
+pub(crate) fn sort_pdf_resources(pdf: &[u8]) -> Vec<u8> {
+    const KEYS: &[&[u8]] = &[
+        b"/ExtGState <<",
+        b"/Pattern <<",
+        b"/XObject <<",
+        b"/Shading <<",
+        b"/Font <<",
+        b"/ColorSpace <<",
+    ];
+    let lines: Vec<&[u8]> = pdf.split_inclusive(|&b| b == b'\n').collect();
+    let mut out = Vec::with_capacity(pdf.len());
+    let mut in_stream = false;
+    let mut i = 0;
+    while i < lines.len() {
+        let line = lines[i];
+        let t = line.trim_ascii();
+        if in_stream {
+            in_stream = t != b"endstream";
+            out.extend_from_slice(line);
+            i += 1;
+            continue;
+        }
+        if t == b"stream" {
+            in_stream = true;
+        }
+        out.extend_from_slice(line);
+        i += 1;
+        if !KEYS.contains(&t) {
+            continue;
+        }
+        // The entries up to the closing `>>`, each one reference on its own line.
+        let start = i;
+        while i < lines.len() && lines[i].trim_ascii() != b">>" {
+            i += 1;
+        }
+        let mut entries: Vec<&[u8]> = lines[start..i].to_vec();
+        let simple = entries.iter().all(|e| {
+            let e = e.trim_ascii();
+            e.starts_with(b"/") && e.ends_with(b" 0 R")
+        });
+        if simple {
+            entries.sort_by_key(|e| resource_key(e));
+        }
+        for e in entries {
+            out.extend_from_slice(e);
+        }
     }
-    Ok(())
+    out
+}
+
+/// Sort key of a resource line `/gs12 18 0 R`: the name's letters, then its number.
+fn resource_key(line: &[u8]) -> (Vec<u8>, u64, Vec<u8>) {
+    let t = line.trim_ascii();
+    let name = t.split(|&b| b == b' ').next().unwrap_or(t);
+    let letters: Vec<u8> = name
+        .iter()
+        .copied()
+        .filter(|b| !b.is_ascii_digit())
+        .collect();
+    let digits: String = name
+        .iter()
+        .filter(|b| b.is_ascii_digit())
+        .map(|&b| b as char)
+        .collect();
+    (letters, digits.parse().unwrap_or(0), t.to_vec())
+}
+
+/// Writes `bytes` atomically with the engine's one writer (temporary name, fsync, rename), so
+/// a reader never sees a half-written file.
+pub(crate) fn write_atomic(path: &Path, bytes: &[u8]) -> Result<(), FigureError> {
+    Ok(ptacorr::output::write_atomic(path, bytes)?)
 }
 
 #[cfg(test)]
@@ -597,6 +646,7 @@ mod tests {
         cells[5] = "abc".to_string();
         lines[3] = cells.join(",");
         std::fs::write(c.join("bins.csv"), lines.join("\n")).unwrap();
+        fixtures::seal(&c);
         let e = plot_folder(&c, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
         match &e {
             FigureError::InvalidCell {
@@ -611,6 +661,7 @@ mod tests {
         let n = t.sub("null");
         fixtures::write_null(&n, true);
         std::fs::write(n.join("null.json"), "{\"method\": \"phase\"").unwrap();
+        fixtures::seal(&n);
         let e = plot_folder(&n, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
         assert!(matches!(e, FigureError::Json { .. }), "{e}");
         fixtures::write_null(&n, true);
@@ -627,6 +678,7 @@ mod tests {
             rec.replace("detection_probability", "p_det"),
         )
         .unwrap();
+        fixtures::seal(&i);
         let e = plot_folder(&i, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
         assert!(
             matches!(&e, FigureError::MissingColumn { column, .. } if column == "detection_probability"),
@@ -645,6 +697,7 @@ mod tests {
         cells[2] = "181.5".to_string();
         lines[1] = cells.join(",");
         std::fs::write(c.join("pairs.csv"), lines.join("\n")).unwrap();
+        fixtures::seal(&c);
         let e = plot_folder(&c, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
         assert!(
             matches!(&e, FigureError::InvalidCell { line: 2, column, .. } if column == "angle_deg"),
@@ -657,6 +710,7 @@ mod tests {
         cells[4] = "NaN".to_string();
         lines[2] = cells.join(",");
         std::fs::write(c.join("bins.csv"), lines.join("\n")).unwrap();
+        fixtures::seal(&c);
         let e = plot_folder(&c, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
         assert!(
             matches!(&e, FigureError::InvalidCell { line: 3, column, .. } if column == "rho"),
@@ -798,6 +852,83 @@ mod tests {
         assert!(text.contains("/MediaBox [0 0 244.8"), "media box missing");
     }
 
+    /// Issue 9.8: every figure of every kind, in every format, twice over, gives the same
+    /// bytes. Each draw builds new hash maps inside the PDF writer (new random keys), so a
+    /// resource dictionary written in hash order differs between the two; the correlate figure
+    /// with its pairs has dozens of graphics states, so the check can fail.
+    #[test]
+    fn every_figure_in_every_format_is_byte_identical_twice() {
+        let t = TempDir::new("twice");
+        let dirs = [t.sub("corr"), t.sub("null"), t.sub("inject")];
+        fixtures::write_correlate(&dirs[0]);
+        fixtures::write_null(&dirs[1], true);
+        fixtures::write_inject(&dirs[2]);
+        let opts = FigureOptions {
+            show_pairs: true,
+            ..Default::default()
+        };
+        let mut n_files = 0;
+        for (k, dir) in dirs.iter().enumerate() {
+            for format in [FigureFormat::Svg, FigureFormat::Png, FigureFormat::Pdf] {
+                let ext = format.extension();
+                let a =
+                    plot_folder(dir, format, Some(&t.sub(&format!("{k}-{ext}-a"))), &opts).unwrap();
+                let b =
+                    plot_folder(dir, format, Some(&t.sub(&format!("{k}-{ext}-b"))), &opts).unwrap();
+                assert_eq!(a.len(), b.len());
+                for (x, y) in a.iter().zip(&b) {
+                    let (bx, by) = (std::fs::read(x).unwrap(), std::fs::read(y).unwrap());
+                    assert!(bx == by, "{} and {} differ", x.display(), y.display());
+                    n_files += 1;
+                }
+            }
+        }
+        assert_eq!(
+            n_files, 18,
+            "three kinds x three formats x (figure, sidecar)"
+        );
+        // The correlate PDF holds a resource dictionary with many entries (so order matters).
+        let pdf = std::fs::read(t.sub("0-pdf-a").join("angular-correlation.pdf")).unwrap();
+        let text = String::from_utf8_lossy(&pdf);
+        let gs = text.lines().filter(|l| l.trim().starts_with("/gs")).count();
+        assert!(gs >= 2, "only {gs} graphics states in the correlate PDF");
+    }
+
+    #[test]
+    fn pdf_resources_are_sorted_without_moving_any_offset() {
+        let pdf = b"%PDF-1.7\n1 0 obj\n<<\n  /Resources <<\n    /ExtGState <<\n      /gs10 12 0 R\n      /gs2 4 0 R\n      /gs1 3 0 R\n    >>\n  >>\n>>\nendobj\n2 0 obj\n<< /Length 3 >>\nstream\n/ExtGState <<\n/b 1 0 R\n/a 2 0 R\n>>\nendstream\nendobj\n";
+        let sorted = sort_pdf_resources(pdf);
+        assert_eq!(sorted.len(), pdf.len());
+        let text = String::from_utf8(sorted).unwrap();
+        let want =
+            "    /ExtGState <<\n      /gs1 3 0 R\n      /gs2 4 0 R\n      /gs10 12 0 R\n    >>\n";
+        assert!(text.contains(want), "{text}");
+        // Inside a stream nothing moves.
+        assert!(text.contains("stream\n/ExtGState <<\n/b 1 0 R\n/a 2 0 R\n>>\nendstream"));
+        // Sorting twice changes nothing.
+        assert_eq!(sort_pdf_resources(text.as_bytes()), text.as_bytes());
+    }
+
+    /// Issue 9.2: a folder whose files do not match its manifest (mixed runs, an edit) or that
+    /// has no manifest is refused before anything is drawn, with the file named.
+    #[test]
+    fn folders_that_are_not_one_output_set_are_refused() {
+        let t = TempDir::new("manifest");
+        let c = t.sub("corr");
+        fixtures::write_correlate(&c);
+        let bins = std::fs::read_to_string(c.join("bins.csv")).unwrap();
+        std::fs::write(c.join("bins.csv"), bins.replace(",", ", ")).unwrap();
+        let e = plot_folder(&c, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
+        assert!(matches!(e, FigureError::Engine(_)), "{e}");
+        assert!(e.to_string().contains("bins.csv"), "{e}");
+        std::fs::remove_file(c.join("manifest.json")).unwrap();
+        let e = plot_folder(&c, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
+        assert!(e.to_string().contains("manifest.json"), "{e}");
+        let out = t.sub("report");
+        let e = crate::report::build_report(std::slice::from_ref(&c), &out).unwrap_err();
+        assert!(e.to_string().contains("manifest.json"), "{e}");
+    }
+
     #[test]
     fn options_are_checked() {
         let t = TempDir::new("opts");
@@ -831,7 +962,12 @@ mod tests {
             .map(|e| e.unwrap().file_name())
             .collect();
         assert_eq!(names.len(), 1, "{names:?}");
-        let e = write_atomic(&t.path().join("missing").join("x"), b"x").unwrap_err();
-        assert!(matches!(e, FigureError::Write { .. }));
+        // The engine's writer creates a missing folder; a parent that is a file is an error.
+        write_atomic(&t.path().join("missing").join("x"), b"x").unwrap();
+        let e = write_atomic(&p.join("x"), b"x").unwrap_err();
+        assert!(
+            matches!(e, FigureError::Engine(ptacorr::Error::Io { .. })),
+            "{e}"
+        );
     }
 }
