@@ -222,9 +222,15 @@ def noise(
     starts: int = 4,
     max_iterations: int = 500,
     shard: Optional[str] = None,
+    mode: Literal["full", "fixed-white", "map-only"] = "full",
+    values: Literal["median", "map"] = "median",
+    chains: Optional[int] = None,
+    warmup: Optional[int] = None,
+    draws: Optional[int] = None,
 ) -> dict[str, Any]:
-    """MAP noise estimation of every pulsar (as ``ptacorr noise``); returns ``estimates`` and
-    ``diagnostics`` as columns, and ``provenance``."""
+    """Noise estimation of every pulsar (as ``ptacorr noise``): MAP, then NUTS chains unless
+    ``mode="map-only"``; returns ``estimates`` and ``diagnostics`` as columns, and
+    ``provenance``."""
 
 def merge_noise(dirs: Sequence[StrPath], *, out: StrPath) -> None:
     """Merge the shard folders of one noise run (as ``ptacorr merge-noise``)."""
@@ -240,6 +246,9 @@ def common(
     fixed_index: float = ...,
     amplitude_points: int = 121,
     amplitude_prior: Literal["uniform-log10", "uniform-amplitude"] = "uniform-log10",
+    draws: int = 1000,
+    draw_index: Literal["varied", "fixed"] = "varied",
+    seed: int = 2026,
 ) -> dict[str, Any]:
     """The common red process under CURN, HD, monopole and dipole correlations (as
     ``ptacorr common``); returns its summary.json. Bayes factors assume the noise model and the

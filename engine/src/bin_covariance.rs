@@ -194,7 +194,10 @@ pub fn bin_covariance_with(
                     .t()
                     .dot(&p.slice(s![.., cols]))
             })
-            .reduce(|| Array2::<f64>::zeros((n, n)), |x, y| x + y);
+            // In component order, added sequentially: thread-count independent bytes.
+            .collect::<Vec<_>>()
+            .into_iter()
+            .fold(Array2::<f64>::zeros((n, n)), |x, y| x + y);
         for bj in 0..nb {
             let q = 0.5 * (&h[bj].t() * &tau).sum();
             cov[bi][bj] = q / (wb[bi] * wb[bj]);

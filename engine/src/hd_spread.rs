@@ -144,6 +144,9 @@ pub fn effective_modes(w: &[Weighted]) -> Result<f64> {
                 })
                 .sum::<f64>()
         })
+        // In pulsar order, added sequentially: thread-count independent bytes.
+        .collect::<Vec<f64>>()
+        .into_iter()
         .sum();
     let inv = sum / (n * (n - 1) / 2) as f64;
     if !(inv.is_finite() && inv > 0.0) {

@@ -180,8 +180,12 @@ pub fn frequency_sums(w: &[Weighted], g: &[f64], k: usize) -> Result<(Vec<f64>, 
             }
             (num, fis)
         })
-        .reduce(
-            || (vec![0.0; k], vec![0.0; k * k]),
+        // Collected in pulsar order and added sequentially, so the sums (and the output bytes)
+        // do not depend on how rayon split the work.
+        .collect::<Vec<_>>()
+        .into_iter()
+        .fold(
+            (vec![0.0; k], vec![0.0; k * k]),
             |(mut n1, mut f1), (n2, f2)| {
                 n1.iter_mut().zip(&n2).for_each(|(x, y)| *x += y);
                 f1.iter_mut().zip(&f2).for_each(|(x, y)| *x += y);

@@ -867,7 +867,7 @@ fn merge_inject<'py>(
 /// estimates.csv, diagnostics.csv, priors.toml and provenance.json into `out`; returns the
 /// estimates and diagnostics as columns.
 #[pyfunction]
-#[pyo3(signature = (release, *, out, priors = None, seed = 1, starts = 4, max_iterations = 500, shard = None))]
+#[pyo3(signature = (release, *, out, priors = None, seed = 1, starts = 4, max_iterations = 500, shard = None, mode = "full", values = "median", chains = None, warmup = None, draws = None))]
 #[allow(clippy::too_many_arguments)]
 fn noise<'py>(
     py: Python<'py>,
@@ -878,13 +878,44 @@ fn noise<'py>(
     starts: usize,
     max_iterations: u64,
     shard: Option<String>,
+    mode: &str,
+    values: &str,
+    chains: Option<usize>,
+    warmup: Option<u64>,
+    draws: Option<u64>,
 ) -> PyResult<Bound<'py, PyDict>> {
-    use ptacorr::noise_fit::{fit_release, map::MapSettings, write_run, NoiseSettings};
+    use ptacorr::noise_fit::sample::SampleMode;
+    use ptacorr::noise_fit::{
+        check_settings, fit_release, map::MapSettings, write_run, ModelValues, NoiseSettings,
+    };
+    use ptacorr::sampler::SamplerSettings;
     let err = |e| to_py_err(py, e);
     let shard = match &shard {
         Some(s) => ptacorr::shard::Shard::parse(s).map_err(err)?,
         None => ptacorr::shard::Shard::ALL,
     };
+    let mode = match mode {
+        "full" => SampleMode::Full,
+        "fixed-white" => SampleMode::FixedWhite,
+        "map-only" => SampleMode::MapOnly,
+        other => {
+            return Err(setting(
+                "mode",
+                format!("expected full, fixed-white or map-only, got {other:?}"),
+            ))
+        }
+    };
+    let values = match values {
+        "median" => ModelValues::Median,
+        "map" => ModelValues::Map,
+        other => {
+            return Err(setting(
+                "values",
+                format!("expected median or map, got {other:?}"),
+            ))
+        }
+    };
+    let d = SamplerSettings::default();
     let settings = NoiseSettings {
         seed,
         map: MapSettings {
@@ -892,20 +923,33 @@ fn noise<'py>(
             max_iterations,
             ..MapSettings::default()
         },
+        mode,
+        sampler: SamplerSettings {
+            chains: chains.unwrap_or(d.chains),
+            warmup: warmup.unwrap_or(d.warmup),
+            draws: draws.unwrap_or(d.draws),
+            ..d
+        },
+        values,
         shard,
+        ..NoiseSettings::default()
     };
+    check_settings(&settings).map_err(err)?;
     let priors = match &priors {
         Some(p) => ptacorr::priors::PriorFile::read(p).map_err(err)?,
         None => ptacorr::priors::PriorFile::defaults(),
     };
     let rel = as_release(py, release)?;
+    priors.check_release(&rel).map_err(err)?;
     let (estimates, diagnostics, provenance) =
         run_blocking(py, OnInterrupt::Abandon, move |cancel| {
-            let run = fit_release(&rel, &priors, &settings, &|_| {})?;
+            let mut set = ptacorr::output::OutputSet::begin(&out, "noise")?;
+            let run = fit_release(&rel, &priors, &settings, &|| {})?;
             if cancel.load(Ordering::SeqCst) {
                 return Err(interrupted());
             }
-            write_run(&run, &out)?;
+            write_run(&run, &mut set)?;
+            set.commit()?;
             let est: Vec<serde_json::Value> = run
                 .fits
                 .iter()
@@ -915,7 +959,7 @@ fn noise<'py>(
             let diag: Vec<serde_json::Value> = run
                 .fits
                 .iter()
-                .map(|f| serde_json::to_value(f.diagnostics()).unwrap_or_default())
+                .map(|f| serde_json::to_value(f.diagnostics(mode)).unwrap_or_default())
                 .collect();
             Ok((
                 est,
@@ -936,7 +980,9 @@ fn noise<'py>(
 fn merge_noise(py: Python<'_>, dirs: Vec<PathBuf>, out: PathBuf) -> PyResult<()> {
     run_blocking(py, OnInterrupt::Abandon, move |_| {
         let d: Vec<&Path> = dirs.iter().map(PathBuf::as_path).collect();
-        ptacorr::noise_fit::merge_shards(&d, &out)
+        let mut set = ptacorr::output::OutputSet::begin(&out, "merge-noise")?;
+        ptacorr::noise_fit::merge_shards(&d, &mut set)?;
+        set.commit().map(|_| ())
     })
 }
 
@@ -945,7 +991,7 @@ fn merge_noise(py: Python<'_>, dirs: Vec<PathBuf>, out: PathBuf) -> PyResult<()>
 /// summary.json as a dict. A Bayes factor assumes the noise model and the priors; a detection
 /// claim needs the collaboration's full analysis.
 #[pyfunction]
-#[pyo3(signature = (release, *, out, frequencies = 14, log10_amplitude_range = (-18.0, -12.0), index_range = (0.0, 7.0), index_points = 41, fixed_index = DEFAULT_SPECTRAL_INDEX, amplitude_points = 121, amplitude_prior = "uniform-log10"))]
+#[pyo3(signature = (release, *, out, frequencies = 14, log10_amplitude_range = (-18.0, -12.0), index_range = (0.0, 7.0), index_points = 41, fixed_index = DEFAULT_SPECTRAL_INDEX, amplitude_points = 121, amplitude_prior = "uniform-log10", draws = 1000, draw_index = "varied", seed = 2026))]
 #[allow(clippy::too_many_arguments)]
 fn common<'py>(
     py: Python<'py>,
@@ -958,8 +1004,14 @@ fn common<'py>(
     fixed_index: f64,
     amplitude_points: usize,
     amplitude_prior: &str,
+    draws: usize,
+    draw_index: &str,
+    seed: u64,
 ) -> PyResult<Bound<'py, PyAny>> {
-    use ptacorr::common::{fit_common, AmplitudePrior, CommonData, CommonSettings};
+    use ptacorr::common::{
+        check_draws, draw_curn, fit_common, AmplitudePrior, CommonData, CommonSettings, DrawIndex,
+        DrawSettings,
+    };
     let s = CommonSettings {
         n_frequencies: frequencies,
         log10_amplitude_min: log10_amplitude_range.0,
@@ -982,14 +1034,38 @@ fn common<'py>(
         ..Default::default()
     };
     s.validate().map_err(|e| to_py_err(py, e))?;
+    check_draws(draws).map_err(|e| to_py_err(py, e))?;
+    let draw_settings = DrawSettings {
+        n_draws: draws,
+        seed,
+        index: match draw_index {
+            "varied" => DrawIndex::Varied,
+            "fixed" => DrawIndex::Fixed,
+            other => {
+                return Err(setting(
+                    "draw_index",
+                    format!("expected varied or fixed, got {other:?}"),
+                ))
+            }
+        },
+    };
     let rel = as_release(py, release)?;
     let summary = run_blocking(py, OnInterrupt::Abandon, move |cancel| {
+        let mut set = ptacorr::output::OutputSet::begin(&out, "common")?;
         let data = CommonData::from_release(&rel, &rel.noise, s.n_frequencies)?;
         let fit = fit_common(&data, &s)?;
+        let sample = draw_curn(
+            &data,
+            &fit,
+            draw_settings.index,
+            draw_settings.n_draws,
+            draw_settings.seed,
+        )?;
         if cancel.load(Ordering::SeqCst) {
             return Err(interrupted());
         }
-        fit.write(&out, &rel, &data)?;
+        fit.write(&mut set, &rel, &data, Some((&draw_settings, &sample)))?;
+        set.commit()?;
         // The dict is the summary.json just written.
         let path = out.join("summary.json");
         let text = std::fs::read_to_string(&path).map_err(|e| ptacorr::Error::io(&path, e))?;

@@ -122,9 +122,12 @@ def test_common_demo_equals_the_command(cli, work, demo_release):
 
 
 def test_noise_shard_equals_the_command(cli, work, demo_release):
-    # Two of the 40 pulsars (shard 1 of 20) keep the MAP search short.
-    cli("noise", demo_release, "--shard", "1/20", "--starts", 2, "--out", work / "cli-noise")
-    out = ptacorr.noise(demo_release, out=work / "py-noise", shard="1/20", starts=2)
+    # Two of the 40 pulsars (shard 1 of 20) and a short fixed-white chain keep it quick; the
+    # chain tables must match too (draws depend on (seed, pulsar, chain) alone).
+    cli("noise", demo_release, "--shard", "1/20", "--starts", 2, "--fixed-white",
+        "--chains", 2, "--warmup", 100, "--draws", 100, "--out", work / "cli-noise")
+    out = ptacorr.noise(demo_release, out=work / "py-noise", shard="1/20", starts=2,
+                        mode="fixed-white", chains=2, warmup=100, draws=100)
     same_folder(work / "cli-noise", work / "py-noise")
     est = read_csv_columns(work / "cli-noise" / "estimates.csv")
     assert list(out["estimates"]["pulsar"]) == est["pulsar"]

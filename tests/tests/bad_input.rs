@@ -1194,7 +1194,8 @@ fn common_process_grids_priors_and_degenerate_noise_are_refused() {
         f(&mut s);
         s.validate().map_err(|e| e.to_string())
     };
-    let cases: Vec<(&str, Box<dyn Fn(&mut CommonSettings)>, Vec<&str>)> = vec![
+    type Edit = Box<dyn Fn(&mut CommonSettings)>;
+    let cases: Vec<(&str, Edit, Vec<&str>)> = vec![
         (
             "no index points",
             Box::new(|s| s.n_spectral_index = 0),
