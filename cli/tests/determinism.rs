@@ -96,7 +96,8 @@ fn every_artefact_is_byte_identical_across_runs_and_thread_counts() {
     let names = |t: &[(String, Vec<u8>)]| t.iter().map(|x| x.0.clone()).collect::<Vec<_>>();
     assert_eq!(names(&ta), names(&tb), "the two runs wrote different files");
     let pdfs = ta.iter().filter(|(n, _)| n.ends_with(".pdf")).count();
-    assert_eq!(pdfs, 3, "one PDF per folder kind");
+    // correlate draws two figures (angular correlation, per-frequency), null and inject one.
+    assert_eq!(pdfs, 4, "one PDF per figure");
     let differ: Vec<&str> = ta
         .iter()
         .zip(&tb)

@@ -219,10 +219,11 @@ fn outputs_have_the_documented_shape_and_shards_merge() {
         "rows",
         "assumptions",
         "provenance",
+        "target",
     ] {
         assert!(keys.contains(&k), "missing {k}");
     }
-    assert_eq!(keys.len(), 8);
+    assert_eq!(keys.len(), 9);
     assert_eq!(j["pattern"], "hd");
     assert_eq!(j["mode"], "reduced");
     assert_eq!(j["realizations"], 8);
