@@ -5,38 +5,10 @@
 
 use ptacorr::analysis::{correlate, CorrelateSettings};
 use ptacorr::release::read_release;
-use ptacorr_checks::{simulate_release, temp_dir};
+use ptacorr_checks::{numpy_python, simulate_release, temp_dir};
 use std::ffi::OsString;
 use std::path::{Path, PathBuf};
 use std::process::Command;
-
-/// The Python with NumPy: $PTACORR_PYTHON, else the repository's .venv (made by `./run setup`
-/// and `./run test`). Its absence is a failure, never a silent pass: a peer check that cannot
-/// run has checked nothing.
-fn python() -> PathBuf {
-    let repo = Path::new(env!("CARGO_MANIFEST_DIR"))
-        .parent()
-        .unwrap()
-        .to_path_buf();
-    let candidates: Vec<PathBuf> = std::env::var_os("PTACORR_PYTHON")
-        .map(PathBuf::from)
-        .into_iter()
-        .chain([repo.join(".venv/bin/python")])
-        .collect();
-    for c in &candidates {
-        let ok = Command::new(c)
-            .args(["-c", "import numpy"])
-            .status()
-            .is_ok_and(|s| s.success());
-        if ok {
-            return c.clone();
-        }
-    }
-    panic!(
-        "the NumPy peer check needs a Python with NumPy and found none (tried {candidates:?}): \
-         run `./run setup` (it makes .venv with NumPy) or set PTACORR_PYTHON to such a Python"
-    );
-}
 
 fn reference(file: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR"))
@@ -56,7 +28,7 @@ fn run(py: &Path, args: &[OsString]) -> String {
 }
 
 fn check(scenario: &str, seed: u64, k: usize, form: Option<&str>, name: &str) {
-    let py = python();
+    let py = numpy_python();
     let dir = temp_dir(name);
     let rel_dir = dir.join("release");
     simulate_release(scenario, &rel_dir, seed);
