@@ -223,7 +223,7 @@ pub fn bin_covariance_with(
 }
 
 /// The fit of the Hellings-Downs curve to the bins with their full covariance.
-#[derive(Clone, Debug, PartialEq, serde::Serialize)]
+#[derive(Clone, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct BinFit {
     /// Generalised least-squares A^2 of rho_B = A^2 hd_B.
     pub amplitude2: f64,
@@ -236,7 +236,7 @@ pub struct BinFit {
     pub p_value: Option<f64>,
     /// The A^2 at which the covariance was evaluated.
     pub covariance_amplitude2: f64,
-    pub assumptions: &'static str,
+    pub assumptions: String,
 }
 
 /// What the bin fit's p-value assumes.
@@ -296,7 +296,7 @@ pub fn fit_bins(rho: &[f64], hd: &[f64], cov: &BinCovariance) -> Result<BinFit> 
         degrees_of_freedom: dof,
         p_value,
         covariance_amplitude2: cov.amplitude2,
-        assumptions: BIN_FIT_ASSUMPTIONS,
+        assumptions: BIN_FIT_ASSUMPTIONS.to_string(),
     })
 }
 

@@ -54,6 +54,90 @@ pub fn fmt_f64(x: f64) -> String {
     format!("{x:?}")
 }
 
+/// The column names of a CSV row type: its serde field names, in order (a plain struct
+/// deriving `Deserialize`; empty for anything else).
+pub fn csv_columns<T: serde::de::DeserializeOwned>() -> &'static [&'static str] {
+    use serde::de::{Error as _, Visitor};
+    struct Names<'a>(&'a mut &'static [&'static str]);
+    impl<'de> serde::Deserializer<'de> for Names<'_> {
+        type Error = serde::de::value::Error;
+        fn deserialize_any<V: Visitor<'de>>(
+            self,
+            _: V,
+        ) -> std::result::Result<V::Value, Self::Error> {
+            Err(Self::Error::custom("not a struct"))
+        }
+        fn deserialize_struct<V: Visitor<'de>>(
+            self,
+            _: &'static str,
+            fields: &'static [&'static str],
+            _: V,
+        ) -> std::result::Result<V::Value, Self::Error> {
+            *self.0 = fields;
+            Err(Self::Error::custom("only the field names were wanted"))
+        }
+        serde::forward_to_deserialize_any! {
+            bool i8 i16 i32 i64 i128 u8 u16 u32 u64 u128 f32 f64 char str string bytes byte_buf
+            option unit unit_struct newtype_struct seq tuple tuple_struct map enum identifier
+            ignored_any
+        }
+    }
+    let mut fields: &'static [&'static str] = &[];
+    let _ = T::deserialize(Names(&mut fields));
+    fields
+}
+
+/// Read a CSV table with the row type it was written with (`T`): every column of `T` must be
+/// in the header (others are ignored), cells are trimmed, and a bad cell is an
+/// [`Error::Input`] naming the file, the line and the column. Rows come with their line.
+pub fn read_csv<T: serde::de::DeserializeOwned>(path: &Path) -> Result<Vec<(usize, T)>> {
+    let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
+    let mut rdr = csv::ReaderBuilder::new()
+        .trim(csv::Trim::All)
+        .from_reader(bytes.as_slice());
+    let bad = |e: csv::Error, header: &csv::StringRecord| {
+        let line = e.position().map(|p| p.line() as usize);
+        match e.kind() {
+            csv::ErrorKind::Deserialize { err, .. } => {
+                let column = err.field().and_then(|i| header.get(i as usize));
+                Error::input(path, line, column, err.kind().to_string())
+            }
+            _ => Error::input(path, line, None, e.to_string()),
+        }
+    };
+    let header = rdr
+        .headers()
+        .map_err(|e| bad(e, &csv::StringRecord::new()))?
+        .clone();
+    for column in csv_columns::<T>() {
+        if !header.iter().any(|h| h == *column) {
+            return Err(Error::input(
+                path,
+                Some(1),
+                Some(column),
+                "the column is missing from the header",
+            ));
+        }
+    }
+    let mut rows = Vec::new();
+    for rec in rdr.records() {
+        let rec = rec.map_err(|e| bad(e, &header))?;
+        let line = rec.position().map_or(0, |p| p.line() as usize);
+        let row = rec
+            .deserialize(Some(&header))
+            .map_err(|e| bad(e, &header))?;
+        rows.push((line, row));
+    }
+    Ok(rows)
+}
+
+/// Read a JSON file with the type it was written with; a bad file is an [`Error::Input`]
+/// naming the file, the line and serde's account of the field.
+pub fn read_json<T: serde::de::DeserializeOwned>(path: &Path) -> Result<T> {
+    let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, e))?;
+    serde_json::from_str(&text).map_err(|e| Error::input(path, Some(e.line()), None, e.to_string()))
+}
+
 /// The name of the manifest that closes an output set.
 pub const MANIFEST_FILE: &str = "manifest.json";
 

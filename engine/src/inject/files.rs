@@ -9,20 +9,20 @@ use serde::{Deserialize, Serialize};
 use std::fmt::Write as _;
 use std::path::Path;
 
-/// recovery.json.
-#[derive(Serialize, Deserialize)]
-pub(super) struct RecoveryFile {
-    pub(super) pattern: String,
-    pub(super) false_alarm_probability: f64,
-    pub(super) detection_threshold_snr: f64,
-    pub(super) realizations: u64,
-    pub(super) mode: String,
+/// recovery.json (written by the campaign and its merge, read by the merge and the figures).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct RecoveryFile {
+    pub pattern: String,
+    pub false_alarm_probability: f64,
+    pub detection_threshold_snr: f64,
+    pub realizations: u64,
+    pub mode: String,
     /// What the realizations are made on, in plain words (`TargetKind::describe`).
     #[serde(default)]
-    pub(super) target: String,
-    pub(super) rows: Vec<RecoveryRow>,
-    pub(super) assumptions: String,
-    pub(super) provenance: serde_json::Value,
+    pub target: String,
+    pub rows: Vec<RecoveryRow>,
+    pub assumptions: String,
+    pub provenance: serde_json::Value,
 }
 
 impl Outcome {

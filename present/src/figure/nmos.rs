@@ -59,8 +59,7 @@ pub(crate) fn draw(
     let fixed = data
         .summary
         .patterns
-        .iter()
-        .find(|p| p.name == "hd")
+        .get("hd")
         .map(|p| p.amplitude2)
         .unwrap_or(f64::NAN);
     let a2: Vec<f64> = n.draws.iter().map(|d| d.estimates[0].amplitude2).collect();

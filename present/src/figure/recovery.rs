@@ -171,23 +171,23 @@ pub(crate) fn draw(
             sample: Sample::Marker(DET_MARKER, true),
         },
     ];
-    let fap = format::compact(data.false_alarm_probability, 3, Style::Figure);
+    let fap = format::compact(data.recovery.false_alarm_probability, 3, Style::Figure);
 
     let below = recovery
         .iter()
         .filter(|r| r.placement == "below_axis")
         .count();
-    let target = if data.target.is_empty() {
+    let target = if data.recovery.target.is_empty() {
         String::new()
     } else {
-        format!(" ({})", data.target)
+        format!(" ({})", data.recovery.target)
     };
     let mut caption = format!(
         "{} pattern, {} mode{target}, {} realizations per amplitude. (a) Error bars: ±1 standard deviation of Â² over realizations. (b) Detected means S/N ≥ {} (false-alarm probability {}); binomial 1σ bars.",
-        pattern_words(&data.pattern),
-        data.mode,
-        data.realizations,
-        format::fixed(data.detection_threshold_snr, 2, Style::Figure),
+        pattern_words(&data.recovery.pattern),
+        data.recovery.mode,
+        data.recovery.realizations,
+        format::fixed(data.recovery.detection_threshold_snr, 2, Style::Figure),
         fap,
     );
     if let Some(z) = data.rows.iter().find(|r| r.amplitude == 0.0) {
@@ -263,7 +263,7 @@ pub(crate) fn draw(
 
     let title = format!(
         "Injection recovery of the {} pattern",
-        pattern_words(&data.pattern)
+        pattern_words(&data.recovery.pattern)
     );
     let mut svg = Svg::new(w, h, stem);
 
@@ -414,7 +414,7 @@ pub(crate) fn draw(
     svg.text(
         &format!(
             "false-alarm probability {fap}: S/N ≥ {}",
-            format::fixed(data.detection_threshold_snr, 2, Style::Figure)
+            format::fixed(data.recovery.detection_threshold_snr, 2, Style::Figure)
         ),
         pb.right() - 3.0,
         pb.bottom() - 4.0,
@@ -431,10 +431,10 @@ pub(crate) fn draw(
     let sidecar = Sidecar {
         figure: STEM,
         source_folder: source.to_string(),
-        pattern: data.pattern.clone(),
-        mode: data.mode.clone(),
-        false_alarm_probability: data.false_alarm_probability,
-        detection_threshold_snr: data.detection_threshold_snr,
+        pattern: data.recovery.pattern.clone(),
+        mode: data.recovery.mode.clone(),
+        false_alarm_probability: data.recovery.false_alarm_probability,
+        detection_threshold_snr: data.recovery.detection_threshold_snr,
         recovery,
         detection,
         omitted_zero_rows: omitted,

@@ -58,10 +58,13 @@ pub(crate) fn draw(
     source: &str,
 ) -> Result<Drawn, FigureError> {
     let s = &data.summary;
-    let hd = s.pattern("hd").ok_or_else(|| FigureError::MissingField {
-        path: data.dir.join(SUMMARY_JSON),
-        field: "patterns.hd".to_string(),
-    })?;
+    let hd = s
+        .patterns
+        .get("hd")
+        .ok_or_else(|| FigureError::MissingField {
+            path: data.dir.join(SUMMARY_JSON),
+            field: "patterns.hd".to_string(),
+        })?;
     // Each frequency's estimate of A^2 and the power law at the broadband amplitude.
     let points: Vec<SidePoint> = data
         .per_frequency
@@ -73,7 +76,7 @@ pub(crate) fn draw(
                 f64::NAN
             };
             SidePoint {
-                index: r.index,
+                index: r.index as u64,
                 frequency_nhz: r.frequency_hz * 1e9,
                 amplitude2: r.amplitude2,
                 sigma: r.amplitude2_sigma,
