@@ -12,14 +12,12 @@ use crate::optimal::{
     PairCorrelations, Weighted,
 };
 use crate::orf::{hellings_downs, pattern_matrix, Pattern};
-use crate::output::fmt_f64;
 use crate::per_frequency::{per_frequency, PerFrequency};
 use crate::reduce::{reduce_release, FrequencyGrid, Reduced};
 use crate::release::Release;
 use crate::spectrum::{template, PowerLaw};
 use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
-use std::fmt::Write as _;
 use std::path::Path;
 
 /// Where the common process in each pulsar's auto-power comes from.
@@ -485,13 +483,13 @@ impl Correlation {
             provenance,
             noise_marginalised: nmos.map(|n| n.0.clone()),
         };
-        let pairs = self.pairs_csv();
-        let bins = bins_csv(&self.bins);
+        let pairs = self.pairs_csv()?;
+        let bins = crate::output::csv_table(&self.bins, "bins.csv")?;
         // One output set: all three files or none (output.rs).
         let mut set = crate::output::OutputSet::begin(dir, "correlate")?;
         set.write_json("summary.json", &summary)?;
         set.write("pairs.csv", pairs.as_bytes())?;
-        set.write("bins.csv", bins.as_bytes())?;
+        set.write("bins.csv", &bins)?;
         use crate::common::write::to_csv;
         if let Some(pf) = &self.per_frequency {
             let a2 = self.estimates[&Pattern::Hd].amplitude2;
@@ -525,41 +523,24 @@ impl Correlation {
         set.commit().map(|_| ())
     }
 
-    /// `pulsar_a,pulsar_b,angle_deg,rho,sigma,hd`.
-    pub fn pairs_csv(&self) -> String {
-        let mut s = String::from("pulsar_a,pulsar_b,angle_deg,rho,sigma,hd\n");
+    /// The rows of `pairs.csv`.
+    pub fn pair_rows(&self) -> Vec<PairRow> {
         let p = &self.pairs;
-        for i in 0..p.len() {
-            let _ = writeln!(
-                s,
-                "{},{},{},{},{},{}",
-                self.labels[p.a[i]],
-                self.labels[p.b[i]],
-                fmt_f64(p.angle[i].to_degrees()),
-                fmt_f64(p.rho[i]),
-                fmt_f64(p.sigma[i]),
-                fmt_f64(hellings_downs(p.cos_angle[i]))
-            );
-        }
-        s
+        (0..p.len())
+            .map(|i| PairRow {
+                pulsar_a: self.labels[p.a[i]].clone(),
+                pulsar_b: self.labels[p.b[i]].clone(),
+                angle_deg: p.angle[i].to_degrees(),
+                rho: p.rho[i],
+                sigma: p.sigma[i],
+                hd: hellings_downs(p.cos_angle[i]),
+            })
+            .collect()
     }
-}
 
-/// `angle_lo_deg,angle_hi_deg,angle_mean_deg,n_pairs,rho,sigma,hd`.
-pub fn bins_csv(bins: &[Bin]) -> String {
-    let mut s = String::from("angle_lo_deg,angle_hi_deg,angle_mean_deg,n_pairs,rho,sigma,hd\n");
-    for b in bins {
-        let _ = writeln!(
-            s,
-            "{},{},{},{},{},{},{}",
-            fmt_f64(b.angle_lo_deg),
-            fmt_f64(b.angle_hi_deg),
-            fmt_f64(b.angle_mean_deg),
-            b.n_pairs,
-            fmt_f64(b.rho),
-            fmt_f64(b.sigma),
-            fmt_f64(b.hd)
-        );
+    /// The text of `pairs.csv` (`pulsar_a,pulsar_b,angle_deg,rho,sigma,hd`).
+    pub fn pairs_csv(&self) -> Result<String> {
+        let bytes = crate::output::csv_table(&self.pair_rows(), "pairs.csv")?;
+        Ok(String::from_utf8(bytes).expect("csv of UTF-8 labels and numbers"))
     }
-    s
 }

@@ -54,6 +54,276 @@ pub fn fmt_f64(x: f64) -> String {
     format!("{x:?}")
 }
 
+/// A CSV table from rows of a plain struct type (`T`'s fields are its columns, in order), with
+/// every `f64` in the round-trip form of [`fmt_f64`] (csv's own float form differs for some
+/// magnitudes), integers and strings as they are, `None` as an empty cell. The header is
+/// written even when there are no rows. This is the one writer of the engine's tables whose
+/// floats must read back bit for bit; [`read_csv`] reads them with the same `T`.
+pub fn csv_table<T: serde::Serialize + serde::de::DeserializeOwned>(
+    rows: &[T],
+    what: &str,
+) -> Result<Vec<u8>> {
+    let bad = |e: String| Error::NonFinite {
+        what: format!("{what} ({e})"),
+    };
+    let mut w = csv::Writer::from_writer(Vec::new());
+    w.write_record(csv_columns::<T>())
+        .map_err(|e| bad(e.to_string()))?;
+    let mut cells = Vec::new();
+    for r in rows {
+        cells.clear();
+        r.serialize(round_trip::Row(&mut cells))
+            .map_err(|e| bad(e.to_string()))?;
+        w.write_record(&cells).map_err(|e| bad(e.to_string()))?;
+    }
+    w.into_inner().map_err(|e| bad(e.to_string()))
+}
+
+/// The serializer behind [`csv_table`]: a struct of scalars becomes one text cell per field.
+mod round_trip {
+    use serde::ser::{Error as _, Impossible, Serialize, SerializeStruct, Serializer};
+    type E = serde::de::value::Error;
+
+    /// A row: a struct whose fields are scalars (or options of scalars).
+    pub(super) struct Row<'a>(pub(super) &'a mut Vec<String>);
+
+    /// One cell.
+    struct Cell;
+
+    fn not_a_cell<T>(what: &str) -> Result<T, E> {
+        Err(E::custom(format!("a CSV cell cannot hold {what}")))
+    }
+
+    impl SerializeStruct for Row<'_> {
+        type Ok = ();
+        type Error = E;
+        fn serialize_field<T: ?Sized + Serialize>(
+            &mut self,
+            _: &'static str,
+            value: &T,
+        ) -> Result<(), E> {
+            self.0.push(value.serialize(Cell)?);
+            Ok(())
+        }
+        fn end(self) -> Result<(), E> {
+            Ok(())
+        }
+    }
+
+    macro_rules! refuse {
+        ($($f:ident($t:ty)),*) => {$(
+            fn $f(self, _: $t) -> Result<Self::Ok, E> { not_a_cell(stringify!($t)) }
+        )*};
+    }
+
+    impl<'a> Serializer for Row<'a> {
+        type Ok = ();
+        type Error = E;
+        type SerializeSeq = Impossible<(), E>;
+        type SerializeTuple = Impossible<(), E>;
+        type SerializeTupleStruct = Impossible<(), E>;
+        type SerializeTupleVariant = Impossible<(), E>;
+        type SerializeMap = Impossible<(), E>;
+        type SerializeStruct = Row<'a>;
+        type SerializeStructVariant = Impossible<(), E>;
+        fn serialize_struct(self, _: &'static str, _: usize) -> Result<Row<'a>, E> {
+            Ok(self)
+        }
+        refuse!(
+            serialize_bool(bool),
+            serialize_i8(i8),
+            serialize_i16(i16),
+            serialize_i32(i32),
+            serialize_i64(i64),
+            serialize_u8(u8),
+            serialize_u16(u16),
+            serialize_u32(u32),
+            serialize_u64(u64),
+            serialize_f32(f32),
+            serialize_f64(f64),
+            serialize_char(char),
+            serialize_str(&str),
+            serialize_bytes(&[u8]),
+            serialize_unit_struct(&'static str)
+        );
+        fn serialize_none(self) -> Result<(), E> {
+            not_a_cell("a lone None")
+        }
+        fn serialize_some<T: ?Sized + Serialize>(self, _: &T) -> Result<(), E> {
+            not_a_cell("a lone Some")
+        }
+        fn serialize_unit(self) -> Result<(), E> {
+            not_a_cell("()")
+        }
+        fn serialize_unit_variant(self, _: &'static str, _: u32, _: &'static str) -> Result<(), E> {
+            not_a_cell("an enum")
+        }
+        fn serialize_newtype_struct<T: ?Sized + Serialize>(
+            self,
+            _: &'static str,
+            _: &T,
+        ) -> Result<(), E> {
+            not_a_cell("a newtype")
+        }
+        fn serialize_newtype_variant<T: ?Sized + Serialize>(
+            self,
+            _: &'static str,
+            _: u32,
+            _: &'static str,
+            _: &T,
+        ) -> Result<(), E> {
+            not_a_cell("an enum")
+        }
+        fn serialize_seq(self, _: Option<usize>) -> Result<Self::SerializeSeq, E> {
+            not_a_cell("a sequence")
+        }
+        fn serialize_tuple(self, _: usize) -> Result<Self::SerializeTuple, E> {
+            not_a_cell("a tuple")
+        }
+        fn serialize_tuple_struct(
+            self,
+            _: &'static str,
+            _: usize,
+        ) -> Result<Self::SerializeTupleStruct, E> {
+            not_a_cell("a tuple")
+        }
+        fn serialize_tuple_variant(
+            self,
+            _: &'static str,
+            _: u32,
+            _: &'static str,
+            _: usize,
+        ) -> Result<Self::SerializeTupleVariant, E> {
+            not_a_cell("an enum")
+        }
+        fn serialize_map(self, _: Option<usize>) -> Result<Self::SerializeMap, E> {
+            not_a_cell("a map")
+        }
+        fn serialize_struct_variant(
+            self,
+            _: &'static str,
+            _: u32,
+            _: &'static str,
+            _: usize,
+        ) -> Result<Self::SerializeStructVariant, E> {
+            not_a_cell("an enum")
+        }
+    }
+
+    macro_rules! display {
+        ($($f:ident($t:ty)),*) => {$(
+            fn $f(self, v: $t) -> Result<String, E> { Ok(v.to_string()) }
+        )*};
+    }
+
+    impl Serializer for Cell {
+        type Ok = String;
+        type Error = E;
+        type SerializeSeq = Impossible<String, E>;
+        type SerializeTuple = Impossible<String, E>;
+        type SerializeTupleStruct = Impossible<String, E>;
+        type SerializeTupleVariant = Impossible<String, E>;
+        type SerializeMap = Impossible<String, E>;
+        type SerializeStruct = Impossible<String, E>;
+        type SerializeStructVariant = Impossible<String, E>;
+        display!(
+            serialize_bool(bool),
+            serialize_i8(i8),
+            serialize_i16(i16),
+            serialize_i32(i32),
+            serialize_i64(i64),
+            serialize_u8(u8),
+            serialize_u16(u16),
+            serialize_u32(u32),
+            serialize_u64(u64),
+            serialize_char(char),
+            serialize_str(&str)
+        );
+        fn serialize_f32(self, v: f32) -> Result<String, E> {
+            Ok(super::fmt_f64(v as f64))
+        }
+        fn serialize_f64(self, v: f64) -> Result<String, E> {
+            Ok(super::fmt_f64(v))
+        }
+        fn serialize_bytes(self, _: &[u8]) -> Result<String, E> {
+            not_a_cell("bytes")
+        }
+        fn serialize_none(self) -> Result<String, E> {
+            Ok(String::new())
+        }
+        fn serialize_some<T: ?Sized + Serialize>(self, v: &T) -> Result<String, E> {
+            v.serialize(self)
+        }
+        fn serialize_unit(self) -> Result<String, E> {
+            Ok(String::new())
+        }
+        fn serialize_unit_struct(self, _: &'static str) -> Result<String, E> {
+            Ok(String::new())
+        }
+        fn serialize_unit_variant(
+            self,
+            _: &'static str,
+            _: u32,
+            name: &'static str,
+        ) -> Result<String, E> {
+            Ok(name.to_string())
+        }
+        fn serialize_newtype_struct<T: ?Sized + Serialize>(
+            self,
+            _: &'static str,
+            v: &T,
+        ) -> Result<String, E> {
+            v.serialize(self)
+        }
+        fn serialize_newtype_variant<T: ?Sized + Serialize>(
+            self,
+            _: &'static str,
+            _: u32,
+            _: &'static str,
+            _: &T,
+        ) -> Result<String, E> {
+            not_a_cell("an enum with data")
+        }
+        fn serialize_seq(self, _: Option<usize>) -> Result<Self::SerializeSeq, E> {
+            not_a_cell("a sequence")
+        }
+        fn serialize_tuple(self, _: usize) -> Result<Self::SerializeTuple, E> {
+            not_a_cell("a tuple")
+        }
+        fn serialize_tuple_struct(
+            self,
+            _: &'static str,
+            _: usize,
+        ) -> Result<Self::SerializeTupleStruct, E> {
+            not_a_cell("a tuple")
+        }
+        fn serialize_tuple_variant(
+            self,
+            _: &'static str,
+            _: u32,
+            _: &'static str,
+            _: usize,
+        ) -> Result<Self::SerializeTupleVariant, E> {
+            not_a_cell("an enum")
+        }
+        fn serialize_map(self, _: Option<usize>) -> Result<Self::SerializeMap, E> {
+            not_a_cell("a map")
+        }
+        fn serialize_struct(self, _: &'static str, _: usize) -> Result<Self::SerializeStruct, E> {
+            not_a_cell("a nested struct")
+        }
+        fn serialize_struct_variant(
+            self,
+            _: &'static str,
+            _: u32,
+            _: &'static str,
+            _: usize,
+        ) -> Result<Self::SerializeStructVariant, E> {
+            not_a_cell("an enum")
+        }
+    }
+}
+
 /// The column names of a CSV row type: its serde field names, in order (a plain struct
 /// deriving `Deserialize`; empty for anything else).
 pub fn csv_columns<T: serde::de::DeserializeOwned>() -> &'static [&'static str] {
