@@ -18,13 +18,10 @@ pub(crate) struct TempDir(PathBuf);
 impl TempDir {
     pub(crate) fn new(label: &str) -> Self {
         static N: AtomicU64 = AtomicU64::new(0);
-        let p = std::env::temp_dir().join(format!(
-            "ptacorr-figure-{label}-{}-{}",
-            std::process::id(),
+        let p = ptacorr::testing::temp_dir(&format!(
+            "figure-{label}-{}",
             N.fetch_add(1, Ordering::Relaxed)
         ));
-        let _ = std::fs::remove_dir_all(&p);
-        std::fs::create_dir_all(&p).expect("create temporary folder");
         Self(p)
     }
 
