@@ -892,6 +892,75 @@ pub fn non_utf8_message(bytes: &[u8], e: &std::str::Utf8Error) -> String {
 mod tests {
     use super::*;
 
+    #[derive(Debug, PartialEq, serde::Serialize, serde::Deserialize)]
+    struct Row {
+        label: String,
+        n: u64,
+        x: f64,
+        y: Option<f64>,
+    }
+
+    /// csv_table writes floats as Rust's `{:?}` (the standard library's documented shortest
+    /// round-trip form), not csv's own form, which differs for 1e-5 <= |x| < 1e-4 (`0.00001`
+    /// against `1e-5`); read_csv reads every value back bit for bit and names a bad cell's line
+    /// and column.
+    #[test]
+    fn csv_tables_round_trip_in_the_debug_float_form() {
+        let rows = vec![
+            Row {
+                label: "P01".into(),
+                n: 3,
+                x: 1e-5,
+                y: None,
+            },
+            Row {
+                label: "P02".into(),
+                n: 0,
+                x: -0.1 - 0.2,
+                y: Some(1.0),
+            },
+            Row {
+                label: "P03".into(),
+                n: 7,
+                x: 1e16,
+                y: Some(f64::MIN_POSITIVE),
+            },
+        ];
+        let bytes = csv_table(&rows, "test").unwrap();
+        let text = String::from_utf8(bytes).unwrap();
+        assert_eq!(
+            text,
+            "label,n,x,y\nP01,3,1e-5,\nP02,0,-0.30000000000000004,1.0\nP03,7,1e16,2.2250738585072014e-308\n"
+        );
+        assert_eq!(csv_table::<Row>(&[], "test").unwrap(), b"label,n,x,y\n");
+        let dir = crate::testing::temp_dir("csv-table");
+        let path = dir.join("t.csv");
+        std::fs::write(&path, &text).unwrap();
+        let back: Vec<Row> = read_csv(&path)
+            .unwrap()
+            .into_iter()
+            .map(|(_, r)| r)
+            .collect();
+        assert_eq!(back, rows);
+        std::fs::write(&path, text.replace("1e16", "ten")).unwrap();
+        match read_csv::<Row>(&path).unwrap_err() {
+            Error::Input { line, field, .. } => {
+                assert_eq!(line, Some(4));
+                assert_eq!(field.as_deref(), Some("x"));
+            }
+            e => panic!("unexpected {e}"),
+        }
+        std::fs::write(&path, "label,n,y\nP01,3,\n").unwrap();
+        match read_csv::<Row>(&path).unwrap_err() {
+            Error::Input { line, field, .. } => {
+                assert_eq!(line, Some(1));
+                assert_eq!(field.as_deref(), Some("x"));
+            }
+            e => panic!("unexpected {e}"),
+        }
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
+
     #[test]
     fn atomic_write_leaves_only_the_final_file() {
         let dir = std::env::temp_dir().join(format!("ptacorr-output-{}", std::process::id()));

@@ -394,13 +394,7 @@ pub(crate) fn draw(
         a: plot.x,
         b: plot.right(),
     };
-    let ys = Scale {
-        lo: yt.lo,
-        hi: yt.hi,
-        log: false,
-        a: plot.bottom(),
-        b: plot.y,
-    };
+    let ys = Scale::y(&yt, &plot, false);
 
     let title = format!("Angular correlation: {}", s.title);
     let mut svg = Svg::new(w, h, stem);

@@ -1,5 +1,8 @@
-//! Readers for ptacorr's output folders. Every value is checked on the way in and a bad one
-//! is reported with the file, the field (JSON path or CSV line and column) and the reason.
+//! Readers for ptacorr's output folders. Every file is read with the engine type it is
+//! written with (`ptacorr::output::read_json` / `read_csv`: one schema per file, defined once
+//! in the engine); the ranges a figure relies on (angles, probabilities, non-negative sigmas,
+//! finite values) are then checked, and a bad value is reported with the file and the field
+//! (JSON) or the line and column (CSV).
 
 use std::path::{Path, PathBuf};
 

@@ -215,20 +215,8 @@ pub(crate) fn draw(
         lines,
         cap_y,
     } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
-    let xs = Scale {
-        lo: xt.lo,
-        hi: xt.hi,
-        log: false,
-        a: plot.x,
-        b: plot.right(),
-    };
-    let ys = Scale {
-        lo: yt.lo,
-        hi: yt.hi,
-        log: false,
-        a: plot.bottom(),
-        b: plot.y,
-    };
+    let xs = Scale::x(&xt, &plot, false);
+    let ys = Scale::y(&yt, &plot, false);
 
     let title = format!(
         "Null distribution of the {} S/N",

@@ -268,20 +268,8 @@ pub(crate) fn draw(
     let mut svg = Svg::new(w, h, stem);
 
     // Panel (a).
-    let xs = Scale {
-        lo: ta.lo,
-        hi: ta.hi,
-        log: true,
-        a: pa.x,
-        b: pa.right(),
-    };
-    let ys = Scale {
-        lo: ta.lo,
-        hi: ta.hi,
-        log: true,
-        a: pa.bottom(),
-        b: pa.y,
-    };
+    let xs = Scale::x(&ta, &pa, true);
+    let ys = Scale::y(&ta, &pa, true);
     let clip_a = svg.clip(pa);
     draw_axes(
         &mut svg,
@@ -342,13 +330,7 @@ pub(crate) fn draw(
     )?;
 
     // Panel (b).
-    let xs = Scale {
-        lo: tbx.lo,
-        hi: tbx.hi,
-        log: true,
-        a: pb.x,
-        b: pb.right(),
-    };
+    let xs = Scale::x(&tbx, &pb, true);
     let ys = Scale {
         lo: 0.0,
         hi: 1.0,

@@ -149,20 +149,8 @@ pub(crate) fn draw(
         lines,
         cap_y,
     } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
-    let xs = Scale {
-        lo: xt.lo,
-        hi: xt.hi,
-        log: true,
-        a: plot.x,
-        b: plot.right(),
-    };
-    let ys = Scale {
-        lo: yt.lo,
-        hi: yt.hi,
-        log: false,
-        a: plot.bottom(),
-        b: plot.y,
-    };
+    let xs = Scale::x(&xt, &plot, true);
+    let ys = Scale::y(&yt, &plot, false);
     let title = format!("Per-frequency statistic: {}", s.title);
     let mut svg = Svg::new(w, h, stem);
     let clip = svg.clip(plot);
