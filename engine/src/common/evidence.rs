@@ -108,10 +108,11 @@ impl CommonSettings {
                 ),
             ));
         }
-        if !(-30.0..=0.0).contains(&lo) || !(-30.0..=0.0).contains(&hi) {
+        let [alo, ahi] = crate::noise::COMMON_LOG10_AMPLITUDE_RANGE;
+        if !(alo..=ahi).contains(&lo) || !(alo..=ahi).contains(&hi) {
             return Err(Error::setting(
                 "log10-amplitude-range",
-                format!("log10 A must lie in [-30, 0], got [{lo}, {hi}]"),
+                format!("log10 A must lie in [{alo}, {ahi}], got [{lo}, {hi}]"),
             ));
         }
         let (g0, g1) = (self.spectral_index_min, self.spectral_index_max);
