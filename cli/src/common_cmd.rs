@@ -38,9 +38,13 @@ pub struct CommonArgs {
     /// Prior range of the spectral index: LO,HI.
     #[arg(long, default_value = "0,7")]
     index_range: String,
-    /// Number of spectral-index nodes (odd; Simpson's rule).
+    /// Number of spectral-index nodes the rule starts from (odd; Simpson's rule; the spacing is
+    /// halved until the evidence changes by less than --index-tolerance).
     #[arg(long, default_value_t = 41)]
     index_points: usize,
+    /// Relative change of the varied-index evidence at which the gamma rule stops refining.
+    #[arg(long, default_value_t = 1e-3)]
+    index_tolerance: f64,
     /// The fixed spectral index.
     #[arg(long, default_value_t = ptacorr::analysis::DEFAULT_SPECTRAL_INDEX)]
     fixed_index: f64,
@@ -105,6 +109,7 @@ impl CommonArgs {
             spectral_index_min: g0,
             spectral_index_max: g1,
             n_spectral_index: self.index_points,
+            index_tolerance: self.index_tolerance,
             fixed_spectral_index: self.fixed_index,
             n_table_amplitudes: self.amplitude_points,
             amplitude_prior: match self.amplitude_prior {
