@@ -8,9 +8,9 @@ use ptacorr::common::{
     DrawSettings, FitStatistic, FittedCommon, FreeSpectrumSettings, COMMON_ASSUMPTIONS,
     FREE_SPECTRUM_ASSUMPTIONS,
 };
-use ptacorr::sampler::SamplerSettings;
 use ptacorr::output::OutputSet;
 use ptacorr::release::read_release;
+use ptacorr::sampler::SamplerSettings;
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 

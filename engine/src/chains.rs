@@ -19,8 +19,8 @@
 
 use crate::error::{Error, Result};
 use crate::noise::{
-    check_label, check_power_law, PulsarNoise, RedProcess, WhiteNoise, COMMON_LOG10_AMPLITUDE_RANGE,
-    EFAC_RANGE, WHITE_LOG10_S_RANGE,
+    check_label, check_power_law, PulsarNoise, RedProcess, WhiteNoise,
+    COMMON_LOG10_AMPLITUDE_RANGE, EFAC_RANGE, WHITE_LOG10_S_RANGE,
 };
 use crate::output::{fmt_f64, quote, truncate, QUOTE_CHARS};
 use std::collections::BTreeSet;
@@ -155,9 +155,7 @@ impl Parameter {
             Parameter::CommonLog10Power(_) => {
                 // The range free-spectrum priors may take (common/free_spectrum.rs).
                 if !(-40.0..=0.0).contains(&v) {
-                    return Err(format!(
-                        "must be a log10 power in s^2 in [-40, 0], got {v}"
-                    ));
+                    return Err(format!("must be a log10 power in s^2 in [-40, 0], got {v}"));
                 }
             }
         }
@@ -915,11 +913,20 @@ mod tests {
         };
         let mut t = ChainTable::new(vec![Parameter::CommonLog10Amplitude]).unwrap();
         t.push(draw(-25.0)).unwrap();
-        t.push(ChainDraw { draw: 1, ..draw(-3.0) }).unwrap();
-        let e = t.push(ChainDraw { draw: 2, ..draw(-31.0) }).unwrap_err().to_string();
+        t.push(ChainDraw {
+            draw: 1,
+            ..draw(-3.0)
+        })
+        .unwrap();
+        let e = t
+            .push(ChainDraw {
+                draw: 2,
+                ..draw(-31.0)
+            })
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("[-30, 0]"), "{e}");
         let mut r = ChainTable::new(vec![Parameter::RedLog10Amplitude]).unwrap();
         assert!(r.push(draw(-25.0)).is_err());
     }
 }
-

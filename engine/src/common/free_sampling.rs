@@ -150,7 +150,11 @@ pub fn sample_free_spectrum(
         let mut v: Vec<f64> = log10_rho.iter().flatten().map(|d| d[j]).collect();
         if v.iter().any(|x| !x.is_finite()) {
             return Err(Error::NonFinite {
-                what: format!("a free-spectrum draw of {} at frequency {}", model.name(), j + 1),
+                what: format!(
+                    "a free-spectrum draw of {} at frequency {}",
+                    model.name(),
+                    j + 1
+                ),
             });
         }
         v.sort_by(f64::total_cmp);
@@ -250,7 +254,10 @@ pub fn write_free_spectrum(
     samples: &[FreeSpectrumSamples],
 ) -> Result<Vec<String>> {
     let rows: Vec<&FreeSpectrumRow> = samples.iter().flat_map(|s| &s.rows).collect();
-    set.write("free-spectrum.csv", &super::write::to_csv(&rows, "free-spectrum.csv")?)?;
+    set.write(
+        "free-spectrum.csv",
+        &super::write::to_csv(&rows, "free-spectrum.csv")?,
+    )?;
     let mut names = vec!["free-spectrum.csv".to_string()];
     let mut models = Vec::new();
     for s in samples {
@@ -337,8 +344,12 @@ mod tests {
         let mid = cdf.partition_point(|&c| c < 0.5 * total);
         let want = us[mid];
         let mean: f64 = us.iter().zip(&p).map(|(u, w)| u * w).sum::<f64>() / p.iter().sum::<f64>();
-        let var: f64 =
-            us.iter().zip(&p).map(|(u, w)| (u - mean).powi(2) * w).sum::<f64>() / p.iter().sum::<f64>();
+        let var: f64 = us
+            .iter()
+            .zip(&p)
+            .map(|(u, w)| (u - mean).powi(2) * w)
+            .sum::<f64>()
+            / p.iter().sum::<f64>();
         let settings = FreeSpectrumSettings {
             models: vec![CommonModel::Curn],
             log10_power_min: lo,
@@ -366,8 +377,11 @@ mod tests {
         // The chain table carries every draw and reads back.
         let t = s.table().unwrap();
         assert_eq!(t.len(), 4000);
-        let back = ChainTable::parse(t.to_csv().unwrap().as_bytes(), std::path::Path::new("c.csv"))
-            .unwrap();
+        let back = ChainTable::parse(
+            t.to_csv().unwrap().as_bytes(),
+            std::path::Path::new("c.csv"),
+        )
+        .unwrap();
         assert_eq!(back.len(), 4000);
         // Same seed, same draws (independent of threads by construction of the streams).
         let again = sample_free_spectrum(&data, CommonModel::Curn, &settings, None).unwrap();
@@ -383,7 +397,11 @@ mod tests {
             sampler: SamplerSettings::default(),
             seed: 1,
         };
-        assert!(s.check().unwrap_err().to_string().contains("log10-power-range"));
+        assert!(s
+            .check()
+            .unwrap_err()
+            .to_string()
+            .contains("log10-power-range"));
         s.log10_power_max = -8.0;
         s.models.clear();
         assert!(s.check().is_err());

@@ -57,7 +57,8 @@ pub fn read_free_spectrum(dir: &Path) -> Result<Vec<FreeSpectrumPoint>, FigureEr
             reason: reason.to_string(),
         };
         let vals = [p.frequency_hz, p.median, p.lo_68, p.hi_68, p.lo_95, p.hi_95];
-        if vals.iter().any(|v| !v.is_finite()) || p.power_law_log10_rho.is_some_and(|v| !v.is_finite())
+        if vals.iter().any(|v| !v.is_finite())
+            || p.power_law_log10_rho.is_some_and(|v| !v.is_finite())
         {
             return Err(bad("median", "a value is not a finite number"));
         }
@@ -66,7 +67,10 @@ pub fn read_free_spectrum(dir: &Path) -> Result<Vec<FreeSpectrumPoint>, FigureEr
         }
         if !(p.lo_95 <= p.lo_68 && p.lo_68 <= p.median && p.median <= p.hi_68 && p.hi_68 <= p.hi_95)
         {
-            return Err(bad("lo_95", "the intervals are not nested around the median"));
+            return Err(bad(
+                "lo_95",
+                "the intervals are not nested around the median",
+            ));
         }
         out.push(p);
     }
@@ -151,7 +155,10 @@ pub(crate) fn draw(
                 true,
             ),
         });
-        if points.iter().any(|p| p.model == *m && p.power_law_log10_rho.is_some()) {
+        if points
+            .iter()
+            .any(|p| p.model == *m && p.power_law_log10_rho.is_some())
+        {
             items.push(LegendItem {
                 label: format!("{}: power law of the grid fit", label(m)),
                 sample: Sample::Line(Stroke::new(colour(m), 1.0, LineStyle::Dashed)),
@@ -302,7 +309,12 @@ mod tests {
     #[test]
     fn draws_every_point_and_is_deterministic() {
         let pts: Vec<FreeSpectrumPoint> = (1..=5)
-            .flat_map(|j| [row("curn", j, -11.0 - j as f64), row("hd", j, -11.1 - j as f64)])
+            .flat_map(|j| {
+                [
+                    row("curn", j, -11.0 - j as f64),
+                    row("hd", j, -11.1 - j as f64),
+                ]
+            })
             .collect();
         let opts = FigureOptions::default();
         let a = draw(&pts, "fixture", &opts, STEM, "c").unwrap();
