@@ -3,12 +3,14 @@
 
 use anyhow::{Context, Result};
 use ptacorr::common::{
-    check_draws, comparison_name, draw_curn, fit_common, read_fitted_common, AmplitudePrior,
-    CommonData, CommonModel, CommonSettings, DrawIndex, DrawSettings, FitStatistic, FittedCommon,
-    COMMON_ASSUMPTIONS,
+    check_draws, comparison_name, draw_curn, fit_common, read_fitted_common, sample_free_spectrum,
+    write_free_spectrum, AmplitudePrior, CommonData, CommonModel, CommonSettings, DrawIndex,
+    DrawSettings, FitStatistic, FittedCommon, FreeSpectrumSettings, COMMON_ASSUMPTIONS,
+    FREE_SPECTRUM_ASSUMPTIONS,
 };
 use ptacorr::output::OutputSet;
 use ptacorr::release::read_release;
+use ptacorr::sampler::SamplerSettings;
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
@@ -36,9 +38,13 @@ pub struct CommonArgs {
     /// Prior range of the spectral index: LO,HI.
     #[arg(long, default_value = "0,7")]
     index_range: String,
-    /// Number of spectral-index nodes (odd; Simpson's rule).
+    /// Number of spectral-index nodes the rule starts from (odd; Simpson's rule; the spacing is
+    /// halved until the evidence changes by less than --index-tolerance).
     #[arg(long, default_value_t = 41)]
     index_points: usize,
+    /// Relative change of the varied-index evidence at which the gamma rule stops refining.
+    #[arg(long, default_value_t = 1e-3)]
+    index_tolerance: f64,
     /// The fixed spectral index.
     #[arg(long, default_value_t = ptacorr::analysis::DEFAULT_SPECTRAL_INDEX)]
     fixed_index: f64,
@@ -56,6 +62,23 @@ pub struct CommonArgs {
     /// Seed of the posterior draws (draw i depends on (seed, i) alone).
     #[arg(long, default_value_t = 2026, allow_negative_numbers = true, value_parser = crate::seed_arg)]
     seed: u64,
+    /// Also sample the free spectrum (independent power at each frequency) of these models with
+    /// NUTS, e.g. `curn,hd` (none by default; a correlated model costs one (2KN)^3 / 3
+    /// factorisation per gradient).
+    #[arg(long, value_delimiter = ',')]
+    free_spectrum: Vec<String>,
+    /// Prior range of log10 rho_j (s^2) of the free spectrum: LO,HI.
+    #[arg(long, default_value = "-20,-8", allow_hyphen_values = true)]
+    log10_power_range: String,
+    /// Kept NUTS draws per chain of the free spectrum.
+    #[arg(long, default_value_t = 500)]
+    free_spectrum_draws: u64,
+    /// NUTS warm-up iterations per chain of the free spectrum.
+    #[arg(long, default_value_t = 500)]
+    free_spectrum_warmup: u64,
+    /// NUTS chains of the free spectrum (at least 2, for R-hat).
+    #[arg(long, default_value_t = 4)]
+    free_spectrum_chains: usize,
 }
 
 #[derive(Clone, Copy, clap::ValueEnum)]
@@ -86,6 +109,7 @@ impl CommonArgs {
             spectral_index_min: g0,
             spectral_index_max: g1,
             n_spectral_index: self.index_points,
+            index_tolerance: self.index_tolerance,
             fixed_spectral_index: self.fixed_index,
             n_table_amplitudes: self.amplitude_points,
             amplitude_prior: match self.amplitude_prior {
@@ -97,6 +121,39 @@ impl CommonArgs {
         s.validate()?;
         check_draws(self.draws)?;
         Ok(s)
+    }
+
+    /// The free-spectrum settings, or None when no model was asked for (checked before work).
+    fn free_spectrum_settings(&self) -> Result<Option<FreeSpectrumSettings>> {
+        if self.free_spectrum.is_empty() {
+            return Ok(None);
+        }
+        let mut models = Vec::new();
+        for name in &self.free_spectrum {
+            let m = CommonModel::from_name(name.trim()).ok_or_else(|| {
+                anyhow::anyhow!(
+                    "invalid setting free-spectrum: unknown model {name:?} (curn, hd, monopole, dipole)"
+                )
+            })?;
+            if !models.contains(&m) {
+                models.push(m);
+            }
+        }
+        let (lo, hi) = parse_range(&self.log10_power_range, "log10-power-range")?;
+        let s = FreeSpectrumSettings {
+            models,
+            log10_power_min: lo,
+            log10_power_max: hi,
+            sampler: SamplerSettings {
+                draws: self.free_spectrum_draws,
+                warmup: self.free_spectrum_warmup,
+                chains: self.free_spectrum_chains,
+                ..Default::default()
+            },
+            seed: self.seed,
+        };
+        s.check()?;
+        Ok(Some(s))
     }
 
     fn draw_settings(&self) -> DrawSettings {
@@ -114,6 +171,7 @@ impl CommonArgs {
 /// Run `ptacorr common`.
 pub fn run(args: &CommonArgs) -> Result<()> {
     let settings = args.settings()?;
+    let free_settings = args.free_spectrum_settings()?;
     let draw_settings = args.draw_settings();
     let t = Instant::now();
     let mut set = OutputSet::begin(&args.out, "common")?;
@@ -129,6 +187,14 @@ pub fn run(args: &CommonArgs) -> Result<()> {
         draw_settings.seed,
     )?;
     fit.write(&mut set, &rel, &data, Some((&draw_settings, &draws)))?;
+    let mut free = Vec::new();
+    let mut free_files = Vec::new();
+    if let Some(fs) = &free_settings {
+        for &m in &fs.models {
+            free.push(sample_free_spectrum(&data, m, fs, Some(&fit))?);
+        }
+        free_files = write_free_spectrum(&mut set, fs, &free)?;
+    }
     set.commit()?;
     println!(
         "{} pulsars, {} frequencies; prior: {} on [{}, {}], gamma uniform on [{}, {}]",
@@ -167,11 +233,29 @@ pub fn run(args: &CommonArgs) -> Result<()> {
         }
     }
     println!("  {COMMON_ASSUMPTIONS}");
+    for s in &free {
+        let (rhat, ess) = s.worst();
+        println!(
+            "  free spectrum {}: {} frequencies, largest R-hat {:.3}, smallest bulk ESS {:.0}, {} divergences",
+            s.model.name(),
+            s.rows.len(),
+            rhat,
+            ess,
+            s.divergences
+        );
+    }
+    if !free.is_empty() {
+        println!("  {FREE_SPECTRUM_ASSUMPTIONS}");
+    }
     eprintln!("fitted in {:.2} s", t.elapsed().as_secs_f64());
     println!(
         "wrote {}/summary.json, posterior-fixed-index.csv, posterior-grid.csv, marginals.csv, \
-         common-draws.csv",
-        args.out.display()
+         common-draws.csv{}",
+        args.out.display(),
+        free_files
+            .iter()
+            .map(|f| format!(", {f}"))
+            .collect::<String>()
     );
     Ok(())
 }

@@ -19,8 +19,8 @@
 
 use crate::error::{Error, Result};
 use crate::noise::{
-    check_label, check_power_law, PulsarNoise, RedProcess, WhiteNoise, EFAC_RANGE,
-    WHITE_LOG10_S_RANGE,
+    check_label, check_power_law, PulsarNoise, RedProcess, WhiteNoise,
+    COMMON_LOG10_AMPLITUDE_RANGE, EFAC_RANGE, WHITE_LOG10_S_RANGE,
 };
 use crate::output::{fmt_f64, quote, truncate, QUOTE_CHARS};
 use std::collections::BTreeSet;
@@ -52,6 +52,9 @@ pub enum Parameter {
     CommonLog10Amplitude,
     /// `common.spectral_index`
     CommonSpectralIndex,
+    /// `common.log10_rho_J`: log10 of the free-spectrum power (s^2) at frequency J / T_span,
+    /// J = 1..K (the free-spectrum chain tables of `ptacorr common`).
+    CommonLog10Power(usize),
 }
 
 impl Parameter {
@@ -78,6 +81,15 @@ impl Parameter {
             ("dm", "spectral_index") => Ok(Parameter::DmSpectralIndex),
             ("common", "log10_amplitude") => Ok(Parameter::CommonLog10Amplitude),
             ("common", "spectral_index") => Ok(Parameter::CommonSpectralIndex),
+            ("common", t) if t.starts_with("log10_rho_") => match t["log10_rho_".len()..].parse::<usize>() {
+                Ok(j) if (1..=1000).contains(&j) && !t["log10_rho_".len()..].starts_with('0') => {
+                    Ok(Parameter::CommonLog10Power(j))
+                }
+                _ => Err(format!(
+                    "{} is not a free-spectrum parameter (common.log10_rho_J with J in 1..=1000)",
+                    quote(name)
+                )),
+            },
             _ => Err(format!(
                 "{} is not a known parameter (efac.B, equad_log10_s.B, ecorr_log10_s.B, red.log10_amplitude, red.spectral_index, dm.log10_amplitude, dm.spectral_index, common.log10_amplitude, common.spectral_index)",
                 quote(name)
@@ -97,7 +109,9 @@ impl Parameter {
     pub fn is_common(&self) -> bool {
         matches!(
             self,
-            Parameter::CommonLog10Amplitude | Parameter::CommonSpectralIndex
+            Parameter::CommonLog10Amplitude
+                | Parameter::CommonSpectralIndex
+                | Parameter::CommonLog10Power(_)
         )
     }
 
@@ -121,15 +135,28 @@ impl Parameter {
                     ));
                 }
             }
-            Parameter::RedLog10Amplitude
-            | Parameter::DmLog10Amplitude
-            | Parameter::CommonLog10Amplitude => {
+            Parameter::RedLog10Amplitude | Parameter::DmLog10Amplitude => {
                 check_power_law(v, 1.0).map_err(|(_, m)| m)?;
+            }
+            Parameter::CommonLog10Amplitude => {
+                // The range of `ptacorr common`'s priors, so every draw it writes reads back.
+                let [lo, hi] = COMMON_LOG10_AMPLITUDE_RANGE;
+                if !(lo..=hi).contains(&v) {
+                    return Err(format!(
+                        "must be a log10 amplitude of the common process in [{lo}, {hi}], got {v}"
+                    ));
+                }
             }
             Parameter::RedSpectralIndex
             | Parameter::DmSpectralIndex
             | Parameter::CommonSpectralIndex => {
                 check_power_law(-14.0, v).map_err(|(_, m)| m)?;
+            }
+            Parameter::CommonLog10Power(_) => {
+                // The range free-spectrum priors may take (common/free_spectrum.rs).
+                if !(-40.0..=0.0).contains(&v) {
+                    return Err(format!("must be a log10 power in s^2 in [-40, 0], got {v}"));
+                }
             }
         }
         Ok(())
@@ -148,6 +175,7 @@ impl fmt::Display for Parameter {
             Parameter::DmSpectralIndex => f.write_str("dm.spectral_index"),
             Parameter::CommonLog10Amplitude => f.write_str("common.log10_amplitude"),
             Parameter::CommonSpectralIndex => f.write_str("common.spectral_index"),
+            Parameter::CommonLog10Power(j) => write!(f, "common.log10_rho_{j}"),
         }
     }
 }
@@ -407,7 +435,12 @@ impl ChainTable {
     /// Refuse a table with parameters other than those of the common process (for
     /// `common-draws.csv`), or without `common.log10_amplitude`.
     pub fn check_common_only(&self, path: &Path) -> Result<()> {
-        if let Some(p) = self.parameters.iter().find(|p| !p.is_common()) {
+        if let Some(p) = self.parameters.iter().find(|p| {
+            !matches!(
+                p,
+                Parameter::CommonLog10Amplitude | Parameter::CommonSpectralIndex
+            )
+        }) {
             return Err(Error::input(
                 path,
                 Some(1),
@@ -505,7 +538,9 @@ impl ChainTable {
                 Parameter::RedSpectralIndex => red_entry(&mut noise.red).spectral_index = v,
                 Parameter::DmLog10Amplitude => red_entry(&mut noise.dm).log10_amplitude = v,
                 Parameter::DmSpectralIndex => red_entry(&mut noise.dm).spectral_index = v,
-                Parameter::CommonLog10Amplitude | Parameter::CommonSpectralIndex => {}
+                Parameter::CommonLog10Amplitude
+                | Parameter::CommonSpectralIndex
+                | Parameter::CommonLog10Power(_) => {}
             }
         }
         noise
@@ -862,5 +897,36 @@ mod tests {
             t.common_process(0, Some(&base), 13.0 / 3.0).spectral_index,
             3.0
         );
+    }
+    /// `ptacorr common` accepts prior ranges of log10 A in [-30, 0]
+    /// (`COMMON_LOG10_AMPLITUDE_RANGE`), so its draws there must be writable: a common draw at
+    /// -25 is accepted (a red-noise amplitude there is still refused, `noise.toml`'s range), and
+    /// one outside [-30, 0] is refused.
+    #[test]
+    fn common_draws_take_the_range_of_the_common_prior() {
+        let draw = |v: f64| ChainDraw {
+            chain: 0,
+            draw: 0,
+            log_posterior: None,
+            diverging: false,
+            values: vec![v],
+        };
+        let mut t = ChainTable::new(vec![Parameter::CommonLog10Amplitude]).unwrap();
+        t.push(draw(-25.0)).unwrap();
+        t.push(ChainDraw {
+            draw: 1,
+            ..draw(-3.0)
+        })
+        .unwrap();
+        let e = t
+            .push(ChainDraw {
+                draw: 2,
+                ..draw(-31.0)
+            })
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("[-30, 0]"), "{e}");
+        let mut r = ChainTable::new(vec![Parameter::RedLog10Amplitude]).unwrap();
+        assert!(r.push(draw(-25.0)).is_err());
     }
 }

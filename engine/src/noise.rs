@@ -164,6 +164,12 @@ impl NoiseModel {
 /// only catch typing errors (a sign dropped, a unit confused).
 pub const LOG10_AMPLITUDE_RANGE: [f64; 2] = [-20.0, -8.0];
 
+/// Allowed log10 amplitudes of the common process in a prior range of `ptacorr common` and in
+/// its posterior draws (`common.log10_amplitude` of a chain table). Wider than
+/// [`LOG10_AMPLITUDE_RANGE`]: an upper-limit or a prior-sensitivity run may reach far below
+/// any amplitude a `noise.toml` states, and its draws must be writable and readable.
+pub const COMMON_LOG10_AMPLITUDE_RANGE: [f64; 2] = [-30.0, 0.0];
+
 /// Allowed spectral indices gamma of a power law (open below, closed above).
 pub const SPECTRAL_INDEX_RANGE: [f64; 2] = [0.0, 10.0];
 

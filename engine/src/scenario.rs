@@ -28,6 +28,9 @@ pub struct Scenario {
     pub background: Option<BackgroundSpec>,
     #[serde(default)]
     pub simulation: SimulationSpec,
+    /// The timing model fitted to the simulated residuals and shipped with the release.
+    #[serde(default)]
+    pub timing_model: TimingModelSpec,
     /// Optional explicit pulsars (positions); otherwise `array.n_pulsars` isotropic ones.
     #[serde(default, rename = "pulsar")]
     pub pulsars: Vec<PulsarSpec>,
@@ -48,6 +51,65 @@ pub struct ArraySpec {
     /// Default seed (the command line's --seed overrides).
     #[serde(default)]
     pub seed: Option<u64>,
+}
+
+/// The timing model of the simulated pulsars (docs/simulation.md). Without a design matrix
+/// every pulsar has the quadratic spin model (offset, spin frequency, spin-down).
+#[derive(Clone, Copy, Debug, Default, Deserialize, Serialize, PartialEq)]
+#[serde(deny_unknown_fields)]
+pub struct TimingModelSpec {
+    /// Also fit a dispersion-measure offset, slope and curvature, (nu_ref / nu)^2 x {1, t, t^2},
+    /// in every pulsar observed at two or more radio frequencies, as timing fits of
+    /// multi-frequency data do (the DM and its first two time derivatives; common practice,
+    /// recalled from memory; see Keith et al. 2013, MNRAS 429, 2161). The release then ships each such
+    /// pulsar's design matrix. Without it, chromatic power below 1 / T_span (`span_factor` > 1)
+    /// stays in the residuals as a chromatic quadratic that no analysis model describes.
+    #[serde(default)]
+    pub dm_quadratic: bool,
+}
+
+/// Names of the design-matrix columns of the simulated timing model.
+pub const TIMING_COLUMNS: [&str; 6] = [
+    "offset",
+    "spin_frequency",
+    "spin_down",
+    "dm_offset",
+    "dm_slope",
+    "dm_curvature",
+];
+
+/// The design matrix of a simulated pulsar's timing model (raw columns; every reader scales
+/// them to unit norm): t in days since the start of the array, s = (nu_ref / nu)^2, columns
+/// {1, t, t^2} and, with `dm_quadratic` and two or more distinct radio frequencies,
+/// {s, s t, s t^2}. None when the quadratic spin model alone applies (the default model of a
+/// release without a design matrix).
+pub fn simulated_design(
+    p: &Pulsar,
+    start_mjd: f64,
+    spec: TimingModelSpec,
+) -> Option<crate::release::DesignMatrix> {
+    let distinct = {
+        let mut f: Vec<f64> = p.freq_mhz.clone();
+        f.sort_by(f64::total_cmp);
+        f.dedup();
+        f.len()
+    };
+    if !spec.dm_quadratic || distinct < 2 {
+        return None;
+    }
+    let n = p.n_toa();
+    let mut values = ndarray::Array2::<f64>::zeros((n, TIMING_COLUMNS.len()));
+    for i in 0..n {
+        let t = p.mjd[i] - start_mjd;
+        let s = (DM_REFERENCE_MHZ / p.freq_mhz[i]).powi(2);
+        for (k, v) in [1.0, t, t * t, s, s * t, s * t * t].into_iter().enumerate() {
+            values[[i, k]] = v;
+        }
+    }
+    Some(crate::release::DesignMatrix {
+        names: TIMING_COLUMNS.iter().map(|c| c.to_string()).collect(),
+        values,
+    })
 }
 
 /// An explicit pulsar.
@@ -604,6 +666,7 @@ pub fn lay_out(s: &Scenario, seed: u64) -> Layout {
                 }
             }
         }
+        p.design = simulated_design(&p, s.array.start_mjd, s.timing_model);
         noise.pulsars.insert(label, pn);
         pulsars.push(p);
     }

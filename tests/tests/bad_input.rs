@@ -1212,6 +1212,16 @@ fn common_process_grids_priors_and_degenerate_noise_are_refused() {
             vec!["index-points", "odd number", "got 40"],
         ),
         (
+            "zero gamma-rule tolerance",
+            Box::new(|s| s.index_tolerance = 0.0),
+            vec!["index-tolerance", "(0, 1)"],
+        ),
+        (
+            "more index points than the adaptive rule allows",
+            Box::new(|s| s.n_spectral_index = 1001),
+            vec!["index-points", "at most 257"],
+        ),
+        (
             "no amplitude points",
             Box::new(|s| s.n_table_amplitudes = 0),
             vec!["amplitude-points", "at least 2"],

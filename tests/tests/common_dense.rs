@@ -500,3 +500,66 @@ fn free_spectrum_gradient_matches_central_differences_and_the_power_law_limit() 
     assert_eq!(back.draws[0].values, vec![-14.5, 4.0]);
     std::fs::remove_dir_all(&dir).ok();
 }
+
+#[test]
+fn adaptive_gamma_rule_converges_to_a_fine_fixed_rule() {
+    // The adaptive rule in gamma (docs/common-process.md, "Quadrature") against an independent
+    // reference: composite Simpson over 1025 equally spaced gamma nodes (spacing 7/1024; for a
+    // smooth integrand Simpson's error is O(h^4), Press et al. 2007, Numerical Recipes, 3rd ed.,
+    // sec. 4.2, so this reference is far finer than any tolerance tested). Whatever node count
+    // it starts from, the adaptive evidence must agree with the reference to the stated
+    // tolerance (the last halving changed it by less than that; the remaining error of a
+    // converging Simpson rule is about 1/15 of the last change), and its reported error must
+    // be below the tolerance too.
+    use ptacorr::common::{fit_common, log_integral_adaptive, simpson_weights};
+    let dir = temp_dir("common-gamma-rule");
+    let rel = simulate_release(SCENARIO, &dir, 29);
+    let data = CommonData::from_release(&rel, &rel.noise, 5).unwrap();
+    let tol = 1e-3;
+    for model in [CommonModel::Curn, CommonModel::Hd] {
+        let base = CommonSettings {
+            n_frequencies: 5,
+            index_tolerance: tol,
+            models: vec![model],
+            ..Default::default()
+        };
+        let n_ref = 1025;
+        let h = (base.spectral_index_max - base.spectral_index_min) / (n_ref - 1) as f64;
+        let w = simpson_weights(n_ref, h);
+        let ln_terms: Vec<f64> = (0..n_ref)
+            .map(|j| {
+                let g = base.spectral_index_min + j as f64 * h;
+                let c = data.amplitude_curve(model, g).unwrap();
+                let (ln_i, _) = log_integral_adaptive(
+                    &|u| c.at_log10(u), // uniform in log10 A: density 1/6 added below
+                    base.log10_amplitude_min,
+                    base.log10_amplitude_max,
+                    1e-10,
+                );
+                ln_i - (base.log10_amplitude_max - base.log10_amplitude_min).ln() + w[j].ln()
+                    - (base.spectral_index_max - base.spectral_index_min).ln()
+            })
+            .collect();
+        let m = ln_terms.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+        let reference = m + ln_terms.iter().map(|t| (t - m).exp()).sum::<f64>().ln();
+        for start in [3, 5, 9, 41] {
+            let s = CommonSettings {
+                n_spectral_index: start,
+                ..base.clone()
+            };
+            let fit = fit_common(&data, &s).unwrap();
+            let v = &fit.fits[&model].varied;
+            let err = (v.evidence.ln_evidence - reference).abs();
+            assert!(
+                err < tol,
+                "{} from {start} nodes ({} at the end): ln Z {} vs reference {reference} (error {err:e})",
+                model.name(),
+                v.spectral_indices.len(),
+                v.evidence.ln_evidence
+            );
+            assert!(v.gamma_rule_error < tol, "reported {}", v.gamma_rule_error);
+            assert!(v.spectral_indices.len() > start, "at least one halving");
+        }
+    }
+    std::fs::remove_dir_all(&dir).ok();
+}

@@ -58,8 +58,13 @@ pub struct CommonSettings {
     /// Prior range of the spectral index gamma (uniform).
     pub spectral_index_min: f64,
     pub spectral_index_max: f64,
-    /// Number of equally spaced gamma nodes (odd, for Simpson's rule).
+    /// Number of equally spaced gamma nodes the rule starts from (odd, for Simpson's rule);
+    /// the spacing is halved until the varied-index evidence changes by less than
+    /// `index_tolerance` (relative) or the nodes reach [`MAX_INDEX_NODES`].
     pub n_spectral_index: usize,
+    /// Relative change of the varied-index evidence between two halvings of the gamma spacing
+    /// below which the gamma rule is accepted.
+    pub index_tolerance: f64,
     /// The fixed-index case.
     pub fixed_spectral_index: f64,
     /// Number of log10 A points in the output tables.
@@ -80,6 +85,7 @@ impl Default for CommonSettings {
             spectral_index_min: 0.0,
             spectral_index_max: 7.0,
             n_spectral_index: 41,
+            index_tolerance: 1e-3,
             fixed_spectral_index: GAMMA_BINARIES,
             n_table_amplitudes: 121,
             amplitude_prior: AmplitudePrior::UniformLog10,
@@ -108,10 +114,11 @@ impl CommonSettings {
                 ),
             ));
         }
-        if !(-30.0..=0.0).contains(&lo) || !(-30.0..=0.0).contains(&hi) {
+        let [alo, ahi] = crate::noise::COMMON_LOG10_AMPLITUDE_RANGE;
+        if !(alo..=ahi).contains(&lo) || !(alo..=ahi).contains(&hi) {
             return Err(Error::setting(
                 "log10-amplitude-range",
-                format!("log10 A must lie in [-30, 0], got [{lo}, {hi}]"),
+                format!("log10 A must lie in [{alo}, {ahi}], got [{lo}, {hi}]"),
             ));
         }
         let (g0, g1) = (self.spectral_index_min, self.spectral_index_max);
@@ -130,6 +137,27 @@ impl CommonSettings {
                 format!(
                     "the spectral-index grid needs an odd number of points >= 3 for Simpson's \
                      rule, got {} (default 41)",
+                    self.n_spectral_index
+                ),
+            ));
+        }
+        if !(self.index_tolerance.is_finite()
+            && self.index_tolerance > 0.0
+            && self.index_tolerance < 1.0)
+        {
+            return Err(Error::setting(
+                "index-tolerance",
+                format!(
+                    "must be a relative tolerance in (0, 1), got {} (default 1e-3)",
+                    self.index_tolerance
+                ),
+            ));
+        }
+        if self.n_spectral_index > MAX_INDEX_NODES {
+            return Err(Error::setting(
+                "index-points",
+                format!(
+                    "at most {MAX_INDEX_NODES} spectral-index nodes, got {}",
                     self.n_spectral_index
                 ),
             ));
@@ -415,29 +443,101 @@ pub struct CommonFit {
 const FINE_FIXED: usize = 4097;
 const FINE_VARIED: usize = 1025;
 
+/// Most gamma nodes the adaptive rule refines to (per model).
+pub const MAX_INDEX_NODES: usize = 257;
+
+/// ln of the composite Simpson rule over gamma of the amplitude integrals `ln_i` on equally
+/// spaced `gammas` (uniform prior in gamma on their range).
+fn ln_simpson_over_gamma(ln_i: &[f64], gammas: &[f64]) -> f64 {
+    let n = gammas.len();
+    let width = gammas[n - 1] - gammas[0];
+    let h = width / (n - 1) as f64;
+    let terms: Vec<f64> = simpson_weights(n, h)
+        .iter()
+        .zip(ln_i)
+        .map(|(w, l)| l + w.ln() - width.ln())
+        .collect();
+    log_sum_exp(&terms)
+}
+
+/// The adaptive gamma rule of one model: composite Simpson on the settings' nodes, then the
+/// spacing halved (every new node a midpoint, one eigen form each) until the evidence changes
+/// by less than `index_tolerance` relative, or the nodes reach [`MAX_INDEX_NODES`]. Returns
+/// the curves, the nodes and the rule's error estimate: Richardson's |S_h/2 - S_h| / 15 of the
+/// value when converged (Simpson's error falls by 16 per halving of h for a smooth integrand;
+/// e.g. Press et al. 2007, Numerical Recipes, 3rd ed., sec. 4.2), the full difference when the
+/// node cap stopped it first.
+fn adaptive_gamma_nodes(
+    data: &CommonData,
+    model: CommonModel,
+    s: &CommonSettings,
+) -> Result<(Vec<AmplitudeCurve>, Vec<f64>, f64)> {
+    let mut gammas = s.spectral_indices();
+    let mut curves: Vec<AmplitudeCurve> = gammas
+        .par_iter()
+        .map(|&g| data.amplitude_curve(model, g))
+        .collect::<Result<_>>()?;
+    let mut ln_i: Vec<f64> = curves
+        .par_iter()
+        .map(|c| amplitude_integral(c, s).ln_evidence)
+        .collect();
+    let mut prev = ln_simpson_over_gamma(&ln_i, &gammas);
+    loop {
+        let mids: Vec<f64> = gammas.windows(2).map(|w| 0.5 * (w[0] + w[1])).collect();
+        let new: Vec<AmplitudeCurve> = mids
+            .par_iter()
+            .map(|&g| data.amplitude_curve(model, g))
+            .collect::<Result<_>>()?;
+        let new_ln: Vec<f64> = new
+            .par_iter()
+            .map(|c| amplitude_integral(c, s).ln_evidence)
+            .collect();
+        let n = gammas.len();
+        let mut g2 = Vec::with_capacity(2 * n - 1);
+        let mut c2 = Vec::with_capacity(2 * n - 1);
+        let mut l2 = Vec::with_capacity(2 * n - 1);
+        let mut new_curves = new.into_iter();
+        for j in 0..n {
+            g2.push(gammas[j]);
+            c2.push(curves[j].clone());
+            l2.push(ln_i[j]);
+            if j + 1 < n {
+                g2.push(mids[j]);
+                c2.push(new_curves.next().expect("one midpoint per interval"));
+                l2.push(new_ln[j]);
+            }
+        }
+        gammas = g2;
+        curves = c2;
+        ln_i = l2;
+        let now = ln_simpson_over_gamma(&ln_i, &gammas);
+        check_finite(now, "the varied-index evidence")?;
+        let change = (now - prev).exp_m1().abs();
+        if change <= s.index_tolerance {
+            return Ok((curves, gammas, change / 15.0));
+        }
+        if 2 * gammas.len() - 1 > MAX_INDEX_NODES {
+            return Ok((curves, gammas, change));
+        }
+        prev = now;
+    }
+}
+
 /// Fit every model of `settings` to `data`.
 pub fn fit_common(data: &CommonData, settings: &CommonSettings) -> Result<CommonFit> {
     settings.validate()?;
-    let gammas = settings.spectral_indices();
-    let mut jobs: Vec<(CommonModel, Option<usize>)> = Vec::new();
-    for &m in &settings.models {
-        jobs.push((m, None));
-        jobs.extend((0..gammas.len()).map(|j| (m, Some(j))));
-    }
-    // One eigendecomposition per (model, gamma); rayon spreads them over the cores.
-    let curves: Vec<AmplitudeCurve> = jobs
-        .par_iter()
-        .map(|&(m, j)| {
-            let g = j.map_or(settings.fixed_spectral_index, |j| gammas[j]);
-            data.amplitude_curve(m, g)
-        })
-        .collect::<Result<_>>()?;
     let mut fits = BTreeMap::new();
-    let per = gammas.len() + 1;
-    for (mi, &m) in settings.models.iter().enumerate() {
-        let block = &curves[mi * per..(mi + 1) * per];
-        let fixed = fixed_index_fit(&block[0], settings)?;
-        let varied = varied_index_fit(&block[1..], &gammas, settings)?;
+    // The fixed-index curves at once; then each model's adaptive gamma rule, whose eigen forms
+    // rayon spreads over the cores.
+    let fixed_curves: Vec<AmplitudeCurve> = settings
+        .models
+        .par_iter()
+        .map(|&m| data.amplitude_curve(m, settings.fixed_spectral_index))
+        .collect::<Result<_>>()?;
+    for (&m, curve) in settings.models.iter().zip(&fixed_curves) {
+        let fixed = fixed_index_fit(curve, settings)?;
+        let (curves, gammas, rule_err) = adaptive_gamma_nodes(data, m, settings)?;
+        let varied = varied_index_fit(&curves, &gammas, settings, rule_err)?;
         fits.insert(
             m,
             ModelFit {
@@ -499,40 +599,15 @@ fn varied_index_fit(
     curves: &[AmplitudeCurve],
     gammas: &[f64],
     s: &CommonSettings,
+    rule_err: f64,
 ) -> Result<VariedIndexFit> {
     let n = gammas.len();
-    let width = s.spectral_index_max - s.spectral_index_min;
+    let width = gammas[n - 1] - gammas[0];
     let h = width / (n - 1) as f64;
     let ints: Vec<LogEvidence> = curves.iter().map(|c| amplitude_integral(c, s)).collect();
     let ln_i: Vec<f64> = ints.iter().map(|e| e.ln_evidence).collect();
-    // Simpson at spacing h, and the same rule at 2h (or the trapezoid rule at h when the node
-    // count does not allow 2h) for the refinement error estimate.
     let ln_gamma_prior = -width.ln();
-    let integrate = |w: &[f64], idx: &[usize]| {
-        let terms: Vec<f64> = idx
-            .iter()
-            .zip(w)
-            .map(|(&j, &wj)| ln_i[j] + wj.ln() + ln_gamma_prior)
-            .collect();
-        log_sum_exp(&terms)
-    };
-    let all: Vec<usize> = (0..n).collect();
-    let fine = integrate(&simpson_weights(n, h), &all);
-    let coarse = if (n - 1).is_multiple_of(4) {
-        let idx: Vec<usize> = (0..n).step_by(2).collect();
-        integrate(&simpson_weights(idx.len(), 2.0 * h), &idx)
-    } else {
-        let mut w = vec![h; n];
-        w[0] = h / 2.0;
-        w[n - 1] = h / 2.0;
-        integrate(&w, &all)
-    };
-    // Richardson: Simpson's error is (S_h - S_2h) / 15 of the value.
-    let rule_err = if (n - 1).is_multiple_of(4) {
-        ((coarse - fine).exp_m1().abs()) / 15.0
-    } else {
-        (coarse - fine).exp_m1().abs()
-    };
+    let fine = ln_simpson_over_gamma(&ln_i, gammas);
     // Amplitude-integral errors, weighted by each node's share of the evidence.
     let amp_err: f64 = simpson_weights(n, h)
         .iter()

@@ -5,12 +5,14 @@
 
 pub mod draws;
 pub mod evidence;
+pub mod free_sampling;
 pub mod free_spectrum;
 pub mod likelihood;
 pub mod write;
 
 pub use draws::*;
 pub use evidence::*;
+pub use free_sampling::*;
 pub use free_spectrum::*;
 pub use likelihood::*;
 pub use write::*;

@@ -40,6 +40,8 @@ struct VariedSummary {
     ln_evidence: f64,
     ln_evidence_error: f64,
     spectral_index_rule_error: f64,
+    /// Gamma nodes the adaptive rule ended with.
+    spectral_index_nodes: usize,
     log10_amplitude: Interval1d,
     amplitude_upper_limit_95: f64,
     spectral_index: Interval1d,
@@ -179,6 +181,7 @@ impl CommonFit {
                             ln_evidence: f.varied.evidence.ln_evidence,
                             ln_evidence_error: f.varied.evidence.error,
                             spectral_index_rule_error: f.varied.gamma_rule_error,
+                            spectral_index_nodes: f.varied.spectral_indices.len(),
                             amplitude_upper_limit_95: ul(va.upper_limit_95),
                             log10_amplitude: va,
                             spectral_index: f.varied.spectral_index.summary(),
@@ -205,10 +208,12 @@ impl CommonFit {
                     ),
                 },
                 spectral_index: format!(
-                    "gamma uniform on [{}, {}] ({} Simpson nodes); the fixed-index case has gamma = {}",
+                    "gamma uniform on [{}, {}] (composite Simpson from {} nodes, spacing halved until the evidence changes by less than {} relative, at most {} nodes; nodes per model in varied_index.spectral_index_nodes); the fixed-index case has gamma = {}",
                     s.spectral_index_min,
                     s.spectral_index_max,
                     s.n_spectral_index,
+                    s.index_tolerance,
+                    super::evidence::MAX_INDEX_NODES,
                     s.fixed_spectral_index
                 ),
                 fixed_spectral_index: s.fixed_spectral_index,

@@ -7,7 +7,9 @@
 //! - a null folder (null.json, trials.csv): the distribution of trial S/N with the observed
 //!   value and its p-value ([`null`]);
 //! - an inject folder (recovery.json, recovery.csv): recovered against injected amplitude
-//!   and the detection probability ([`recovery`]).
+//!   and the detection probability ([`recovery`]);
+//! - a common folder with a sampled free spectrum (free-spectrum.csv): the per-frequency
+//!   posteriors with the grid fit's power law ([`free_spectrum`]).
 //!
 //! Each figure is written as SVG, PNG or PDF together with a JSON sidecar holding exactly
 //! the numbers that were drawn. All text is drawn as vector outlines of an embedded font,
@@ -17,6 +19,7 @@
 mod angular;
 mod canvas;
 pub(crate) mod format;
+pub mod free_spectrum;
 mod input;
 mod nmos;
 mod null;
@@ -272,6 +275,10 @@ pub fn plot_folder(
     opts: &FigureOptions,
 ) -> Result<Vec<PathBuf>, FigureError> {
     check_options(opts)?;
+    // A `ptacorr common` folder with a sampled free spectrum: its one figure.
+    if dir.join(free_spectrum::FREE_SPECTRUM_CSV).is_file() {
+        return plot_free_spectrum(dir, format, out, opts);
+    }
     let kinds = detect_kinds(dir)?;
     let out_dir = out.unwrap_or(dir);
     std::fs::create_dir_all(out_dir).map_err(|source| FigureError::Write {
@@ -291,6 +298,31 @@ pub fn plot_folder(
         }
     }
     Ok(written)
+}
+
+/// The free-spectrum figure of a `ptacorr common` folder (manifest checked first).
+fn plot_free_spectrum(
+    dir: &Path,
+    format: FigureFormat,
+    out: Option<&Path>,
+    opts: &FigureOptions,
+) -> Result<Vec<PathBuf>, FigureError> {
+    ptacorr::output::check_manifest(dir)?;
+    let points = free_spectrum::read_free_spectrum(dir)?;
+    let source = folder_label(dir);
+    let title = free_spectrum::common_title(dir, &source);
+    let d = free_spectrum::draw(&points, &title, opts, free_spectrum::STEM, &source)?;
+    let out_dir = out.unwrap_or(dir);
+    std::fs::create_dir_all(out_dir).map_err(|source| FigureError::Write {
+        path: out_dir.to_path_buf(),
+        source,
+    })?;
+    let bytes = encode(&d, format, opts)?;
+    let fig = out_dir.join(format!("{}.{}", d.stem, format.extension()));
+    write_atomic(&fig, &bytes)?;
+    let side = out_dir.join(format!("{}.json", d.stem));
+    write_atomic(&side, d.sidecar.as_bytes())?;
+    Ok(vec![fig, side])
 }
 
 /// Encodes a drawn figure in `format`.
