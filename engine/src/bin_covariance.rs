@@ -339,10 +339,10 @@ pub fn fit_bins(rho: &[f64], hd: &[f64], cov: &BinCovariance) -> Result<BinFit> 
 mod tests {
     use super::*;
     use crate::optimal::frobenius;
-    use ndarray::s;
     use crate::orf::{pattern_matrix, Pattern};
     use crate::rng::{stream, Purpose};
     use crate::sky::isotropic_direction;
+    use ndarray::s;
     use rand::Rng;
     use rand_distr::StandardNormal;
 
