@@ -7,7 +7,9 @@
 //! - a null folder (null.json, trials.csv): the distribution of trial S/N with the observed
 //!   value and its p-value ([`null`]);
 //! - an inject folder (recovery.json, recovery.csv): recovered against injected amplitude
-//!   and the detection probability ([`recovery`]).
+//!   and the detection probability ([`recovery`]);
+//! - a noise folder (estimates.csv, diagnostics.csv, chains/): one figure per pulsar with the
+//!   marginal posteriors of its noise hyperparameters ([`noise`]).
 //!
 //! Each figure is written as SVG, PNG or PDF together with a JSON sidecar holding exactly
 //! the numbers that were drawn. All text is drawn as vector outlines of an embedded font,
@@ -19,6 +21,7 @@ mod canvas;
 pub(crate) mod format;
 mod input;
 mod nmos;
+pub mod noise;
 mod null;
 mod recovery;
 pub mod scaling;
@@ -245,6 +248,9 @@ pub(crate) fn draw_kind(
                 &format!("{}{stem_suffix}", recovery::STEM),
                 &source,
             )?]
+        }
+        FolderKind::Noise => {
+            noise::draw_all(&noise::NoiseData::load(dir)?, opts, stem_suffix, &source)?
         }
     })
 }
