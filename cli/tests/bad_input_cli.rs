@@ -10,9 +10,7 @@ fn ptacorr() -> Command {
 }
 
 fn temp(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("ptacorr-badcli-{}-{name}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    d
+    ptacorr::testing::temp_path(&format!("badcli-{name}"))
 }
 
 const SCENARIO: &str = r#"

@@ -15,9 +15,7 @@ fn repo() -> PathBuf {
 }
 
 fn temp(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("ptacorr-cli-{}-{name}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    d
+    ptacorr::testing::temp_path(&format!("cli-{name}"))
 }
 
 fn read_tree(dir: &Path) -> Vec<(String, Vec<u8>)> {

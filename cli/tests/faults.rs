@@ -11,9 +11,7 @@ fn ptacorr() -> Command {
 }
 
 fn temp(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("ptacorr-faults-{}-{name}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    d
+    ptacorr::testing::temp_path(&format!("faults-{name}"))
 }
 
 /// A small fictional array whose time-domain null trials take a few milliseconds each, so a

@@ -10,10 +10,7 @@ fn ptacorr() -> Command {
 }
 
 fn temp(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("ptacorr-noise-cli-{}-{name}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).unwrap();
-    d
+    ptacorr::testing::temp_dir(&format!("noise-cli-{name}"))
 }
 
 const SCENARIO: &str = r#"

@@ -12,14 +12,12 @@ use crate::optimal::{
     PairCorrelations, Weighted,
 };
 use crate::orf::{hellings_downs, pattern_matrix, Pattern};
-use crate::output::fmt_f64;
 use crate::per_frequency::{per_frequency, PerFrequency};
 use crate::reduce::{reduce_release, FrequencyGrid, Reduced};
 use crate::release::Release;
 use crate::spectrum::{template, PowerLaw};
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
-use std::fmt::Write as _;
 use std::path::Path;
 
 /// Where the common process in each pulsar's auto-power comes from.
@@ -323,16 +321,17 @@ fn extras(
     })
 }
 
-/// The inputs and settings of a run, recorded in every output.
-#[derive(Clone, Debug, Serialize)]
+/// The inputs and settings of a run, recorded in every output (`provenance` of summary.json,
+/// null.json and recovery.json; written and read with this type).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Provenance {
-    pub program: &'static str,
-    pub version: &'static str,
+    pub program: String,
+    pub version: String,
     pub release_title: String,
     pub input_hash: String,
     pub settings: serde_json::Value,
     /// Warnings about the release (release.rs `residual_warnings`); absent when none.
-    #[serde(skip_serializing_if = "Vec::is_empty")]
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub warnings: Vec<String>,
 }
 
@@ -340,8 +339,8 @@ impl Provenance {
     /// Provenance of a run on `release` with `settings`.
     pub fn new<S: Serialize>(release: &Release, settings: &S) -> Self {
         Provenance {
-            program: "ptacorr",
-            version: crate::VERSION,
+            program: "ptacorr".to_string(),
+            version: crate::VERSION.to_string(),
             release_title: release.title.clone(),
             input_hash: release.input_hash.clone(),
             settings: serde_json::to_value(settings).unwrap_or(serde_json::Value::Null),
@@ -350,51 +349,66 @@ impl Provenance {
     }
 }
 
-#[derive(Serialize)]
-struct Summary<'a> {
-    title: &'a str,
-    n_pulsars: usize,
-    n_pairs: usize,
-    n_frequencies: usize,
-    spectral_index: f64,
-    span_years: f64,
-    frequencies_hz: &'a [f64],
-    common_auto_power: Option<PowerLaw>,
-    patterns: BTreeMap<&'static str, OsEstimate>,
-    multiple_component: Option<&'a MultiComponent>,
-    per_frequency: Option<PerFrequencySummary>,
-    hd_spread: Option<HdSpreadSummary>,
-    bin_fit: BinFitSummary<'a>,
-    notes: &'static str,
-    provenance: &'a Provenance,
+/// `summary.json` of a correlate folder: the engine writes it and every reader (the figures
+/// and the report in `ptacorr-present`) reads it with this one type.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Summary {
+    pub title: String,
+    pub n_pulsars: usize,
+    pub n_pairs: usize,
+    pub n_frequencies: usize,
+    pub spectral_index: f64,
+    pub span_years: f64,
+    pub frequencies_hz: Vec<f64>,
+    pub common_auto_power: Option<PowerLaw>,
+    /// Keyed by pattern name (`hd`, `monopole`, `dipole`).
+    pub patterns: BTreeMap<String, OsEstimate>,
+    pub multiple_component: Option<MultiComponent>,
+    pub per_frequency: Option<PerFrequencySummary>,
+    pub hd_spread: Option<HdSpreadSummary>,
+    pub bin_fit: BinFitSummary,
+    pub notes: String,
+    pub provenance: Provenance,
     /// The noise-marginalised OS (nmos/); kept the last field (its shard merge splices it).
-    #[serde(skip_serializing_if = "Option::is_none")]
-    noise_marginalised: Option<&'a crate::nmos::NmosSummary>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub noise_marginalised: Option<crate::nmos::NmosSummary>,
 }
 
 /// The per-frequency section of summary.json (the table is in per-frequency.csv).
-#[derive(Serialize)]
-struct PerFrequencySummary {
-    pattern: &'static str,
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct PerFrequencySummary {
+    pub pattern: String,
     /// The GLS combination of the per-frequency estimates (equal to the broadband HD OS).
-    combined: OsEstimate,
-    notes: &'static str,
+    pub combined: OsEstimate,
+    pub notes: String,
 }
 
 /// The Hellings-Downs spread section of summary.json (the band is in hd-spread.csv).
-#[derive(Serialize)]
-struct HdSpreadSummary {
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct HdSpreadSummary {
     #[serde(flatten)]
-    spread: HdSpread,
-    notes: &'static str,
+    pub spread: HdSpread,
+    pub notes: String,
 }
 
 /// The bin fit of summary.json, or why there is none.
-#[derive(Serialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 #[serde(untagged)]
-enum BinFitSummary<'a> {
-    Fit(&'a BinFit),
-    Skipped { skipped: &'a str },
+pub enum BinFitSummary {
+    Fit(BinFit),
+    Skipped { skipped: String },
+}
+
+/// One row of `pairs.csv` (written and read with this type).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct PairRow {
+    pub pulsar_a: String,
+    pub pulsar_b: String,
+    pub angle_deg: f64,
+    pub rho: f64,
+    pub sigma: f64,
+    /// The Hellings-Downs value of the pair's separation.
+    pub hd: f64,
 }
 
 /// What per-frequency.csv holds.
@@ -436,40 +450,46 @@ impl Correlation {
     ) -> Result<()> {
         let provenance = Provenance::new(release, settings);
         let summary = Summary {
-            title: &release.title,
+            title: release.title.clone(),
             n_pulsars: self.n_pulsars(),
             n_pairs: self.pairs.len(),
             n_frequencies: self.grid.k(),
             spectral_index: settings.spectral_index,
             span_years: self.grid.t_span / SECONDS_PER_YEAR,
-            frequencies_hz: &self.grid.freqs,
+            frequencies_hz: self.grid.freqs.clone(),
             common_auto_power: self.common,
-            patterns: self.estimates.iter().map(|(p, e)| (p.name(), *e)).collect(),
-            multiple_component: self.multi.as_ref(),
+            patterns: self
+                .estimates
+                .iter()
+                .map(|(p, e)| (p.name().to_string(), *e))
+                .collect(),
+            multiple_component: self.multi.clone(),
             per_frequency: self.per_frequency.as_ref().map(|p| PerFrequencySummary {
-                pattern: Pattern::Hd.name(),
+                pattern: Pattern::Hd.name().to_string(),
                 combined: p.combined,
-                notes: PER_FREQUENCY_NOTES,
+                notes: PER_FREQUENCY_NOTES.to_string(),
             }),
             hd_spread: self.hd_spread.map(|s| HdSpreadSummary {
                 spread: s,
-                notes: HD_SPREAD_NOTES,
+                notes: HD_SPREAD_NOTES.to_string(),
             }),
             bin_fit: match &self.bin_covariance {
-                Ok((_, f)) => BinFitSummary::Fit(f),
-                Err(why) => BinFitSummary::Skipped { skipped: why },
+                Ok((_, f)) => BinFitSummary::Fit(f.clone()),
+                Err(why) => BinFitSummary::Skipped {
+                    skipped: why.clone(),
+                },
             },
-            notes: SUMMARY_NOTES,
-            provenance: &provenance,
-            noise_marginalised: nmos.map(|n| n.0),
+            notes: SUMMARY_NOTES.to_string(),
+            provenance,
+            noise_marginalised: nmos.map(|n| n.0.clone()),
         };
-        let pairs = self.pairs_csv();
-        let bins = bins_csv(&self.bins);
+        let pairs = self.pairs_csv()?;
+        let bins = crate::output::csv_table(&self.bins, "bins.csv")?;
         // One output set: all three files or none (output.rs).
         let mut set = crate::output::OutputSet::begin(dir, "correlate")?;
         set.write_json("summary.json", &summary)?;
         set.write("pairs.csv", pairs.as_bytes())?;
-        set.write("bins.csv", bins.as_bytes())?;
+        set.write("bins.csv", &bins)?;
         use crate::common::write::to_csv;
         if let Some(pf) = &self.per_frequency {
             let a2 = self.estimates[&Pattern::Hd].amplitude2;
@@ -503,41 +523,24 @@ impl Correlation {
         set.commit().map(|_| ())
     }
 
-    /// `pulsar_a,pulsar_b,angle_deg,rho,sigma,hd`.
-    pub fn pairs_csv(&self) -> String {
-        let mut s = String::from("pulsar_a,pulsar_b,angle_deg,rho,sigma,hd\n");
+    /// The rows of `pairs.csv`.
+    pub fn pair_rows(&self) -> Vec<PairRow> {
         let p = &self.pairs;
-        for i in 0..p.len() {
-            let _ = writeln!(
-                s,
-                "{},{},{},{},{},{}",
-                self.labels[p.a[i]],
-                self.labels[p.b[i]],
-                fmt_f64(p.angle[i].to_degrees()),
-                fmt_f64(p.rho[i]),
-                fmt_f64(p.sigma[i]),
-                fmt_f64(hellings_downs(p.cos_angle[i]))
-            );
-        }
-        s
+        (0..p.len())
+            .map(|i| PairRow {
+                pulsar_a: self.labels[p.a[i]].clone(),
+                pulsar_b: self.labels[p.b[i]].clone(),
+                angle_deg: p.angle[i].to_degrees(),
+                rho: p.rho[i],
+                sigma: p.sigma[i],
+                hd: hellings_downs(p.cos_angle[i]),
+            })
+            .collect()
     }
-}
 
-/// `angle_lo_deg,angle_hi_deg,angle_mean_deg,n_pairs,rho,sigma,hd`.
-pub fn bins_csv(bins: &[Bin]) -> String {
-    let mut s = String::from("angle_lo_deg,angle_hi_deg,angle_mean_deg,n_pairs,rho,sigma,hd\n");
-    for b in bins {
-        let _ = writeln!(
-            s,
-            "{},{},{},{},{},{},{}",
-            fmt_f64(b.angle_lo_deg),
-            fmt_f64(b.angle_hi_deg),
-            fmt_f64(b.angle_mean_deg),
-            b.n_pairs,
-            fmt_f64(b.rho),
-            fmt_f64(b.sigma),
-            fmt_f64(b.hd)
-        );
+    /// The text of `pairs.csv` (`pulsar_a,pulsar_b,angle_deg,rho,sigma,hd`).
+    pub fn pairs_csv(&self) -> Result<String> {
+        let bytes = crate::output::csv_table(&self.pair_rows(), "pairs.csv")?;
+        Ok(String::from_utf8(bytes).expect("csv of UTF-8 labels and numbers"))
     }
-    s
 }

@@ -30,7 +30,7 @@ use crate::error::{Error, Result};
 use crate::linalg::cholesky_lower;
 use crate::optimal::Weighted;
 use crate::paircov::joint_covariance;
-use ndarray::{s, Array1, Array2};
+use ndarray::{Array1, Array2};
 use rayon::prelude::*;
 use statrs::distribution::{ChiSquared, ContinuousCDF};
 
@@ -141,66 +141,93 @@ pub fn bin_covariance_with(
         }
     }
     let nb = groups.len();
-    let mut h = Vec::with_capacity(nb);
     let mut wb = Vec::with_capacity(nb);
     let mut members = Vec::with_capacity(nb);
     for idx in groups {
-        let mut hb = Array2::<f64>::zeros((n, n));
         let mut sum = 0.0;
         let mut ab = Vec::with_capacity(idx.len());
         for &p in idx {
             let (a, b) = *pair_ab.get(p).ok_or_else(|| {
                 Error::setting("bin covariance", "a bin names a pair that does not exist")
             })?;
-            hb[[a, b]] = 1.0;
-            hb[[b, a]] = 1.0;
             sum += crate::optimal::frobenius(z[a], z[b]);
             ab.push((a, b));
         }
-        h.push(hb);
         wb.push(sum);
         members.push(ab);
     }
-    // C with its columns in component-major order, Cp[:, i n + c] = C[:, c m + i], so that the
-    // columns of one component i of every pulsar are contiguous (BLAS products below).
-    let mut cp = Array2::<f64>::zeros((nm, nm));
-    for (row_c, mut row_p) in c.rows().into_iter().zip(cp.rows_mut()) {
-        for cc in 0..n {
-            for i in 0..m {
-                row_p[i * n + cc] = row_c[cc * m + i];
+    // With W_ij the N x N matrix W_ij[b, c] = C[(b, j), (c, i)] (one component pair (i, j) of
+    // every pulsar pair), tau_B = sum_ij W_ij^T H_B W_ij, so
+    //   Cov(Q_B, Q_B') W_B W_B' = (1/2) tr(H_B' tau_B) = (1/2) sum_ij <W_ij H_B', H_B W_ij>,
+    // and, C being symmetric, W_ji = W_ij^T and W_ij H_B' = (H_B' W_ji)^T. With
+    // L_B(ij) = H_B W_ij (H_B is sparse: two row additions per pair of the bin) the term of
+    // (i, j) is (1/2) <L_B'(ji)^T, L_B(ij)>; the terms of (i, j) and (j, i) together are
+    // (X + X^T) / 2 with X[B, B'] = <L_B(ij), L_B'(ji)^T>, one small product over all bins.
+    // Everything per (i, j) is a few N x N matrices per bin (cache-resident), and nothing of
+    // size (N 2K)^2 is written.
+    let nn = n * n;
+    let gather = |i: usize, j: usize| -> Vec<f64> {
+        let mut w = vec![0.0; nn];
+        for b in 0..n {
+            let row = c.row(b * m + j);
+            for cc in 0..n {
+                w[b * n + cc] = row[cc * m + i];
             }
+        }
+        w
+    };
+    // L_B = H_B W for every bin, rows of an nb x N^2 matrix; `transpose` stores L_B^T instead.
+    let left = |w: &[f64], transpose: bool| -> Array2<f64> {
+        let mut out = Array2::<f64>::zeros((nb, nn));
+        let mut tmp = vec![0.0; nn];
+        for (bi, pairs) in members.iter().enumerate() {
+            tmp.fill(0.0);
+            for &(a, b) in pairs {
+                add_row(&mut tmp[a * n..(a + 1) * n], &w[b * n..(b + 1) * n]);
+                add_row(&mut tmp[b * n..(b + 1) * n], &w[a * n..(a + 1) * n]);
+            }
+            let mut dst = out.row_mut(bi);
+            if transpose {
+                for x in 0..n {
+                    for y in 0..n {
+                        dst[y * n + x] = tmp[x * n + y];
+                    }
+                }
+            } else {
+                dst.assign(&ndarray::ArrayView1::from(&tmp[..]));
+            }
+        }
+        out
+    };
+    let share = |(i, j): (usize, usize)| -> Array2<f64> {
+        let wij = gather(i, j);
+        let lij = left(&wij, false);
+        let x = if i == j {
+            lij.dot(&left(&wij, true).t())
+        } else {
+            lij.dot(&left(&gather(j, i), true).t())
+        };
+        if i == j {
+            x * 0.5
+        } else {
+            (&x + &x.t()) * 0.5
+        }
+    };
+    let tasks: Vec<(usize, usize)> = (0..m).flat_map(|i| (i..m).map(move |j| (i, j))).collect();
+    // Tasks in parallel, a chunk at a time (bounded memory), their shares added in task order:
+    // thread-count independent bytes.
+    let mut total = Array2::<f64>::zeros((nb, nb));
+    let chunk = 4 * rayon::current_num_threads().max(1);
+    for part in tasks.chunks(chunk) {
+        let shares: Vec<Array2<f64>> = part.par_iter().map(|&t| share(t)).collect();
+        for q in shares {
+            total += &q;
         }
     }
     let mut cov = vec![vec![0.0; nb]; nb];
-    let mut p = Array2::<f64>::zeros((nm, nm));
     for bi in 0..nb {
-        // P_B = (H_B (x) I) C (columns permuted like Cp): block row a of P_B is the sum of the
-        // block rows b of C over the bin's pairs (a, b); H_B is sparse, so add rows.
-        p.fill(0.0);
-        for &(a, b) in &members[bi] {
-            let (ra, rb) = (a * m..(a + 1) * m, b * m..(b + 1) * m);
-            p.slice_mut(s![ra.clone(), ..])
-                .scaled_add(1.0, &cp.slice(s![rb.clone(), ..]));
-            p.slice_mut(s![rb, ..])
-                .scaled_add(1.0, &cp.slice(s![ra, ..]));
-        }
-        // tau_B[a, c] = sum_i sum_s C[(a,i), s] P_B[s, (c,i)] = sum_i (Cp_i^T P_i)[a, c] with
-        // C symmetric and Cp_i, P_i the column blocks of component i.
-        let tau = (0..m)
-            .into_par_iter()
-            .map(|i| {
-                let cols = i * n..(i + 1) * n;
-                cp.slice(s![.., cols.clone()])
-                    .t()
-                    .dot(&p.slice(s![.., cols]))
-            })
-            // In component order, added sequentially: thread-count independent bytes.
-            .collect::<Vec<_>>()
-            .into_iter()
-            .fold(Array2::<f64>::zeros((n, n)), |x, y| x + y);
         for bj in 0..nb {
-            let q = 0.5 * (&h[bj].t() * &tau).sum();
-            cov[bi][bj] = q / (wb[bi] * wb[bj]);
+            cov[bi][bj] = total[[bi, bj]] / (wb[bi] * wb[bj]);
         }
     }
     // Symmetric in exact arithmetic; remove rounding asymmetry.
@@ -222,8 +249,16 @@ pub fn bin_covariance_with(
     })
 }
 
+/// `to` += `from` element by element (slices, so that the loop vectorises).
+#[inline]
+fn add_row(to: &mut [f64], from: &[f64]) {
+    for (d, v) in to.iter_mut().zip(from) {
+        *d += *v;
+    }
+}
+
 /// The fit of the Hellings-Downs curve to the bins with their full covariance.
-#[derive(Clone, Debug, PartialEq, serde::Serialize)]
+#[derive(Clone, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct BinFit {
     /// Generalised least-squares A^2 of rho_B = A^2 hd_B.
     pub amplitude2: f64,
@@ -236,7 +271,7 @@ pub struct BinFit {
     pub p_value: Option<f64>,
     /// The A^2 at which the covariance was evaluated.
     pub covariance_amplitude2: f64,
-    pub assumptions: &'static str,
+    pub assumptions: String,
 }
 
 /// What the bin fit's p-value assumes.
@@ -296,7 +331,7 @@ pub fn fit_bins(rho: &[f64], hd: &[f64], cov: &BinCovariance) -> Result<BinFit> 
         degrees_of_freedom: dof,
         p_value,
         covariance_amplitude2: cov.amplitude2,
-        assumptions: BIN_FIT_ASSUMPTIONS,
+        assumptions: BIN_FIT_ASSUMPTIONS.to_string(),
     })
 }
 
@@ -304,6 +339,7 @@ pub fn fit_bins(rho: &[f64], hd: &[f64], cov: &BinCovariance) -> Result<BinFit> 
 mod tests {
     use super::*;
     use crate::optimal::frobenius;
+    use ndarray::s;
     use crate::orf::{pattern_matrix, Pattern};
     use crate::rng::{stream, Purpose};
     use crate::sky::isotropic_direction;

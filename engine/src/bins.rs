@@ -17,8 +17,8 @@ pub enum Binning {
     EqualWidth,
 }
 
-/// One angular bin.
-#[derive(Clone, Debug, PartialEq, serde::Serialize)]
+/// One angular bin: a row of `bins.csv` (written and read with this type).
+#[derive(Clone, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Bin {
     pub angle_lo_deg: f64,
     pub angle_hi_deg: f64,

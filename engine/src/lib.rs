@@ -46,6 +46,8 @@ pub mod shard;
 pub mod simulate;
 pub mod sky;
 pub mod spectrum;
+#[doc(hidden)]
+pub mod testing;
 pub mod whiten;
 
 pub use error::{Error, Result};

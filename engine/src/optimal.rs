@@ -174,7 +174,7 @@ pub fn os_snr(rho_w: &[f64], inv_var: &[f64], g: &[f64]) -> f64 {
 }
 
 /// A simultaneous fit of several patterns (Sardesai & Vigeland 2023).
-#[derive(Clone, Debug, PartialEq, serde::Serialize)]
+#[derive(Clone, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct MultiComponent {
     pub patterns: Vec<Pattern>,
     /// A2 = F^-1 b with F_kl = sum G^k G^l / sigma^2, b_k = sum G^k rho / sigma^2.

@@ -90,3 +90,34 @@ pub fn pattern_matrix(pattern: Pattern, directions: &[Direction]) -> Vec<f64> {
     }
     m
 }
+
+#[cfg(test)]
+mod tests {
+    use super::hellings_downs;
+
+    /// Closed-form values of G(zeta) = 1/2 - x/4 + (3/2) x ln x, x = (1 - cos zeta)/2
+    /// (Hellings & Downs 1983), worked by hand; tolerances are a few ulps of the values or the
+    /// grid step of the minimum search.
+    #[test]
+    fn hellings_downs_known_values() {
+        assert_eq!(hellings_downs(1.0), 0.5);
+        // zeta = 180 deg: x = 1, G = 1/2 - 1/4.
+        assert!((hellings_downs(-1.0) - 0.25).abs() < 1e-15);
+        // zeta = 90 deg: x = 1/2, G = 3/8 + (3/4) ln(1/2) = -0.1448603...
+        assert!((hellings_downs(0.0) + 0.144_860_385_3).abs() < 1e-9);
+        // Continuous at zeta -> 0.
+        assert!((hellings_downs(1.0 - 1e-12) - 0.5).abs() < 1e-9);
+        // dG/dx = 0 at x = exp(-5/6): zeta = 82.5 deg, G = -0.151897...; a 0.1 deg grid.
+        let (mut best, mut at) = (1.0, 0.0);
+        for i in 0..=1800 {
+            let z = i as f64 / 10.0;
+            let g = hellings_downs(z.to_radians().cos());
+            if g < best {
+                best = g;
+                at = z;
+            }
+        }
+        assert!((at - 82.5).abs() < 0.5, "minimum at {at}");
+        assert!((best + 0.151_897).abs() < 1e-5, "minimum {best}");
+    }
+}

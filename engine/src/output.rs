@@ -54,6 +54,360 @@ pub fn fmt_f64(x: f64) -> String {
     format!("{x:?}")
 }
 
+/// A CSV table from rows of a plain struct type (`T`'s fields are its columns, in order), with
+/// every `f64` in the round-trip form of [`fmt_f64`] (csv's own float form differs for some
+/// magnitudes), integers and strings as they are, `None` as an empty cell. The header is
+/// written even when there are no rows. This is the one writer of the engine's tables whose
+/// floats must read back bit for bit; [`read_csv`] reads them with the same `T`.
+pub fn csv_table<T: serde::Serialize + serde::de::DeserializeOwned>(
+    rows: &[T],
+    what: &str,
+) -> Result<Vec<u8>> {
+    let bad = |e: String| Error::NonFinite {
+        what: format!("{what} ({e})"),
+    };
+    let mut w = csv::Writer::from_writer(Vec::new());
+    w.write_record(csv_columns::<T>())
+        .map_err(|e| bad(e.to_string()))?;
+    let mut cells = Vec::new();
+    for r in rows {
+        cells.clear();
+        r.serialize(round_trip::Row(&mut cells))
+            .map_err(|e| bad(e.to_string()))?;
+        w.write_record(&cells).map_err(|e| bad(e.to_string()))?;
+    }
+    w.into_inner().map_err(|e| bad(e.to_string()))
+}
+
+/// The serializer behind [`csv_table`]: a struct of scalars becomes one text cell per field.
+mod round_trip {
+    use serde::ser::{Error as _, Impossible, Serialize, SerializeStruct, Serializer};
+    type E = serde::de::value::Error;
+
+    /// A row: a struct whose fields are scalars (or options of scalars).
+    pub(super) struct Row<'a>(pub(super) &'a mut Vec<String>);
+
+    /// One cell.
+    struct Cell;
+
+    fn not_a_cell<T>(what: &str) -> Result<T, E> {
+        Err(E::custom(format!("a CSV cell cannot hold {what}")))
+    }
+
+    impl SerializeStruct for Row<'_> {
+        type Ok = ();
+        type Error = E;
+        fn serialize_field<T: ?Sized + Serialize>(
+            &mut self,
+            _: &'static str,
+            value: &T,
+        ) -> Result<(), E> {
+            self.0.push(value.serialize(Cell)?);
+            Ok(())
+        }
+        fn end(self) -> Result<(), E> {
+            Ok(())
+        }
+    }
+
+    macro_rules! refuse {
+        ($($f:ident($t:ty)),*) => {$(
+            fn $f(self, _: $t) -> Result<Self::Ok, E> { not_a_cell(stringify!($t)) }
+        )*};
+    }
+
+    impl<'a> Serializer for Row<'a> {
+        type Ok = ();
+        type Error = E;
+        type SerializeSeq = Impossible<(), E>;
+        type SerializeTuple = Impossible<(), E>;
+        type SerializeTupleStruct = Impossible<(), E>;
+        type SerializeTupleVariant = Impossible<(), E>;
+        type SerializeMap = Impossible<(), E>;
+        type SerializeStruct = Row<'a>;
+        type SerializeStructVariant = Impossible<(), E>;
+        fn serialize_struct(self, _: &'static str, _: usize) -> Result<Row<'a>, E> {
+            Ok(self)
+        }
+        refuse!(
+            serialize_bool(bool),
+            serialize_i8(i8),
+            serialize_i16(i16),
+            serialize_i32(i32),
+            serialize_i64(i64),
+            serialize_u8(u8),
+            serialize_u16(u16),
+            serialize_u32(u32),
+            serialize_u64(u64),
+            serialize_f32(f32),
+            serialize_f64(f64),
+            serialize_char(char),
+            serialize_str(&str),
+            serialize_bytes(&[u8]),
+            serialize_unit_struct(&'static str)
+        );
+        fn serialize_none(self) -> Result<(), E> {
+            not_a_cell("a lone None")
+        }
+        fn serialize_some<T: ?Sized + Serialize>(self, _: &T) -> Result<(), E> {
+            not_a_cell("a lone Some")
+        }
+        fn serialize_unit(self) -> Result<(), E> {
+            not_a_cell("()")
+        }
+        fn serialize_unit_variant(self, _: &'static str, _: u32, _: &'static str) -> Result<(), E> {
+            not_a_cell("an enum")
+        }
+        fn serialize_newtype_struct<T: ?Sized + Serialize>(
+            self,
+            _: &'static str,
+            _: &T,
+        ) -> Result<(), E> {
+            not_a_cell("a newtype")
+        }
+        fn serialize_newtype_variant<T: ?Sized + Serialize>(
+            self,
+            _: &'static str,
+            _: u32,
+            _: &'static str,
+            _: &T,
+        ) -> Result<(), E> {
+            not_a_cell("an enum")
+        }
+        fn serialize_seq(self, _: Option<usize>) -> Result<Self::SerializeSeq, E> {
+            not_a_cell("a sequence")
+        }
+        fn serialize_tuple(self, _: usize) -> Result<Self::SerializeTuple, E> {
+            not_a_cell("a tuple")
+        }
+        fn serialize_tuple_struct(
+            self,
+            _: &'static str,
+            _: usize,
+        ) -> Result<Self::SerializeTupleStruct, E> {
+            not_a_cell("a tuple")
+        }
+        fn serialize_tuple_variant(
+            self,
+            _: &'static str,
+            _: u32,
+            _: &'static str,
+            _: usize,
+        ) -> Result<Self::SerializeTupleVariant, E> {
+            not_a_cell("an enum")
+        }
+        fn serialize_map(self, _: Option<usize>) -> Result<Self::SerializeMap, E> {
+            not_a_cell("a map")
+        }
+        fn serialize_struct_variant(
+            self,
+            _: &'static str,
+            _: u32,
+            _: &'static str,
+            _: usize,
+        ) -> Result<Self::SerializeStructVariant, E> {
+            not_a_cell("an enum")
+        }
+    }
+
+    macro_rules! display {
+        ($($f:ident($t:ty)),*) => {$(
+            fn $f(self, v: $t) -> Result<String, E> { Ok(v.to_string()) }
+        )*};
+    }
+
+    impl Serializer for Cell {
+        type Ok = String;
+        type Error = E;
+        type SerializeSeq = Impossible<String, E>;
+        type SerializeTuple = Impossible<String, E>;
+        type SerializeTupleStruct = Impossible<String, E>;
+        type SerializeTupleVariant = Impossible<String, E>;
+        type SerializeMap = Impossible<String, E>;
+        type SerializeStruct = Impossible<String, E>;
+        type SerializeStructVariant = Impossible<String, E>;
+        display!(
+            serialize_bool(bool),
+            serialize_i8(i8),
+            serialize_i16(i16),
+            serialize_i32(i32),
+            serialize_i64(i64),
+            serialize_u8(u8),
+            serialize_u16(u16),
+            serialize_u32(u32),
+            serialize_u64(u64),
+            serialize_char(char),
+            serialize_str(&str)
+        );
+        fn serialize_f32(self, v: f32) -> Result<String, E> {
+            Ok(super::fmt_f64(v as f64))
+        }
+        fn serialize_f64(self, v: f64) -> Result<String, E> {
+            Ok(super::fmt_f64(v))
+        }
+        fn serialize_bytes(self, _: &[u8]) -> Result<String, E> {
+            not_a_cell("bytes")
+        }
+        fn serialize_none(self) -> Result<String, E> {
+            Ok(String::new())
+        }
+        fn serialize_some<T: ?Sized + Serialize>(self, v: &T) -> Result<String, E> {
+            v.serialize(self)
+        }
+        fn serialize_unit(self) -> Result<String, E> {
+            Ok(String::new())
+        }
+        fn serialize_unit_struct(self, _: &'static str) -> Result<String, E> {
+            Ok(String::new())
+        }
+        fn serialize_unit_variant(
+            self,
+            _: &'static str,
+            _: u32,
+            name: &'static str,
+        ) -> Result<String, E> {
+            Ok(name.to_string())
+        }
+        fn serialize_newtype_struct<T: ?Sized + Serialize>(
+            self,
+            _: &'static str,
+            v: &T,
+        ) -> Result<String, E> {
+            v.serialize(self)
+        }
+        fn serialize_newtype_variant<T: ?Sized + Serialize>(
+            self,
+            _: &'static str,
+            _: u32,
+            _: &'static str,
+            _: &T,
+        ) -> Result<String, E> {
+            not_a_cell("an enum with data")
+        }
+        fn serialize_seq(self, _: Option<usize>) -> Result<Self::SerializeSeq, E> {
+            not_a_cell("a sequence")
+        }
+        fn serialize_tuple(self, _: usize) -> Result<Self::SerializeTuple, E> {
+            not_a_cell("a tuple")
+        }
+        fn serialize_tuple_struct(
+            self,
+            _: &'static str,
+            _: usize,
+        ) -> Result<Self::SerializeTupleStruct, E> {
+            not_a_cell("a tuple")
+        }
+        fn serialize_tuple_variant(
+            self,
+            _: &'static str,
+            _: u32,
+            _: &'static str,
+            _: usize,
+        ) -> Result<Self::SerializeTupleVariant, E> {
+            not_a_cell("an enum")
+        }
+        fn serialize_map(self, _: Option<usize>) -> Result<Self::SerializeMap, E> {
+            not_a_cell("a map")
+        }
+        fn serialize_struct(self, _: &'static str, _: usize) -> Result<Self::SerializeStruct, E> {
+            not_a_cell("a nested struct")
+        }
+        fn serialize_struct_variant(
+            self,
+            _: &'static str,
+            _: u32,
+            _: &'static str,
+            _: usize,
+        ) -> Result<Self::SerializeStructVariant, E> {
+            not_a_cell("an enum")
+        }
+    }
+}
+
+/// The column names of a CSV row type: its serde field names, in order (a plain struct
+/// deriving `Deserialize`; empty for anything else).
+pub fn csv_columns<T: serde::de::DeserializeOwned>() -> &'static [&'static str] {
+    use serde::de::{Error as _, Visitor};
+    struct Names<'a>(&'a mut &'static [&'static str]);
+    impl<'de> serde::Deserializer<'de> for Names<'_> {
+        type Error = serde::de::value::Error;
+        fn deserialize_any<V: Visitor<'de>>(
+            self,
+            _: V,
+        ) -> std::result::Result<V::Value, Self::Error> {
+            Err(Self::Error::custom("not a struct"))
+        }
+        fn deserialize_struct<V: Visitor<'de>>(
+            self,
+            _: &'static str,
+            fields: &'static [&'static str],
+            _: V,
+        ) -> std::result::Result<V::Value, Self::Error> {
+            *self.0 = fields;
+            Err(Self::Error::custom("only the field names were wanted"))
+        }
+        serde::forward_to_deserialize_any! {
+            bool i8 i16 i32 i64 i128 u8 u16 u32 u64 u128 f32 f64 char str string bytes byte_buf
+            option unit unit_struct newtype_struct seq tuple tuple_struct map enum identifier
+            ignored_any
+        }
+    }
+    let mut fields: &'static [&'static str] = &[];
+    let _ = T::deserialize(Names(&mut fields));
+    fields
+}
+
+/// Read a CSV table with the row type it was written with (`T`): every column of `T` must be
+/// in the header (others are ignored), cells are trimmed, and a bad cell is an
+/// [`Error::Input`] naming the file, the line and the column. Rows come with their line.
+pub fn read_csv<T: serde::de::DeserializeOwned>(path: &Path) -> Result<Vec<(usize, T)>> {
+    let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
+    let mut rdr = csv::ReaderBuilder::new()
+        .trim(csv::Trim::All)
+        .from_reader(bytes.as_slice());
+    let bad = |e: csv::Error, header: &csv::StringRecord| {
+        let line = e.position().map(|p| p.line() as usize);
+        match e.kind() {
+            csv::ErrorKind::Deserialize { err, .. } => {
+                let column = err.field().and_then(|i| header.get(i as usize));
+                Error::input(path, line, column, err.kind().to_string())
+            }
+            _ => Error::input(path, line, None, e.to_string()),
+        }
+    };
+    let header = rdr
+        .headers()
+        .map_err(|e| bad(e, &csv::StringRecord::new()))?
+        .clone();
+    for column in csv_columns::<T>() {
+        if !header.iter().any(|h| h == *column) {
+            return Err(Error::input(
+                path,
+                Some(1),
+                Some(column),
+                "the column is missing from the header",
+            ));
+        }
+    }
+    let mut rows = Vec::new();
+    for rec in rdr.records() {
+        let rec = rec.map_err(|e| bad(e, &header))?;
+        let line = rec.position().map_or(0, |p| p.line() as usize);
+        let row = rec
+            .deserialize(Some(&header))
+            .map_err(|e| bad(e, &header))?;
+        rows.push((line, row));
+    }
+    Ok(rows)
+}
+
+/// Read a JSON file with the type it was written with; a bad file is an [`Error::Input`]
+/// naming the file, the line and serde's account of the field.
+pub fn read_json<T: serde::de::DeserializeOwned>(path: &Path) -> Result<T> {
+    let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, e))?;
+    serde_json::from_str(&text).map_err(|e| Error::input(path, Some(e.line()), None, e.to_string()))
+}
+
 /// The name of the manifest that closes an output set.
 pub const MANIFEST_FILE: &str = "manifest.json";
 
@@ -537,6 +891,75 @@ pub fn non_utf8_message(bytes: &[u8], e: &std::str::Utf8Error) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[derive(Debug, PartialEq, serde::Serialize, serde::Deserialize)]
+    struct Row {
+        label: String,
+        n: u64,
+        x: f64,
+        y: Option<f64>,
+    }
+
+    /// csv_table writes floats as Rust's `{:?}` (the standard library's documented shortest
+    /// round-trip form), not csv's own form, which differs for 1e-5 <= |x| < 1e-4 (`0.00001`
+    /// against `1e-5`); read_csv reads every value back bit for bit and names a bad cell's line
+    /// and column.
+    #[test]
+    fn csv_tables_round_trip_in_the_debug_float_form() {
+        let rows = vec![
+            Row {
+                label: "P01".into(),
+                n: 3,
+                x: 1e-5,
+                y: None,
+            },
+            Row {
+                label: "P02".into(),
+                n: 0,
+                x: -0.1 - 0.2,
+                y: Some(1.0),
+            },
+            Row {
+                label: "P03".into(),
+                n: 7,
+                x: 1e16,
+                y: Some(f64::MIN_POSITIVE),
+            },
+        ];
+        let bytes = csv_table(&rows, "test").unwrap();
+        let text = String::from_utf8(bytes).unwrap();
+        assert_eq!(
+            text,
+            "label,n,x,y\nP01,3,1e-5,\nP02,0,-0.30000000000000004,1.0\nP03,7,1e16,2.2250738585072014e-308\n"
+        );
+        assert_eq!(csv_table::<Row>(&[], "test").unwrap(), b"label,n,x,y\n");
+        let dir = crate::testing::temp_dir("csv-table");
+        let path = dir.join("t.csv");
+        std::fs::write(&path, &text).unwrap();
+        let back: Vec<Row> = read_csv(&path)
+            .unwrap()
+            .into_iter()
+            .map(|(_, r)| r)
+            .collect();
+        assert_eq!(back, rows);
+        std::fs::write(&path, text.replace("1e16", "ten")).unwrap();
+        match read_csv::<Row>(&path).unwrap_err() {
+            Error::Input { line, field, .. } => {
+                assert_eq!(line, Some(4));
+                assert_eq!(field.as_deref(), Some("x"));
+            }
+            e => panic!("unexpected {e}"),
+        }
+        std::fs::write(&path, "label,n,y\nP01,3,\n").unwrap();
+        match read_csv::<Row>(&path).unwrap_err() {
+            Error::Input { line, field, .. } => {
+                assert_eq!(line, Some(1));
+                assert_eq!(field.as_deref(), Some("x"));
+            }
+            e => panic!("unexpected {e}"),
+        }
+        std::fs::remove_dir_all(&dir).unwrap();
+    }
 
     #[test]
     fn atomic_write_leaves_only_the_final_file() {

@@ -99,7 +99,7 @@ impl Input {
     fn provenance(&self) -> &Provenance {
         match &self.data {
             Loaded::Correlate(c) => &c.summary.provenance,
-            Loaded::Null(n) => &n.summary.provenance,
+            Loaded::Null(n) => &n.provenance,
             Loaded::Inject(i) => &i.provenance,
             Loaded::Noise(n) => &n.provenance,
         }
@@ -297,9 +297,7 @@ fn compose(inputs: &[Input], figures: &[Vec<Drawn>]) -> Doc {
             Cell::Text(i.kind.name().to_string()),
             Cell::Text(p.program.clone()),
             Cell::Text(p.version.clone()),
-            p.input_hash
-                .clone()
-                .map_or_else(|| Cell::Text("not recorded".to_string()), Cell::Code),
+            Cell::Code(p.input_hash.clone()),
         ]);
     }
     b.push(Block::Table(Table {
@@ -409,12 +407,11 @@ fn correlate_section(b: &mut Vec<Block>, label: &str, d: &CorrelateData) {
         format::general(s.span_years, 3, Style::Text),
         d.bins.len()
     ))]));
-    let rows = s
-        .patterns
-        .iter()
-        .map(|p| {
+    let rows = crate::figure::patterns_in_order(s)
+        .into_iter()
+        .map(|(name, p)| {
             vec![
-                Cell::Text(p.name.clone()),
+                Cell::Text(name.to_string()),
                 num_sci(p.amplitude2, 3),
                 num_sci(p.amplitude2_sigma, 3),
                 num_fixed(p.snr, 2),
@@ -440,7 +437,7 @@ fn correlate_section(b: &mut Vec<Block>, label: &str, d: &CorrelateData) {
             .map(|(k, name)| {
                 let var = m.covariance[k][k];
                 vec![
-                    Cell::Text(name.clone()),
+                    Cell::Text(name.name().to_string()),
                     num_sci(m.amplitude2[k], 3),
                     if var >= 0.0 {
                         num_sci(var.sqrt(), 3)
@@ -453,7 +450,11 @@ fn correlate_section(b: &mut Vec<Block>, label: &str, d: &CorrelateData) {
         b.push(Block::Table(Table {
             caption: format!(
                 "Joint fit of {} ({label}); sigma is the square root of the covariance diagonal.",
-                m.patterns.join(", ")
+                m.patterns
+                    .iter()
+                    .map(|p| p.name())
+                    .collect::<Vec<_>>()
+                    .join(", ")
             ),
             header: vec![
                 ("pattern".into(), "pattern".into()),
@@ -464,7 +465,7 @@ fn correlate_section(b: &mut Vec<Block>, label: &str, d: &CorrelateData) {
             rows,
         }));
     }
-    if let Some(f) = &s.bin_fit {
+    if let Some(f) = crate::figure::bin_fit(s) {
         let p = f
             .p_value
             .map(|p| format!(", p = {}", format::general(p, 2, Style::Text)))
@@ -483,7 +484,7 @@ fn correlate_section(b: &mut Vec<Block>, label: &str, d: &CorrelateData) {
             .iter()
             .map(|r| {
                 vec![
-                    num_int(r.index),
+                    num_int(r.index as u64),
                     Cell::Text(format::nanohertz(r.frequency_hz, Style::Text)),
                     num_sci(r.amplitude2, 3),
                     num_sci(r.amplitude2_sigma, 3),
@@ -566,10 +567,16 @@ fn null_section(b: &mut Vec<Block>, label: &str, d: &NullData) {
     let s = &d.summary;
     b.push(Block::Heading(3, format!("Null distribution: {label}")));
     let mut rows = vec![
-        vec![Cell::Text("method".into()), Cell::Text(s.method.clone())],
-        vec![Cell::Text("pattern".into()), Cell::Text(s.pattern.clone())],
+        vec![
+            Cell::Text("method".into()),
+            Cell::Text(s.method.name().to_string()),
+        ],
+        vec![
+            Cell::Text("pattern".into()),
+            Cell::Text(s.pattern.name().to_string()),
+        ],
         vec![Cell::Text("trials".into()), num_int(s.trials)],
-        vec![Cell::Text("seed".into()), Cell::Text(s.seed.clone())],
+        vec![Cell::Text("seed".into()), Cell::Text(s.seed.to_string())],
         vec![
             Cell::Text("observed S/N".into()),
             num_fixed(s.observed_snr, 2),
@@ -602,8 +609,8 @@ fn null_section(b: &mut Vec<Block>, label: &str, d: &NullData) {
             opt_cell(s.gaussian_sigma, |g| num_fixed(g, 2)),
         ],
     ];
-    if let Some((p, g)) = s.analytic {
-        let label = if s.analytic_is_bound {
+    if let Some((p, g, is_bound)) = d.analytic() {
+        let label = if is_bound {
             "analytic p-value (upper bound: below the inversion's accuracy)"
         } else {
             "analytic p-value"
@@ -625,7 +632,10 @@ fn null_section(b: &mut Vec<Block>, label: &str, d: &NullData) {
         ]);
     }
     b.push(Block::Table(Table {
-        caption: format!("Null distribution of the {} S/N ({label}).", s.pattern),
+        caption: format!(
+            "Null distribution of the {} S/N ({label}).",
+            s.pattern.name()
+        ),
         header: vec![
             ("quantity".into(), "quantity".into()),
             ("value".into(), "value".into()),
@@ -639,16 +649,16 @@ fn inject_section(b: &mut Vec<Block>, label: &str, d: &InjectData) {
     b.push(Block::Heading(3, format!("Injection recovery: {label}")));
     b.push(Block::Para(vec![t(format!(
         "Pattern {}, {} mode{}, {} realizations per amplitude; a realization counts as detected when its S/N reaches {} (false-alarm probability {}).",
-        d.pattern,
-        d.mode,
-        if d.target.is_empty() {
+        d.recovery.pattern,
+        d.recovery.mode,
+        if d.recovery.target.is_empty() {
             String::new()
         } else {
-            format!(" ({})", d.target)
+            format!(" ({})", d.recovery.target)
         },
-        d.realizations,
-        format::fixed(d.detection_threshold_snr, 2, Style::Text),
-        format::compact(d.false_alarm_probability, 3, Style::Text)
+        d.recovery.realizations,
+        format::fixed(d.recovery.detection_threshold_snr, 2, Style::Text),
+        format::compact(d.recovery.false_alarm_probability, 3, Style::Text)
     ))]));
     let rows = d
         .rows
@@ -867,18 +877,18 @@ fn caveats(inputs: &[Input]) -> Vec<Vec<Span>> {
                  It assumes the trials look like the data would without the {} correlation. \
                  With {} trials, a p-value below about {} cannot be resolved; the 95% interval {} to {} shows the uncertainty from the finite number of trials.",
                 s.trials,
-                method_words(&s.method),
+                method_words(s.method.name()),
                 s.seed,
-                pattern_words(&s.pattern),
+                pattern_words(s.pattern.name()),
                 format::fixed(s.observed_snr, 2, Style::Text),
-                pattern_words(&s.pattern),
+                pattern_words(s.pattern.name()),
                 s.trials,
                 format::general(1.0 / (s.trials.max(1) as f64), 1, Style::Text),
                 format::prob(s.p_value_ci95[0], Style::Text),
                 format::prob(s.p_value_ci95[1], Style::Text),
             )),
         ];
-        if s.method == "scramble" {
+        if s.method == ptacorr::null::Method::Scramble {
             if let (Some(m), Some(a)) = (s.match_threshold, s.acceptance_rate) {
                 p.push(t(format!(
                     " Sky scrambles were kept only below the match threshold {} (acceptance rate {}).",
@@ -901,10 +911,10 @@ fn caveats(inputs: &[Input]) -> Vec<Vec<Span>> {
             )),
             None => t("No Gaussian-equivalent significance is given for this p-value."),
         }];
-        if let Some((ap, _)) = s.analytic {
+        if let Some((ap, _, is_bound)) = n.analytic() {
             g.push(t(format!(
                 " The analytic p-value {}{} assumes Gaussian noise described exactly by the noise model and no common signal; it is a cross-check on the trials, not a replacement for them.",
-                if s.analytic_is_bound { "below " } else { "" },
+                if is_bound { "below " } else { "" },
                 format::prob(ap, Style::Text)
             )));
         }
@@ -927,9 +937,9 @@ fn caveats(inputs: &[Input]) -> Vec<Vec<Span>> {
                 c(i.label.clone()),
                 t(format!(
                     ") come from {} realizations per amplitude in {} mode; a detection probability near one half is uncertain by about {} from the finite number of realizations.",
-                    d.realizations,
-                    d.mode,
-                    format::fixed(0.5 / (d.realizations.max(1) as f64).sqrt(), 3, Style::Text)
+                    d.recovery.realizations,
+                    d.recovery.mode,
+                    format::fixed(0.5 / (d.recovery.realizations.max(1) as f64).sqrt(), 3, Style::Text)
                 )),
             ]);
         }
@@ -1396,9 +1406,10 @@ mod tests {
         });
         let e = build_report(&[c], &t.sub("o")).unwrap_err();
         assert!(
-            matches!(&e, FigureError::MissingField { field, .. } if field == "provenance.input_hash"),
+            matches!(&e, FigureError::Engine(ptacorr::Error::Input { path, .. }) if path.ends_with("summary.json")),
             "{e}"
         );
+        assert!(e.to_string().contains("input_hash"), "{e}");
     }
 
     #[test]

@@ -440,7 +440,7 @@ impl Correlation {
         settings: CorrelateSettings,
     ) -> Self {
         let p = &inner.pairs;
-        // The same numbers pairs.csv prints (analysis.rs `pairs_csv`).
+        // The same numbers pairs.csv prints (analysis.rs `pair_rows`).
         let angle_deg = p.angle.iter().map(|a| a.to_degrees()).collect();
         let hd = p.cos_angle.iter().map(|&c| hellings_downs(c)).collect();
         Correlation {

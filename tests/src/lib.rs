@@ -5,12 +5,10 @@ use ptacorr::scenario::{lay_out, Scenario};
 use ptacorr::simulate::simulate_scenario;
 use std::path::{Path, PathBuf};
 
-/// A fresh, empty temporary folder unique to this process and `name`.
+/// A fresh, empty temporary folder unique to this process and `name` (the workspace's one
+/// helper, `ptacorr::testing`).
 pub fn temp_dir(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("ptacorr-checks-{}-{name}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).expect("temp dir");
-    d
+    ptacorr::testing::temp_dir(&format!("checks-{name}"))
 }
 
 /// A small scenario: `n` pulsars over `years`, one backend with two channels, white noise,

@@ -122,7 +122,7 @@ fn pairs_csv_separations_agree_with_vincenty_at_all_angles() {
         ..Default::default()
     };
     let c = correlate_reduced(reduced, grid, &settings, None).unwrap();
-    let csv = c.pairs_csv();
+    let csv = c.pairs_csv().unwrap();
     let mut lines = csv.lines();
     assert_eq!(
         lines.next(),

@@ -9,60 +9,27 @@ use serde::{Deserialize, Serialize};
 use std::fmt::Write as _;
 use std::path::Path;
 
-/// recovery.json.
-#[derive(Serialize, Deserialize)]
-pub(super) struct RecoveryFile {
-    pub(super) pattern: String,
-    pub(super) false_alarm_probability: f64,
-    pub(super) detection_threshold_snr: f64,
-    pub(super) realizations: u64,
-    pub(super) mode: String,
+/// recovery.json (written by the campaign and its merge, read by the merge and the figures).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct RecoveryFile {
+    pub pattern: String,
+    pub false_alarm_probability: f64,
+    pub detection_threshold_snr: f64,
+    pub realizations: u64,
+    pub mode: String,
     /// What the realizations are made on, in plain words (`TargetKind::describe`).
     #[serde(default)]
-    pub(super) target: String,
-    pub(super) rows: Vec<RecoveryRow>,
-    pub(super) assumptions: String,
-    pub(super) provenance: serde_json::Value,
+    pub target: String,
+    pub rows: Vec<RecoveryRow>,
+    pub assumptions: String,
+    pub provenance: serde_json::Value,
 }
 
 impl Outcome {
     /// Write recovery.csv, recovery.json, realizations.csv, coverage_plugin.csv and
     /// campaign.json into `dir` (each atomically).
     pub fn write(&self, dir: &Path) -> Result<()> {
-        let mut csv = String::from(RECOVERY_HEADER);
-        csv.push('\n');
-        for r in &self.rows {
-            let vals = [
-                r.amplitude,
-                r.amplitude2_injected,
-                r.realizations as f64,
-                r.amplitude2_mean,
-                r.amplitude2_std,
-                r.amplitude2_sem,
-                r.bias,
-                r.bias_sem,
-                r.snr_mean,
-                r.snr_std,
-                r.coverage68_weak,
-                r.coverage95_weak,
-                r.coverage68_full,
-                r.coverage95_full,
-                r.detection_probability,
-            ];
-            let cells: Vec<String> = vals
-                .iter()
-                .enumerate()
-                .map(|(i, v)| {
-                    if i == 2 {
-                        r.realizations.to_string()
-                    } else {
-                        fmt_f64(*v)
-                    }
-                })
-                .collect();
-            csv.push_str(&cells.join(","));
-            csv.push('\n');
-        }
+        let csv = crate::output::csv_table(&self.rows, "recovery.csv")?;
         let mut real = String::from(REALIZATIONS_HEADER);
         real.push('\n');
         for r in &self.records {
@@ -77,16 +44,7 @@ impl Outcome {
                 fmt_f64(r.snr)
             );
         }
-        let mut plug = String::from("amplitude,coverage68_plugin,coverage95_plugin\n");
-        for p in &self.plugin {
-            let _ = writeln!(
-                plug,
-                "{},{},{}",
-                fmt_f64(p.amplitude),
-                fmt_f64(p.coverage68_plugin),
-                fmt_f64(p.coverage95_plugin)
-            );
-        }
+        let plug = crate::output::csv_table(&self.plugin, "coverage_plugin.csv")?;
         let json = RecoveryFile {
             pattern: self.state.pattern.name().to_string(),
             false_alarm_probability: self.state.false_alarm_probability,
@@ -101,9 +59,9 @@ impl Outcome {
         // One output set: all five files or none (output.rs).
         let mut set = crate::output::OutputSet::begin(dir, "inject")?;
         set.write("realizations.csv", real.as_bytes())?;
-        set.write("coverage_plugin.csv", plug.as_bytes())?;
+        set.write("coverage_plugin.csv", &plug)?;
         set.write_json("campaign.json", &self.state)?;
-        set.write("recovery.csv", csv.as_bytes())?;
+        set.write("recovery.csv", &csv)?;
         set.write_json("recovery.json", &json)?;
         set.commit().map(|_| ())
     }

@@ -181,7 +181,7 @@ fn shards_and_threads_do_not_change_realizations() {
 /// single run.
 #[test]
 fn outputs_have_the_documented_shape_and_shards_merge() {
-    let dir = std::env::temp_dir().join(format!("ptacorr-inject-{}", std::process::id()));
+    let dir = crate::testing::temp_path("inject");
     let amps = [0.0, 3e-15];
     let mut s = small_settings(&amps, 8);
     s.null_trials = 200;
@@ -277,7 +277,7 @@ fn reduced_space_recovery_is_unbiased_quick() {
 /// A release target: the expected recovery is A^2 on top of the data's own estimate.
 #[test]
 fn release_target_recovers_the_injection_on_top_of_the_data() {
-    let dir = std::env::temp_dir().join(format!("ptacorr-inject-rel-{}", std::process::id()));
+    let dir = crate::testing::temp_path("inject-rel");
     let sc = Scenario::parse(SMALL, Path::new("small.toml")).unwrap();
     let layout = lay_out(&sc, 7);
     crate::simulate::simulate_scenario(&layout, 7, &dir).unwrap();
@@ -510,8 +510,7 @@ fn a_full_size_campaign_gives_one_finite_record_per_realization() {
 /// The small check array written as a release (white noise and red noise, its noise.toml the
 /// true model).
 fn small_release(tag: &str) -> (std::path::PathBuf, crate::release::Release) {
-    let dir = std::env::temp_dir().join(format!("ptacorr-inject-{tag}-{}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&dir);
+    let dir = crate::testing::temp_path(&format!("inject-{tag}"));
     let sc = Scenario::parse(SMALL, Path::new("small.toml")).unwrap();
     let layout = lay_out(&sc, 7);
     crate::simulate::simulate_scenario(&layout, 7, &dir).unwrap();

@@ -52,6 +52,15 @@ impl Method {
             _ => None,
         }
     }
+
+    /// The name written in null.json and taken by `from_name`.
+    pub fn name(self) -> &'static str {
+        match self {
+            Method::Scramble => "scramble",
+            Method::Phase => "phase",
+            Method::Simulate => "simulate",
+        }
+    }
 }
 
 pub use crate::shard::Shard;

@@ -62,12 +62,9 @@ sigma_us = [0.5, 2.0]
 efac = [0.9, 1.2]
 "#;
 
-/// A fresh temporary folder under the system temp dir.
+/// A fresh temporary folder (the workspace's one helper).
 pub fn temp_dir(name: &str) -> PathBuf {
-    let d = std::env::temp_dir().join(format!("ptacorr-null-{}-{name}", std::process::id()));
-    let _ = std::fs::remove_dir_all(&d);
-    std::fs::create_dir_all(&d).expect("temp dir");
-    d
+    crate::testing::temp_dir(&format!("null-{name}"))
 }
 
 /// Simulate a scenario text with a seed into `dir` and read it back.

@@ -6,6 +6,7 @@
 //! variance, Allen 2023, engine/src/hd_spread.rs) and each bin's error bar from the full
 //! covariance of the bins with the signal (bins-covariance.csv, engine/src/bin_covariance.rs).
 
+use ptacorr::orf;
 use serde::Serialize;
 
 use super::canvas::{
@@ -18,17 +19,6 @@ use super::input::{CorrelateData, SUMMARY_JSON};
 use super::{ColumnWidth, Drawn, FigureError, FigureOptions};
 
 pub(crate) const STEM: &str = "angular-correlation";
-
-/// Hellings & Downs (1983) overlap reduction for distinct pulsars, normalised to 1/2 at
-/// zero separation: x = (1 - cos ζ)/2, G = 1/2 - x/4 + (3/2) x ln x.
-pub(crate) fn hellings_downs(cos_zeta: f64) -> f64 {
-    let x = ((1.0 - cos_zeta) / 2.0).clamp(0.0, 1.0);
-    if x <= 0.0 {
-        0.5
-    } else {
-        0.5 - x / 4.0 + 1.5 * x * x.ln()
-    }
-}
 
 const CURVE_STEP_DEG: f64 = 0.5;
 
@@ -103,21 +93,21 @@ const CURVES: [CurveSpec; 3] = [
         label: "Hellings–Downs",
         shape: "G(zeta)",
         stroke: Stroke::new(VERMILLION, 1.1, LineStyle::Solid),
-        f: hellings_downs,
+        f: orf::hellings_downs,
     },
     CurveSpec {
         pattern: "monopole",
         label: "monopole",
         shape: "1",
         stroke: Stroke::new(BLUE, 0.9, LineStyle::Dashed),
-        f: |_| 1.0,
+        f: orf::monopole,
     },
     CurveSpec {
         pattern: "dipole",
         label: "dipole",
         shape: "cos(zeta)",
         stroke: Stroke::new(GREEN, 0.9, LineStyle::DashDot),
-        f: |c| c,
+        f: orf::dipole,
     },
 ];
 
@@ -145,10 +135,13 @@ pub(crate) fn draw(
     source: &str,
 ) -> Result<Drawn, FigureError> {
     let s = &data.summary;
-    let hd = s.pattern("hd").ok_or_else(|| FigureError::MissingField {
-        path: data.dir.join(SUMMARY_JSON),
-        field: "patterns.hd".to_string(),
-    })?;
+    let hd = s
+        .patterns
+        .get("hd")
+        .ok_or_else(|| FigureError::MissingField {
+            path: data.dir.join(SUMMARY_JSON),
+            field: "patterns.hd".to_string(),
+        })?;
     let div = if opts.normalised {
         if hd.amplitude2 <= 0.0 {
             return Err(FigureError::InvalidField {
@@ -174,7 +167,7 @@ pub(crate) fn draw(
             angle_lo_deg: b.angle_lo_deg,
             angle_hi_deg: b.angle_hi_deg,
             angle_mean_deg: b.angle_mean_deg,
-            n_pairs: b.n_pairs,
+            n_pairs: b.n_pairs as u64,
             rho: b.rho,
             sigma: b.sigma,
             hd: b.hd,
@@ -194,7 +187,7 @@ pub(crate) fn draw(
     let mut curves = Vec::new();
     let mut curve_specs = Vec::new();
     for spec in &CURVES {
-        if let Some(fit) = s.pattern(spec.pattern) {
+        if let Some(fit) = s.patterns.get(spec.pattern) {
             let y = angles
                 .iter()
                 .map(|a| fit.amplitude2 * (spec.f)(a.to_radians().cos()) / div)
@@ -362,7 +355,7 @@ pub(crate) fn draw(
             " Shaded: expected spread of a Gaussian background around the HD curve at Â²(HD) (Allen 2023), dark the cosmic variance of the pair-averaged correlation, light the total variance of one pair with pulsar terms; noise not included.",
         );
     }
-    if let Some(f) = &s.bin_fit {
+    if let Some(f) = super::input::bin_fit(s) {
         let p = f
             .p_value
             .map(|p| format!(", p = {}", format::general(p, 2, Style::Figure)))
@@ -401,13 +394,7 @@ pub(crate) fn draw(
         a: plot.x,
         b: plot.right(),
     };
-    let ys = Scale {
-        lo: yt.lo,
-        hi: yt.hi,
-        log: false,
-        a: plot.bottom(),
-        b: plot.y,
-    };
+    let ys = Scale::y(&yt, &plot, false);
 
     let title = format!("Angular correlation: {}", s.title);
     let mut svg = Svg::new(w, h, stem);
@@ -535,32 +522,4 @@ pub(crate) fn draw(
         svg: svg_text,
         sidecar: super::sidecar_json(&sidecar, stem)?,
     })
-}
-
-#[cfg(test)]
-mod tests {
-    use super::hellings_downs;
-
-    #[test]
-    fn hellings_downs_known_values() {
-        assert_eq!(hellings_downs(1.0), 0.5);
-        // ζ = 180°: x = 1, G = 1/2 - 1/4.
-        assert!((hellings_downs(-1.0) - 0.25).abs() < 1e-15);
-        // ζ = 90°: x = 1/2, G = 3/8 + (3/4) ln(1/2) = -0.1448603...
-        assert!((hellings_downs(0.0) + 0.144_860_385_3).abs() < 1e-9);
-        // Continuous at ζ -> 0 and the minimum lies near 82.5°.
-        assert!((hellings_downs(1.0 - 1e-12) - 0.5).abs() < 1e-9);
-        let (mut best, mut at) = (1.0, 0.0);
-        for i in 0..=1800 {
-            let z = i as f64 / 10.0;
-            let g = hellings_downs(z.to_radians().cos());
-            if g < best {
-                best = g;
-                at = z;
-            }
-        }
-        assert!((at - 82.5).abs() < 0.5, "minimum at {at}");
-        // dG/dx = 0 at x = exp(-5/6): G = -0.151897...
-        assert!((best + 0.151_897).abs() < 1e-5, "minimum {best}");
-    }
 }

@@ -593,6 +593,28 @@ pub(crate) struct Scale {
 }
 
 impl Scale {
+    /// The horizontal scale of `ticks` across `plot`.
+    pub(crate) fn x(ticks: &Ticks, plot: &Rect, log: bool) -> Scale {
+        Scale {
+            lo: ticks.lo,
+            hi: ticks.hi,
+            log,
+            a: plot.x,
+            b: plot.right(),
+        }
+    }
+
+    /// The vertical scale of `ticks` up `plot` (`lo` at the bottom).
+    pub(crate) fn y(ticks: &Ticks, plot: &Rect, log: bool) -> Scale {
+        Scale {
+            lo: ticks.lo,
+            hi: ticks.hi,
+            log,
+            a: plot.bottom(),
+            b: plot.y,
+        }
+    }
+
     pub(crate) fn map(&self, v: f64) -> f64 {
         let t = if self.log {
             let v = v.max(f64::MIN_POSITIVE);

@@ -18,13 +18,10 @@ pub(crate) struct TempDir(PathBuf);
 impl TempDir {
     pub(crate) fn new(label: &str) -> Self {
         static N: AtomicU64 = AtomicU64::new(0);
-        let p = std::env::temp_dir().join(format!(
-            "ptacorr-figure-{label}-{}-{}",
-            std::process::id(),
+        let p = ptacorr::testing::temp_dir(&format!(
+            "figure-{label}-{}",
             N.fetch_add(1, Ordering::Relaxed)
         ));
-        let _ = std::fs::remove_dir_all(&p);
-        std::fs::create_dir_all(&p).expect("create temporary folder");
         Self(p)
     }
 
@@ -100,6 +97,7 @@ fn provenance(hash: &str) -> Value {
     json!({
         "program": "ptacorr",
         "version": "0.1.0",
+        "release_title": "Fictional release FR-1 (demo data)",
         "input_hash": hash,
         "settings": {
             "noise_model": "per-pulsar white + red power law (fictional)",
@@ -217,6 +215,11 @@ pub(crate) fn write_correlate(dir: &Path) {
                 "amplitude2": [3.8e-30, 1.0e-31, -1.5e-31],
                 "covariance": [[1.4e-60, -1.0e-61, 2.0e-62], [-1.0e-61, 1.8e-61, 0.0], [2.0e-62, 0.0, 3.9e-61]]
             },
+            "common_auto_power": null,
+            "per_frequency": null,
+            "hd_spread": null,
+            "bin_fit": {"skipped": "not computed for the fixture"},
+            "notes": "fixture",
             "provenance": provenance("sha256:0f3c9a7e5b21d4c86a0e9f1b2c3d4e5f60718293a4b5c6d7e8f9011223344556")
         }),
     );
@@ -250,17 +253,24 @@ pub(crate) fn write_null(dir: &Path, with_density: bool) {
         &dir.join("null.json"),
         &json!({
             "method": "scramble",
+            "time_domain": false,
             "pattern": "hd",
             "trials": NULL_TRIALS,
+            "total_trials": NULL_TRIALS,
+            "first_trial": 0,
+            "shard": null,
             "seed": 1,
             "observed_snr": observed,
+            "observed_amplitude2": observed * 1.1e-30,
+            "mutual_match": false,
+            "attempts": NULL_TRIALS * 5 / 2,
             "n_at_least_as_extreme": extreme,
             "p_value": p,
             "p_value_ci95": [p * 0.3, p * 2.6],
             "gaussian_sigma": 2.9,
             "match_threshold": 0.1,
             "acceptance_rate": 0.4,
-            "analytic": if with_density { json!({"p_value": 6.9e-4, "gaussian_sigma": 3.2}) } else { Value::Null },
+            "analytic": if with_density { json!({"p_value": 6.9e-4, "gaussian_sigma": 3.2, "n_eigenvalues": 120, "absolute_accuracy": 1e-10}) } else { Value::Null },
             "analytic_density": density,
             "assumptions": "Trials keep each pulsar's fitted noise and scramble sky positions; one-sided: S/N at least as large as observed.",
             "provenance": provenance("sha256:0f3c9a7e5b21d4c86a0e9f1b2c3d4e5f60718293a4b5c6d7e8f9011223344556")
@@ -325,6 +335,7 @@ pub(crate) fn write_inject(dir: &Path) {
             "realizations": 200,
             "mode": "reduced",
             "rows": rows,
+            "assumptions": "fixture",
             "provenance": provenance("sha256:0f3c9a7e5b21d4c86a0e9f1b2c3d4e5f60718293a4b5c6d7e8f9011223344556")
         }),
     );

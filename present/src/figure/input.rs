@@ -1,9 +1,10 @@
-//! Readers for ptacorr's output folders. Every value is checked on the way in and a bad one
-//! is reported with the file, the field (JSON path or CSV line and column) and the reason.
+//! Readers for ptacorr's output folders. Every file is read with the engine type it is
+//! written with (`ptacorr::output::read_json` / `read_csv`: one schema per file, defined once
+//! in the engine); the ranges a figure relies on (angles, probabilities, non-negative sigmas,
+//! finite values) are then checked, and a bad value is reported with the file and the field
+//! (JSON) or the line and column (CSV).
 
 use std::path::{Path, PathBuf};
-
-use serde_json::Value;
 
 use super::FigureError;
 
@@ -101,481 +102,151 @@ pub fn detect_kinds(dir: &Path) -> Result<Vec<FolderKind>, FigureError> {
     Ok(kinds)
 }
 
-fn read_text(path: &Path) -> Result<String, FigureError> {
-    std::fs::read_to_string(path).map_err(|source| FigureError::Read {
-        path: path.to_path_buf(),
-        source,
-    })
+/// A JSON file read with the engine type it is written with.
+fn read_json<T: serde::de::DeserializeOwned>(path: &Path) -> Result<T, FigureError> {
+    Ok(ptacorr::output::read_json(path)?)
 }
 
-/// A parsed JSON file with field access by dotted path, e.g. `patterns.hd.snr`.
-pub(crate) struct Doc {
-    pub path: PathBuf,
-    root: Value,
-}
-
-impl Doc {
-    pub(crate) fn load(path: &Path) -> Result<Self, FigureError> {
-        let text = read_text(path)?;
-        let root = serde_json::from_str(&text).map_err(|source| FigureError::Json {
+/// A CSV table read with the engine row type it is written with: (line, row) pairs.
+fn read_csv<T: serde::de::DeserializeOwned>(
+    path: &Path,
+    nonempty: bool,
+) -> Result<Vec<(u64, T)>, FigureError> {
+    let rows = ptacorr::output::read_csv::<T>(path)?;
+    if nonempty && rows.is_empty() {
+        return Err(FigureError::InvalidCell {
             path: path.to_path_buf(),
-            source,
-        })?;
-        Ok(Self {
-            path: path.to_path_buf(),
-            root,
-        })
+            line: 2,
+            column: "*".to_string(),
+            reason: "the file has a header but no rows".to_string(),
+        });
     }
+    Ok(rows.into_iter().map(|(l, r)| (l as u64, r)).collect())
+}
 
-    pub(crate) fn invalid(&self, field: &str, reason: impl Into<String>) -> FigureError {
-        FigureError::InvalidField {
-            path: self.path.clone(),
-            field: field.to_string(),
-            reason: reason.into(),
+/// Range checks of values read from one file: each failure names the file, line and column
+/// (CSV) or the field (JSON, line 0).
+struct Check<'a> {
+    path: &'a Path,
+    line: u64,
+}
+
+impl Check<'_> {
+    fn fail(&self, column: &str, reason: String) -> FigureError {
+        if self.line == 0 {
+            FigureError::InvalidField {
+                path: self.path.to_path_buf(),
+                field: column.to_string(),
+                reason,
+            }
+        } else {
+            FigureError::InvalidCell {
+                path: self.path.to_path_buf(),
+                line: self.line,
+                column: column.to_string(),
+                reason,
+            }
         }
     }
 
-    /// The value at `field`, or None when it is absent or JSON null.
-    pub(crate) fn opt(&self, field: &str) -> Option<&Value> {
-        let mut v = &self.root;
-        for key in field.split('.') {
-            v = v.as_object()?.get(key)?;
-        }
-        (!v.is_null()).then_some(v)
-    }
-
-    pub(crate) fn get(&self, field: &str) -> Result<&Value, FigureError> {
-        self.opt(field).ok_or_else(|| FigureError::MissingField {
-            path: self.path.clone(),
-            field: field.to_string(),
-        })
-    }
-
-    fn num(&self, field: &str, v: &Value) -> Result<f64, FigureError> {
-        let x = v
-            .as_f64()
-            .ok_or_else(|| self.invalid(field, format!("expected a number, found {v}")))?;
+    fn finite(&self, column: &str, x: f64) -> Result<f64, FigureError> {
         if x.is_finite() {
             Ok(x)
         } else {
-            Err(self.invalid(field, "the number is not finite"))
+            Err(self.fail(column, format!("`{x}` is not a finite number")))
         }
     }
 
-    pub(crate) fn f64(&self, field: &str) -> Result<f64, FigureError> {
-        self.num(field, self.get(field)?)
-    }
-
-    pub(crate) fn opt_f64(&self, field: &str) -> Result<Option<f64>, FigureError> {
-        self.opt(field).map(|v| self.num(field, v)).transpose()
-    }
-
-    pub(crate) fn u64(&self, field: &str) -> Result<u64, FigureError> {
-        let v = self.get(field)?;
-        if let Some(u) = v.as_u64() {
-            return Ok(u);
+    fn nonneg(&self, column: &str, x: f64) -> Result<f64, FigureError> {
+        if self.finite(column, x)? < 0.0 {
+            return Err(self.fail(column, format!("{x} is negative")));
         }
-        match v.as_f64() {
-            Some(x) if x >= 0.0 && x.fract() == 0.0 && x < 9.0e15 => Ok(x as u64),
-            _ => Err(self.invalid(
-                field,
-                format!("expected a non-negative whole number, found {v}"),
-            )),
+        Ok(x)
+    }
+
+    fn angle(&self, column: &str, x: f64) -> Result<f64, FigureError> {
+        if !(0.0..=180.0).contains(&self.finite(column, x)?) {
+            return Err(self.fail(column, format!("angle {x} deg is outside 0-180")));
         }
+        Ok(x)
     }
 
-    pub(crate) fn string(&self, field: &str) -> Result<String, FigureError> {
-        let v = self.get(field)?;
-        v.as_str()
-            .map(str::to_string)
-            .ok_or_else(|| self.invalid(field, format!("expected a string, found {v}")))
-    }
-
-    pub(crate) fn opt_string(&self, field: &str) -> Result<Option<String>, FigureError> {
-        match self.opt(field) {
-            None => Ok(None),
-            Some(v) => v
-                .as_str()
-                .map(|s| Some(s.to_string()))
-                .ok_or_else(|| self.invalid(field, format!("expected a string, found {v}"))),
+    fn probability(&self, column: &str, x: f64) -> Result<f64, FigureError> {
+        if !(0.0..=1.0).contains(&x) {
+            return Err(self.fail(column, format!("{x} is not a probability in [0, 1]")));
         }
-    }
-
-    pub(crate) fn f64_vec(&self, field: &str) -> Result<Vec<f64>, FigureError> {
-        let v = self.get(field)?;
-        let arr = v
-            .as_array()
-            .ok_or_else(|| self.invalid(field, "expected an array of numbers"))?;
-        arr.iter()
-            .enumerate()
-            .map(|(i, x)| self.num(&format!("{field}[{i}]"), x))
-            .collect()
+        Ok(x)
     }
 }
 
-/// Where a program's output came from, as recorded in every JSON file it writes.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Provenance {
-    pub program: String,
-    pub version: String,
-    /// Content hash of the inputs, e.g. `sha256:...`; None when the file does not record one.
-    pub input_hash: Option<String>,
-    /// The settings object as written (an empty object when absent).
-    pub settings: Value,
-}
+/// `summary.json` of a correlate folder: the engine's own type.
+pub use ptacorr::analysis::{BinFitSummary, PairRow as Pair, Provenance, Summary};
+/// One row of bins.csv: the engine's own type.
+pub use ptacorr::bins::Bin;
+/// One row of hd-spread.csv.
+pub use ptacorr::hd_spread::HdSpreadRow as SpreadRow;
+/// One row of recovery.csv: the same type the injection campaign writes.
+pub use ptacorr::inject::{RecoveryFile, RecoveryRow};
+/// null.json and one row of trials.csv.
+pub use ptacorr::null::{NullReport, Trial};
+use ptacorr::optimal::OsEstimate;
+/// One row of per-frequency.csv.
+pub use ptacorr::per_frequency::PerFrequencyRow;
 
-fn provenance(doc: &Doc) -> Result<Provenance, FigureError> {
-    Ok(Provenance {
-        program: doc.string("provenance.program")?,
-        version: doc.string("provenance.version")?,
-        input_hash: doc.opt_string("provenance.input_hash")?,
-        settings: doc
-            .opt("provenance.settings")
-            .cloned()
-            .unwrap_or_else(|| Value::Object(Default::default())),
-    })
-}
-
-/// One pattern's single-component fit.
-#[derive(Clone, Debug, PartialEq)]
-pub struct PatternFit {
-    pub name: String,
-    pub amplitude2: f64,
-    pub amplitude2_sigma: f64,
-    pub snr: f64,
-}
-
-/// The joint fit of several patterns.
-#[derive(Clone, Debug, PartialEq)]
-pub struct MultiFit {
-    pub patterns: Vec<String>,
-    pub amplitude2: Vec<f64>,
-    pub covariance: Vec<Vec<f64>>,
-}
-
-/// `summary.json` of a correlate folder.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Summary {
-    pub title: String,
-    pub n_pulsars: u64,
-    pub n_pairs: u64,
-    pub n_frequencies: u64,
-    pub spectral_index: f64,
-    pub span_years: f64,
-    pub frequencies_hz: Vec<f64>,
-    /// Fits in display order: hd, monopole, dipole, then any other pattern by name.
-    pub patterns: Vec<PatternFit>,
-    pub multiple_component: Option<MultiFit>,
-    /// The fit of the HD curve to the bins with their full covariance (`bin_fit`), if any.
-    pub bin_fit: Option<BinFitRead>,
-    pub provenance: Provenance,
-}
-
-/// `bin_fit` of a correlate summary.
-#[derive(Clone, Debug, PartialEq)]
-pub struct BinFitRead {
-    pub amplitude2: f64,
-    pub amplitude2_sigma: f64,
-    pub chi2: f64,
-    pub degrees_of_freedom: u64,
-    pub p_value: Option<f64>,
-}
-
-impl Summary {
-    pub fn pattern(&self, name: &str) -> Option<&PatternFit> {
-        self.patterns.iter().find(|p| p.name == name)
-    }
-}
-
-fn pattern_rank(name: &str) -> (usize, String) {
+/// The rank of a pattern in display order: hd, monopole, dipole, then any other by name.
+fn pattern_rank(name: &str) -> (usize, &str) {
     let r = match name {
         "hd" => 0,
         "monopole" => 1,
         "dipole" => 2,
         _ => 3,
     };
-    (r, name.to_string())
+    (r, name)
+}
+
+/// The single-pattern fits of a summary in display order.
+pub fn patterns_in_order(s: &Summary) -> Vec<(&str, &OsEstimate)> {
+    let mut v: Vec<(&str, &OsEstimate)> = s.patterns.iter().map(|(n, e)| (n.as_str(), e)).collect();
+    v.sort_by_key(|(n, _)| pattern_rank(n));
+    v
+}
+
+/// The bin fit of a summary, when there is one.
+pub fn bin_fit(s: &Summary) -> Option<&ptacorr::bin_covariance::BinFit> {
+    match &s.bin_fit {
+        BinFitSummary::Fit(f) => Some(f),
+        BinFitSummary::Skipped { .. } => None,
+    }
 }
 
 fn load_summary(path: &Path) -> Result<Summary, FigureError> {
-    let doc = Doc::load(path)?;
-    let pats = doc
-        .get("patterns")?
-        .as_object()
-        .ok_or_else(|| doc.invalid("patterns", "expected an object keyed by pattern name"))?;
-    let mut names: Vec<&String> = pats.keys().collect();
-    names.sort_by_key(|n| pattern_rank(n));
-    let mut patterns = Vec::new();
-    for name in names {
-        let base = format!("patterns.{name}");
-        let sigma = doc.f64(&format!("{base}.amplitude2_sigma"))?;
-        if sigma < 0.0 {
-            return Err(doc.invalid(&format!("{base}.amplitude2_sigma"), "sigma is negative"));
-        }
-        patterns.push(PatternFit {
-            name: name.clone(),
-            amplitude2: doc.f64(&format!("{base}.amplitude2"))?,
-            amplitude2_sigma: sigma,
-            snr: doc.f64(&format!("{base}.snr"))?,
-        });
+    let s: Summary = read_json(path)?;
+    let check = Check { path, line: 0 };
+    for (name, e) in &s.patterns {
+        check.nonneg(
+            &format!("patterns.{name}.amplitude2_sigma"),
+            e.amplitude2_sigma,
+        )?;
     }
-    if !patterns.iter().any(|p| p.name == "hd") {
+    if !s.patterns.contains_key("hd") {
         return Err(FigureError::MissingField {
             path: path.to_path_buf(),
             field: "patterns.hd".to_string(),
         });
     }
-    let multiple_component = match doc.opt("multiple_component") {
-        None => None,
-        Some(_) => {
-            let list = doc.get("multiple_component.patterns")?;
-            let names: Vec<String> = list
-                .as_array()
-                .and_then(|a| a.iter().map(|v| v.as_str().map(str::to_string)).collect())
-                .ok_or_else(|| {
-                    doc.invalid("multiple_component.patterns", "expected an array of names")
-                })?;
-            let amplitude2 = doc.f64_vec("multiple_component.amplitude2")?;
-            let k = names.len();
-            if amplitude2.len() != k {
-                return Err(doc.invalid(
-                    "multiple_component.amplitude2",
-                    format!("has {} values for {k} patterns", amplitude2.len()),
-                ));
-            }
-            let cov_v = doc.get("multiple_component.covariance")?;
-            let rows = cov_v
-                .as_array()
-                .ok_or_else(|| doc.invalid("multiple_component.covariance", "expected a matrix"))?;
-            let mut covariance = Vec::with_capacity(k);
-            for (i, row) in rows.iter().enumerate() {
-                let field = format!("multiple_component.covariance[{i}]");
-                let r: Option<Vec<f64>> = row
-                    .as_array()
-                    .and_then(|a| a.iter().map(Value::as_f64).collect());
-                match r {
-                    Some(r) if r.len() == k && r.iter().all(|x| x.is_finite()) => {
-                        covariance.push(r)
-                    }
-                    _ => return Err(doc.invalid(&field, format!("expected {k} finite numbers"))),
-                }
-            }
-            if covariance.len() != k {
-                return Err(doc.invalid(
-                    "multiple_component.covariance",
-                    format!("has {} rows for {k} patterns", covariance.len()),
-                ));
-            }
-            Some(MultiFit {
-                patterns: names,
-                amplitude2,
-                covariance,
-            })
-        }
-    };
-    let provenance = provenance(&doc)?;
-    if provenance.input_hash.is_none() {
-        return Err(FigureError::MissingField {
-            path: path.to_path_buf(),
-            field: "provenance.input_hash".to_string(),
-        });
-    }
-    Ok(Summary {
-        title: doc.string("title")?,
-        n_pulsars: doc.u64("n_pulsars")?,
-        n_pairs: doc.u64("n_pairs")?,
-        n_frequencies: doc.u64("n_frequencies")?,
-        spectral_index: doc.f64("spectral_index")?,
-        span_years: doc.f64("span_years")?,
-        frequencies_hz: doc.f64_vec("frequencies_hz")?,
-        patterns,
-        multiple_component,
-        bin_fit: match doc.opt("bin_fit.chi2") {
-            None => None,
-            Some(_) => Some(BinFitRead {
-                amplitude2: doc.f64("bin_fit.amplitude2")?,
-                amplitude2_sigma: doc.f64("bin_fit.amplitude2_sigma")?,
-                chi2: doc.f64("bin_fit.chi2")?,
-                degrees_of_freedom: doc.u64("bin_fit.degrees_of_freedom")?,
-                p_value: doc.opt_f64("bin_fit.p_value")?,
-            }),
-        },
-        provenance,
-    })
-}
-
-/// A CSV file read whole, with the positions of the columns asked for.
-struct Table {
-    path: PathBuf,
-    rows: Vec<csv::StringRecord>,
-    cols: Vec<(String, usize)>,
-}
-
-impl Table {
-    fn read(path: &Path, required: &[&str]) -> Result<Self, FigureError> {
-        let text = read_text(path)?;
-        let csv_err = |source| FigureError::Csv {
-            path: path.to_path_buf(),
-            source,
-        };
-        let mut rdr = csv::ReaderBuilder::new()
-            .trim(csv::Trim::All)
-            .from_reader(text.as_bytes());
-        let headers = rdr.headers().map_err(csv_err)?.clone();
-        let mut cols = Vec::new();
-        for name in required {
-            let idx = headers.iter().position(|h| h == *name).ok_or_else(|| {
-                FigureError::MissingColumn {
-                    path: path.to_path_buf(),
-                    column: (*name).to_string(),
-                }
-            })?;
-            cols.push(((*name).to_string(), idx));
-        }
-        let rows = rdr
-            .records()
-            .collect::<Result<Vec<_>, _>>()
-            .map_err(csv_err)?;
-        Ok(Self {
-            path: path.to_path_buf(),
-            rows,
-            cols,
-        })
-    }
-
-    fn cell<'r>(
-        &self,
-        row: &'r csv::StringRecord,
-        col: &str,
-    ) -> Result<(&'r str, u64), FigureError> {
-        let line = row.position().map_or(0, |p| p.line());
-        let idx = self
-            .cols
-            .iter()
-            .find(|(n, _)| n == col)
-            .map(|(_, i)| *i)
-            .ok_or_else(|| FigureError::MissingColumn {
-                path: self.path.clone(),
-                column: col.to_string(),
-            })?;
-        let s = row.get(idx).ok_or_else(|| FigureError::InvalidCell {
-            path: self.path.clone(),
-            line,
-            column: col.to_string(),
-            reason: "the row is too short".to_string(),
-        })?;
-        Ok((s, line))
-    }
-
-    fn bad(&self, line: u64, col: &str, reason: String) -> FigureError {
-        FigureError::InvalidCell {
-            path: self.path.clone(),
-            line,
-            column: col.to_string(),
-            reason,
+    if let Some(m) = &s.multiple_component {
+        let k = m.patterns.len();
+        if m.amplitude2.len() != k
+            || m.covariance.len() != k
+            || m.covariance.iter().any(|r| r.len() != k)
+        {
+            return Err(check.fail(
+                "multiple_component",
+                format!("expected {k} amplitudes and a {k} x {k} covariance"),
+            ));
         }
     }
-
-    /// A number; when `finite` is set, NaN and infinities are refused.
-    fn f64(&self, row: &csv::StringRecord, col: &str, finite: bool) -> Result<f64, FigureError> {
-        let (s, line) = self.cell(row, col)?;
-        let x: f64 = s
-            .parse()
-            .map_err(|_| self.bad(line, col, format!("`{s}` is not a number")))?;
-        if finite && !x.is_finite() {
-            return Err(self.bad(line, col, format!("`{s}` is not a finite number")));
-        }
-        Ok(x)
-    }
-
-    fn nonneg(&self, row: &csv::StringRecord, col: &str) -> Result<f64, FigureError> {
-        let x = self.f64(row, col, true)?;
-        if x < 0.0 {
-            let line = row.position().map_or(0, |p| p.line());
-            return Err(self.bad(line, col, format!("{x} is negative")));
-        }
-        Ok(x)
-    }
-
-    fn u64(&self, row: &csv::StringRecord, col: &str) -> Result<u64, FigureError> {
-        let (s, line) = self.cell(row, col)?;
-        if let Ok(u) = s.parse::<u64>() {
-            return Ok(u);
-        }
-        match s.parse::<f64>() {
-            Ok(x) if x >= 0.0 && x.fract() == 0.0 && x < 9.0e15 => Ok(x as u64),
-            _ => Err(self.bad(line, col, format!("`{s}` is not a whole number"))),
-        }
-    }
-
-    fn string(&self, row: &csv::StringRecord, col: &str) -> Result<String, FigureError> {
-        Ok(self.cell(row, col)?.0.to_string())
-    }
-
-    fn angle(&self, row: &csv::StringRecord, col: &str) -> Result<f64, FigureError> {
-        let x = self.f64(row, col, true)?;
-        if !(0.0..=180.0).contains(&x) {
-            let line = row.position().map_or(0, |p| p.line());
-            return Err(self.bad(line, col, format!("angle {x} deg is outside 0-180")));
-        }
-        Ok(x)
-    }
-
-    fn nonempty(self) -> Result<Self, FigureError> {
-        if self.rows.is_empty() {
-            return Err(FigureError::InvalidCell {
-                path: self.path.clone(),
-                line: 2,
-                column: "*".to_string(),
-                reason: "the file has a header but no rows".to_string(),
-            });
-        }
-        Ok(self)
-    }
-}
-
-/// One row of bins.csv.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Bin {
-    pub angle_lo_deg: f64,
-    pub angle_hi_deg: f64,
-    pub angle_mean_deg: f64,
-    pub n_pairs: u64,
-    pub rho: f64,
-    pub sigma: f64,
-    pub hd: f64,
-}
-
-/// One row of pairs.csv.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Pair {
-    pub pulsar_a: String,
-    pub pulsar_b: String,
-    pub angle_deg: f64,
-    pub rho: f64,
-    pub sigma: f64,
-    pub hd: f64,
-}
-
-/// One row of hd-spread.csv.
-#[derive(Clone, Debug, PartialEq)]
-pub struct SpreadRow {
-    pub angle_deg: f64,
-    pub hd: f64,
-    pub cosmic_sigma: f64,
-    pub total_sigma: f64,
-}
-
-/// One row of per-frequency.csv.
-#[derive(Clone, Debug, PartialEq)]
-pub struct PerFrequencyRead {
-    pub index: u64,
-    pub frequency_hz: f64,
-    pub amplitude2: f64,
-    pub amplitude2_sigma: f64,
-    pub amplitude2_sigma_signal: Option<f64>,
-    pub power_s2: f64,
-    pub expected_s2: f64,
+    Ok(s)
 }
 
 /// Everything in a correlate folder.
@@ -590,7 +261,7 @@ pub struct CorrelateData {
     /// The full-covariance error bar of each bin, from bins-covariance.csv, when present.
     pub bin_sigma_full: Option<Vec<f64>>,
     /// per-frequency.csv (empty when the folder has none).
-    pub per_frequency: Vec<PerFrequencyRead>,
+    pub per_frequency: Vec<PerFrequencyRow>,
     /// The noise-marginalised OS (summary.json `noise_marginalised` and nmos-draws.csv), when
     /// the run had noise draws.
     pub nmos: Option<NmosRead>,
@@ -603,14 +274,11 @@ pub struct NmosRead {
     pub draws: Vec<ptacorr::nmos::DrawResult>,
 }
 
-fn load_nmos(dir: &Path) -> Result<Option<NmosRead>, FigureError> {
-    let draws_path = dir.join(ptacorr::nmos::DRAWS_FILE);
-    let doc = Doc::load(&dir.join(SUMMARY_JSON))?;
-    let Some(block) = doc.opt(ptacorr::nmos::files::SUMMARY_KEY) else {
+fn load_nmos(dir: &Path, summary: &Summary) -> Result<Option<NmosRead>, FigureError> {
+    let Some(block) = &summary.noise_marginalised else {
         return Ok(None);
     };
-    let summary: ptacorr::nmos::NmosSummary = serde_json::from_value(block.clone())
-        .map_err(|e| doc.invalid(ptacorr::nmos::files::SUMMARY_KEY, e.to_string()))?;
+    let draws_path = dir.join(ptacorr::nmos::DRAWS_FILE);
     if !draws_path.is_file() {
         return Err(FigureError::MissingFile {
             dir: dir.to_path_buf(),
@@ -618,13 +286,11 @@ fn load_nmos(dir: &Path) -> Result<Option<NmosRead>, FigureError> {
             kind: "correlate with noise draws",
         });
     }
-    let draws =
-        ptacorr::nmos::files::read_draws(&draws_path).map_err(|e| FigureError::InvalidField {
-            path: draws_path.clone(),
-            field: "rows".to_string(),
-            reason: e.to_string(),
-        })?;
-    Ok(Some(NmosRead { summary, draws }))
+    let draws = ptacorr::nmos::files::read_draws(&draws_path)?;
+    Ok(Some(NmosRead {
+        summary: block.clone(),
+        draws,
+    }))
 }
 
 fn load_spread(dir: &Path) -> Result<Vec<SpreadRow>, FigureError> {
@@ -632,16 +298,15 @@ fn load_spread(dir: &Path) -> Result<Vec<SpreadRow>, FigureError> {
     if !path.is_file() {
         return Ok(Vec::new());
     }
-    let t = Table::read(&path, &["angle_deg", "hd", "cosmic_sigma", "total_sigma"])?;
-    t.rows
-        .iter()
-        .map(|r| {
-            Ok(SpreadRow {
-                angle_deg: t.angle(r, "angle_deg")?,
-                hd: t.f64(r, "hd", true)?,
-                cosmic_sigma: t.nonneg(r, "cosmic_sigma")?,
-                total_sigma: t.nonneg(r, "total_sigma")?,
-            })
+    read_csv::<SpreadRow>(&path, false)?
+        .into_iter()
+        .map(|(line, r)| {
+            let c = Check { path: &path, line };
+            c.angle("angle_deg", r.angle_deg)?;
+            c.finite("hd", r.hd)?;
+            c.nonneg("cosmic_sigma", r.cosmic_sigma)?;
+            c.nonneg("total_sigma", r.total_sigma)?;
+            Ok(r)
         })
         .collect()
 }
@@ -651,28 +316,26 @@ fn load_bin_sigma(dir: &Path, n_bins: usize) -> Result<Option<Vec<f64>>, FigureE
     if !path.is_file() {
         return Ok(None);
     }
-    let t = Table::read(&path, &["bin_a", "bin_b", "covariance"])?;
     let mut sig = vec![None; n_bins];
-    for r in &t.rows {
-        let (a, b) = (t.u64(r, "bin_a")?, t.u64(r, "bin_b")?);
-        let line = r.position().map_or(0, |p| p.line());
-        if a == 0 || a as usize > n_bins || b == 0 || b as usize > n_bins {
-            return Err(t.bad(
-                line,
-                "bin_a",
-                format!("bins run from 1 to {n_bins} (bins.csv)"),
-            ));
+    for (line, r) in read_csv::<ptacorr::bin_covariance::BinCovarianceRow>(&path, false)? {
+        let c = Check { path: &path, line };
+        let (a, b) = (r.bin_a, r.bin_b);
+        if a == 0 || a > n_bins || b == 0 || b > n_bins {
+            return Err(c.fail("bin_a", format!("bins run from 1 to {n_bins} (bins.csv)")));
         }
         if a == b {
-            sig[a as usize - 1] = Some(t.nonneg(r, "covariance")?.sqrt());
+            sig[a - 1] = Some(c.nonneg("covariance", r.covariance)?.sqrt());
         }
     }
     sig.into_iter()
         .enumerate()
         .map(|(i, s)| {
             s.ok_or_else(|| {
-                t.bad(
-                    0,
+                Check {
+                    path: &path,
+                    line: 0,
+                }
+                .fail(
                     "bin_a",
                     format!("no variance for bin {} (row bin_a = bin_b missing)", i + 1),
                 )
@@ -682,40 +345,24 @@ fn load_bin_sigma(dir: &Path, n_bins: usize) -> Result<Option<Vec<f64>>, FigureE
         .map(Some)
 }
 
-fn load_per_frequency(dir: &Path) -> Result<Vec<PerFrequencyRead>, FigureError> {
+fn load_per_frequency(dir: &Path) -> Result<Vec<PerFrequencyRow>, FigureError> {
     let path = dir.join(PER_FREQUENCY_CSV);
     if !path.is_file() {
         return Ok(Vec::new());
     }
-    let t = Table::read(
-        &path,
-        &[
-            "index",
-            "frequency_hz",
-            "amplitude2",
-            "amplitude2_sigma",
-            "amplitude2_sigma_signal",
-            "power_s2",
-            "expected_s2",
-        ],
-    )?;
-    t.rows
-        .iter()
-        .map(|r| {
-            let (sig, _) = t.cell(r, "amplitude2_sigma_signal")?;
-            Ok(PerFrequencyRead {
-                index: t.u64(r, "index")?,
-                frequency_hz: t.nonneg(r, "frequency_hz")?,
-                amplitude2: t.f64(r, "amplitude2", true)?,
-                amplitude2_sigma: t.nonneg(r, "amplitude2_sigma")?,
-                amplitude2_sigma_signal: if sig.is_empty() {
-                    None
-                } else {
-                    Some(t.nonneg(r, "amplitude2_sigma_signal")?)
-                },
-                power_s2: t.f64(r, "power_s2", true)?,
-                expected_s2: t.f64(r, "expected_s2", true)?,
-            })
+    read_csv::<PerFrequencyRow>(&path, false)?
+        .into_iter()
+        .map(|(line, r)| {
+            let c = Check { path: &path, line };
+            c.nonneg("frequency_hz", r.frequency_hz)?;
+            c.finite("amplitude2", r.amplitude2)?;
+            c.nonneg("amplitude2_sigma", r.amplitude2_sigma)?;
+            if let Some(x) = r.amplitude2_sigma_signal {
+                c.nonneg("amplitude2_sigma_signal", x)?;
+            }
+            c.finite("power_s2", r.power_s2)?;
+            c.finite("expected_s2", r.expected_s2)?;
+            Ok(r)
         })
         .collect()
 }
@@ -723,52 +370,33 @@ fn load_per_frequency(dir: &Path) -> Result<Vec<PerFrequencyRead>, FigureError> 
 impl CorrelateData {
     pub fn load(dir: &Path) -> Result<Self, FigureError> {
         let summary = load_summary(&dir.join(SUMMARY_JSON))?;
-        let t = Table::read(
-            &dir.join(BINS_CSV),
-            &[
-                "angle_lo_deg",
-                "angle_hi_deg",
-                "angle_mean_deg",
-                "n_pairs",
-                "rho",
-                "sigma",
-                "hd",
-            ],
-        )?
-        .nonempty()?;
-        let mut bins = Vec::with_capacity(t.rows.len());
-        for r in &t.rows {
-            let b = Bin {
-                angle_lo_deg: t.angle(r, "angle_lo_deg")?,
-                angle_hi_deg: t.angle(r, "angle_hi_deg")?,
-                angle_mean_deg: t.angle(r, "angle_mean_deg")?,
-                n_pairs: t.u64(r, "n_pairs")?,
-                rho: t.f64(r, "rho", true)?,
-                sigma: t.nonneg(r, "sigma")?,
-                hd: t.f64(r, "hd", true)?,
-            };
+        let path = dir.join(BINS_CSV);
+        let mut bins = Vec::new();
+        for (line, b) in read_csv::<Bin>(&path, true)? {
+            let c = Check { path: &path, line };
+            c.angle("angle_lo_deg", b.angle_lo_deg)?;
+            c.angle("angle_hi_deg", b.angle_hi_deg)?;
+            c.angle("angle_mean_deg", b.angle_mean_deg)?;
+            c.finite("rho", b.rho)?;
+            c.nonneg("sigma", b.sigma)?;
+            c.finite("hd", b.hd)?;
             if b.angle_hi_deg < b.angle_lo_deg {
-                let line = r.position().map_or(0, |p| p.line());
-                return Err(t.bad(line, "angle_hi_deg", "is below angle_lo_deg".to_string()));
+                return Err(c.fail("angle_hi_deg", "is below angle_lo_deg".to_string()));
             }
             bins.push(b);
         }
-        let t = Table::read(
-            &dir.join(PAIRS_CSV),
-            &["pulsar_a", "pulsar_b", "angle_deg", "rho", "sigma", "hd"],
-        )?;
-        let mut pairs = Vec::with_capacity(t.rows.len());
-        for r in &t.rows {
-            pairs.push(Pair {
-                pulsar_a: t.string(r, "pulsar_a")?,
-                pulsar_b: t.string(r, "pulsar_b")?,
-                angle_deg: t.angle(r, "angle_deg")?,
-                rho: t.f64(r, "rho", true)?,
-                sigma: t.nonneg(r, "sigma")?,
-                hd: t.f64(r, "hd", true)?,
-            });
+        let path = dir.join(PAIRS_CSV);
+        let mut pairs = Vec::new();
+        for (line, p) in read_csv::<Pair>(&path, false)? {
+            let c = Check { path: &path, line };
+            c.angle("angle_deg", p.angle_deg)?;
+            c.finite("rho", p.rho)?;
+            c.nonneg("sigma", p.sigma)?;
+            c.finite("hd", p.hd)?;
+            pairs.push(p);
         }
         let bin_sigma_full = load_bin_sigma(dir, bins.len())?;
+        let nmos = load_nmos(dir, &summary)?;
         Ok(Self {
             dir: dir.to_path_buf(),
             summary,
@@ -777,231 +405,141 @@ impl CorrelateData {
             spread: load_spread(dir)?,
             bin_sigma_full,
             per_frequency: load_per_frequency(dir)?,
-            nmos: load_nmos(dir)?,
+            nmos,
         })
     }
-}
-
-/// `null.json` of a null folder.
-#[derive(Clone, Debug, PartialEq)]
-pub struct NullSummary {
-    pub method: String,
-    pub pattern: String,
-    pub trials: u64,
-    /// The seed as written (a number or a string).
-    pub seed: String,
-    pub observed_snr: f64,
-    pub n_at_least_as_extreme: u64,
-    pub p_value: f64,
-    pub p_value_ci95: [f64; 2],
-    /// None when the file has null (e.g. p = 0 has no finite equivalent).
-    pub gaussian_sigma: Option<f64>,
-    pub match_threshold: Option<f64>,
-    pub acceptance_rate: Option<f64>,
-    /// Analytic p-value and its Gaussian-equivalent sigma.
-    pub analytic: Option<(f64, Option<f64>)>,
-    /// The analytic p-value fell below the inversion's absolute accuracy: `analytic.0` is then
-    /// that accuracy, an upper bound, and no sigma is given.
-    pub analytic_is_bound: bool,
-    /// Analytic null density: (snr, density) samples.
-    pub analytic_density: Option<(Vec<f64>, Vec<f64>)>,
-    pub assumptions: String,
-    pub provenance: Provenance,
-}
-
-/// One row of trials.csv.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Trial {
-    pub trial: u64,
-    pub snr: f64,
-    pub amplitude2: f64,
 }
 
 /// Everything in a null folder.
 #[derive(Clone, Debug, PartialEq)]
 pub struct NullData {
     pub dir: PathBuf,
-    pub summary: NullSummary,
+    pub summary: NullReport,
+    /// `provenance` of null.json, read as the engine's [`Provenance`].
+    pub provenance: Provenance,
     pub trials: Vec<Trial>,
-}
-
-fn probability(doc: &Doc, field: &str, x: f64) -> Result<f64, FigureError> {
-    if (0.0..=1.0).contains(&x) {
-        Ok(x)
-    } else {
-        Err(doc.invalid(field, format!("{x} is not a probability in [0, 1]")))
-    }
 }
 
 impl NullData {
     pub fn load(dir: &Path) -> Result<Self, FigureError> {
-        let doc = Doc::load(&dir.join(NULL_JSON))?;
-        let ci = doc.f64_vec("p_value_ci95")?;
-        if ci.len() != 2 || ci[0] > ci[1] {
-            return Err(doc.invalid("p_value_ci95", "expected [low, high] with low <= high"));
+        let path = dir.join(NULL_JSON);
+        let summary: NullReport = read_json(&path)?;
+        let c = Check {
+            path: &path,
+            line: 0,
+        };
+        c.probability("p_value", summary.p_value)?;
+        for x in summary.p_value_ci95 {
+            c.probability("p_value_ci95", x)?;
         }
-        let seed = match doc.get("seed")? {
-            Value::String(s) => s.clone(),
-            v @ Value::Number(_) => v.to_string(),
-            v => return Err(doc.invalid("seed", format!("expected a number, found {v}"))),
-        };
-        let mut analytic_is_bound = false;
-        let analytic = match doc.opt("analytic") {
-            None => None,
-            Some(_) => {
-                let p = probability(&doc, "analytic.p_value", doc.f64("analytic.p_value")?)?;
-                match doc.opt_f64("analytic.absolute_accuracy")? {
-                    Some(acc) if p < acc => {
-                        analytic_is_bound = true;
-                        Some((acc, None))
-                    }
-                    _ => Some((p, doc.opt_f64("analytic.gaussian_sigma")?)),
-                }
+        if summary.p_value_ci95[0] > summary.p_value_ci95[1] {
+            return Err(c.fail(
+                "p_value_ci95",
+                "expected [low, high] with low <= high".to_string(),
+            ));
+        }
+        if let Some(a) = &summary.analytic {
+            c.probability("analytic.p_value", a.p_value)?;
+        }
+        if let Some(d) = &summary.analytic_density {
+            if d.snr.len() != d.density.len() || d.snr.len() < 2 {
+                return Err(c.fail(
+                    "analytic_density",
+                    format!(
+                        "snr has {} values and density {}; need two or more of each, equal in number",
+                        d.snr.len(),
+                        d.density.len()
+                    ),
+                ));
             }
-        };
-        let analytic_density = match doc.opt("analytic_density") {
-            None => None,
-            Some(_) => {
-                let snr = doc.f64_vec("analytic_density.snr")?;
-                let density = doc.f64_vec("analytic_density.density")?;
-                if snr.len() != density.len() || snr.len() < 2 {
-                    return Err(doc.invalid(
-                        "analytic_density",
-                        format!(
-                            "snr has {} values and density {}; need two or more of each, equal in number",
-                            snr.len(),
-                            density.len()
-                        ),
-                    ));
-                }
-                if density.iter().any(|d| *d < 0.0) {
-                    return Err(doc.invalid("analytic_density.density", "a density is negative"));
-                }
-                Some((snr, density))
+            if d.density.iter().any(|x| *x < 0.0) {
+                return Err(c.fail(
+                    "analytic_density.density",
+                    "a density is negative".to_string(),
+                ));
             }
-        };
-        let trials_n = doc.u64("trials")?;
-        let summary = NullSummary {
-            method: doc.string("method")?,
-            pattern: doc.string("pattern")?,
-            trials: trials_n,
-            seed,
-            observed_snr: doc.f64("observed_snr")?,
-            n_at_least_as_extreme: doc.u64("n_at_least_as_extreme")?,
-            p_value: probability(&doc, "p_value", doc.f64("p_value")?)?,
-            p_value_ci95: [
-                probability(&doc, "p_value_ci95", ci[0])?,
-                probability(&doc, "p_value_ci95", ci[1])?,
-            ],
-            gaussian_sigma: doc.opt_f64("gaussian_sigma")?,
-            match_threshold: doc.opt_f64("match_threshold")?,
-            acceptance_rate: doc.opt_f64("acceptance_rate")?,
-            analytic,
-            analytic_is_bound,
-            analytic_density,
-            assumptions: doc.opt_string("assumptions")?.unwrap_or_default(),
-            provenance: provenance(&doc)?,
-        };
-        let t = Table::read(&dir.join(TRIALS_CSV), &["trial", "snr", "amplitude2"])?.nonempty()?;
-        let mut trials = Vec::with_capacity(t.rows.len());
-        for r in &t.rows {
-            trials.push(Trial {
-                trial: t.u64(r, "trial")?,
-                snr: t.f64(r, "snr", true)?,
-                amplitude2: t.f64(r, "amplitude2", false)?,
-            });
+        }
+        let provenance: Provenance = serde_json::from_value(summary.provenance.clone())
+            .map_err(|e| c.fail("provenance", e.to_string()))?;
+        let tpath = dir.join(TRIALS_CSV);
+        let text = std::fs::read_to_string(&tpath).map_err(|source| FigureError::Read {
+            path: tpath.clone(),
+            source,
+        })?;
+        let trials = ptacorr::null::parse_trials(&text, &tpath)?;
+        if trials.is_empty() {
+            return Err(Check {
+                path: &tpath,
+                line: 2,
+            }
+            .fail("*", "the file has a header but no rows".to_string()));
         }
         Ok(Self {
             dir: dir.to_path_buf(),
             summary,
+            provenance,
             trials,
         })
     }
-}
 
-/// One row of recovery.csv: the same type the injection campaign writes.
-pub use ptacorr::inject::RecoveryRow;
+    /// The analytic p-value and its Gaussian-equivalent sigma, and whether the p-value is only
+    /// an upper bound (below the inversion's absolute accuracy: then the accuracy, no sigma).
+    pub fn analytic(&self) -> Option<(f64, Option<f64>, bool)> {
+        self.summary.analytic.as_ref().map(|a| {
+            if a.p_value < a.absolute_accuracy {
+                (a.absolute_accuracy, None, true)
+            } else {
+                (a.p_value, a.gaussian_sigma, false)
+            }
+        })
+    }
+}
 
 /// Everything in an inject folder.
 #[derive(Clone, Debug, PartialEq)]
 pub struct InjectData {
     pub dir: PathBuf,
-    pub pattern: String,
-    pub false_alarm_probability: f64,
-    pub detection_threshold_snr: f64,
-    pub realizations: u64,
-    pub mode: String,
-    /// What the realizations are made on (recovery.json `target`; empty in older folders).
-    pub target: String,
+    /// recovery.json.
+    pub recovery: RecoveryFile,
+    /// `provenance` of recovery.json, read as the engine's [`Provenance`].
+    pub provenance: Provenance,
     /// Rows of recovery.csv in file order.
     pub rows: Vec<RecoveryRow>,
-    pub provenance: Provenance,
 }
 
 impl InjectData {
     pub fn load(dir: &Path) -> Result<Self, FigureError> {
-        let doc = Doc::load(&dir.join(RECOVERY_JSON))?;
-        let fap = doc.f64("false_alarm_probability")?;
+        let path = dir.join(RECOVERY_JSON);
+        let recovery: RecoveryFile = read_json(&path)?;
+        let c = Check {
+            path: &path,
+            line: 0,
+        };
+        let fap = recovery.false_alarm_probability;
         if !(fap > 0.0 && fap < 1.0) {
-            return Err(doc.invalid("false_alarm_probability", format!("{fap} is not in (0, 1)")));
+            return Err(c.fail("false_alarm_probability", format!("{fap} is not in (0, 1)")));
         }
-        let cols = [
-            "amplitude",
-            "amplitude2_injected",
-            "realizations",
-            "amplitude2_mean",
-            "amplitude2_std",
-            "amplitude2_sem",
-            "bias",
-            "bias_sem",
-            "snr_mean",
-            "snr_std",
-            "coverage68_weak",
-            "coverage95_weak",
-            "coverage68_full",
-            "coverage95_full",
-            "detection_probability",
-        ];
-        let t = Table::read(&dir.join(RECOVERY_CSV), &cols)?.nonempty()?;
-        let mut rows = Vec::with_capacity(t.rows.len());
-        for r in &t.rows {
-            let p = t.f64(r, "detection_probability", true)?;
-            if !(0.0..=1.0).contains(&p) {
-                let line = r.position().map_or(0, |p| p.line());
-                return Err(t.bad(
-                    line,
-                    "detection_probability",
-                    format!("{p} is not in [0, 1]"),
-                ));
-            }
-            rows.push(RecoveryRow {
-                amplitude: t.nonneg(r, "amplitude")?,
-                amplitude2_injected: t.nonneg(r, "amplitude2_injected")?,
-                realizations: t.u64(r, "realizations")?,
-                amplitude2_mean: t.f64(r, "amplitude2_mean", true)?,
-                amplitude2_std: t.nonneg(r, "amplitude2_std")?,
-                amplitude2_sem: t.f64(r, "amplitude2_sem", false)?,
-                bias: t.f64(r, "bias", false)?,
-                bias_sem: t.f64(r, "bias_sem", false)?,
-                snr_mean: t.f64(r, "snr_mean", false)?,
-                snr_std: t.f64(r, "snr_std", false)?,
-                coverage68_weak: t.f64(r, "coverage68_weak", false)?,
-                coverage95_weak: t.f64(r, "coverage95_weak", false)?,
-                coverage68_full: t.f64(r, "coverage68_full", false)?,
-                coverage95_full: t.f64(r, "coverage95_full", false)?,
-                detection_probability: p,
-            });
+        let provenance: Provenance = serde_json::from_value(recovery.provenance.clone())
+            .map_err(|e| c.fail("provenance", e.to_string()))?;
+        let cpath = dir.join(RECOVERY_CSV);
+        let mut rows = Vec::new();
+        for (line, r) in read_csv::<RecoveryRow>(&cpath, true)? {
+            let c = Check { path: &cpath, line };
+            c.nonneg("amplitude", r.amplitude)?;
+            c.nonneg("amplitude2_injected", r.amplitude2_injected)?;
+            c.finite("amplitude2_mean", r.amplitude2_mean)?;
+            c.nonneg("amplitude2_std", r.amplitude2_std)?;
+            c.probability(
+                "detection_probability",
+                c.finite("detection_probability", r.detection_probability)?,
+            )?;
+            rows.push(r);
         }
         Ok(Self {
             dir: dir.to_path_buf(),
-            pattern: doc.string("pattern")?,
-            false_alarm_probability: fap,
-            detection_threshold_snr: doc.f64("detection_threshold_snr")?,
-            realizations: doc.u64("realizations")?,
-            mode: doc.string("mode")?,
-            target: doc.opt_string("target")?.unwrap_or_default(),
+            recovery,
+            provenance,
             rows,
-            provenance: provenance(&doc)?,
         })
     }
 }

@@ -32,8 +32,8 @@ use std::path::{Path, PathBuf};
 pub use scaling::plot_scaling;
 
 pub use input::{
-    detect_kinds, Bin, CorrelateData, FolderKind, InjectData, MultiFit, NmosRead, NullData,
-    NullSummary, Pair, PatternFit, Provenance, RecoveryRow, Summary, Trial,
+    bin_fit, detect_kinds, patterns_in_order, Bin, CorrelateData, FolderKind, InjectData, NmosRead,
+    NullData, NullReport, Pair, Provenance, RecoveryFile, RecoveryRow, Summary, Trial,
 };
 
 use resvg::{tiny_skia, usvg};
@@ -51,17 +51,10 @@ pub enum FigureError {
         path: PathBuf,
         source: std::io::Error,
     },
-    #[error("{path}: not valid JSON: {source}")]
-    Json {
-        path: PathBuf,
-        source: serde_json::Error,
-    },
     #[error("{path}: cannot read CSV: {source}")]
     Csv { path: PathBuf, source: csv::Error },
     #[error("{path}: field `{field}` is missing")]
     MissingField { path: PathBuf, field: String },
-    #[error("{path}: column `{column}` is missing from the header")]
-    MissingColumn { path: PathBuf, column: String },
     #[error("{path}: field `{field}`: {reason}")]
     InvalidField {
         path: PathBuf,
@@ -654,13 +647,14 @@ mod tests {
         std::fs::write(c.join("bins.csv"), lines.join("\n")).unwrap();
         fixtures::seal(&c);
         let e = plot_folder(&c, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
+        // Read by the engine's own reader of bins.csv (output::read_csv).
         match &e {
-            FigureError::InvalidCell {
-                path, line, column, ..
-            } => {
+            FigureError::Engine(ptacorr::Error::Input {
+                path, line, field, ..
+            }) => {
                 assert!(path.ends_with("bins.csv"));
-                assert_eq!(*line, 4);
-                assert_eq!(column, "sigma");
+                assert_eq!(*line, Some(4));
+                assert_eq!(field.as_deref(), Some("sigma"));
             }
             other => panic!("unexpected error {other}"),
         }
@@ -669,7 +663,10 @@ mod tests {
         std::fs::write(n.join("null.json"), "{\"method\": \"phase\"").unwrap();
         fixtures::seal(&n);
         let e = plot_folder(&n, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
-        assert!(matches!(e, FigureError::Json { .. }), "{e}");
+        assert!(
+            matches!(&e, FigureError::Engine(ptacorr::Error::Input { path, line: Some(1), .. }) if path.ends_with("null.json")),
+            "{e}"
+        );
         fixtures::write_null(&n, true);
         fixtures::edit_json(&n.join("null.json"), |v| {
             v.as_object_mut().unwrap().remove("observed_snr");
@@ -687,7 +684,7 @@ mod tests {
         fixtures::seal(&i);
         let e = plot_folder(&i, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
         assert!(
-            matches!(&e, FigureError::MissingColumn { column, .. } if column == "detection_probability"),
+            matches!(&e, FigureError::Engine(ptacorr::Error::Input { field: Some(f), line: Some(1), .. }) if f == "detection_probability"),
             "{e}"
         );
     }

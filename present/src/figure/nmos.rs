@@ -59,8 +59,7 @@ pub(crate) fn draw(
     let fixed = data
         .summary
         .patterns
-        .iter()
-        .find(|p| p.name == "hd")
+        .get("hd")
         .map(|p| p.amplitude2)
         .unwrap_or(f64::NAN);
     let a2: Vec<f64> = n.draws.iter().map(|d| d.estimates[0].amplitude2).collect();
@@ -144,20 +143,8 @@ pub(crate) fn draw(
         lines,
         cap_y,
     } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
-    let xs = Scale {
-        lo: xt.lo,
-        hi: xt.hi,
-        log: false,
-        a: plot.x,
-        b: plot.right(),
-    };
-    let ys = Scale {
-        lo: yt.lo,
-        hi: yt.hi,
-        log: false,
-        a: plot.bottom(),
-        b: plot.y,
-    };
+    let xs = Scale::x(&xt, &plot, false);
+    let ys = Scale::y(&yt, &plot, false);
     let title = "Noise-marginalised Hellings–Downs Â²".to_string();
     let mut svg = Svg::new(w, h, stem);
     let clip = svg.clip(plot);

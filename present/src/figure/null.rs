@@ -121,7 +121,7 @@ pub(crate) fn draw(
     let span = (xhi - xlo).max(1e-9);
     let xt = linear_ticks(xlo - 0.03 * span, xhi + 0.03 * span, 6, false);
     let mut ymax = hist.density.iter().copied().fold(0.0, f64::max);
-    if let Some((x, d)) = &s.analytic_density {
+    if let Some((x, d)) = s.analytic_density.as_ref().map(|g| (&g.snr, &g.density)) {
         for (xi, di) in x.iter().zip(d) {
             if *xi >= xt.lo && *xi <= xt.hi {
                 ymax = ymax.max(*di);
@@ -129,7 +129,7 @@ pub(crate) fn draw(
         }
     }
     let yt = linear_ticks(0.0, ymax * 1.12, 5, true);
-    let x_label = format!("S/N of the {} pattern", pattern_words(&s.pattern));
+    let x_label = format!("S/N of the {} pattern", pattern_words(s.pattern.name()));
     let y_label = if yt.exponent != 0 {
         format!(
             "probability density [10{}]",
@@ -141,7 +141,11 @@ pub(crate) fn draw(
 
     let mut items = vec![
         LegendItem {
-            label: format!("{} trials ({})", data.trials.len(), method_words(&s.method)),
+            label: format!(
+                "{} trials ({})",
+                data.trials.len(),
+                method_words(s.method.name())
+            ),
             sample: Sample::Patch(SKY, 0.55, BLUE),
         },
         LegendItem {
@@ -175,12 +179,12 @@ pub(crate) fn draw(
         format::prob(s.p_value_ci95[1], Style::Figure),
         s.n_at_least_as_extreme,
         s.trials,
-        method_words(&s.method),
+        method_words(s.method.name()),
         format::fixed(obs, 2, Style::Figure),
         sigma
     );
-    if let Some((p, g)) = s.analytic {
-        let rel = if s.analytic_is_bound { "<" } else { "=" };
+    if let Some((p, g, is_bound)) = data.analytic() {
+        let rel = if is_bound { "<" } else { "=" };
         caption.push_str(&format!(
             " Analytic: p {rel} {}",
             format::general(p, 2, Style::Figure)
@@ -211,22 +215,13 @@ pub(crate) fn draw(
         lines,
         cap_y,
     } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
-    let xs = Scale {
-        lo: xt.lo,
-        hi: xt.hi,
-        log: false,
-        a: plot.x,
-        b: plot.right(),
-    };
-    let ys = Scale {
-        lo: yt.lo,
-        hi: yt.hi,
-        log: false,
-        a: plot.bottom(),
-        b: plot.y,
-    };
+    let xs = Scale::x(&xt, &plot, false);
+    let ys = Scale::y(&yt, &plot, false);
 
-    let title = format!("Null distribution of the {} S/N", pattern_words(&s.pattern));
+    let title = format!(
+        "Null distribution of the {} S/N",
+        pattern_words(s.pattern.name())
+    );
     let mut svg = Svg::new(w, h, stem);
     let clip = svg.clip(plot);
     draw_axes(&mut svg, plot, &xs, &ys, &xt, &yt, &x_label, &y_label)?;
@@ -254,7 +249,7 @@ pub(crate) fn draw(
         );
     }
     svg.close();
-    if let Some((x, d)) = &s.analytic_density {
+    if let Some((x, d)) = s.analytic_density.as_ref().map(|g| (&g.snr, &g.density)) {
         svg.open("analytic", Some(&clip), "");
         let pts: Vec<(f64, f64)> = x
             .iter()
@@ -296,8 +291,8 @@ pub(crate) fn draw(
     let sidecar = Sidecar {
         figure: STEM,
         source_folder: source.to_string(),
-        method: s.method.clone(),
-        pattern: s.pattern.clone(),
+        method: s.method.name().to_string(),
+        pattern: s.pattern.name().to_string(),
         trials_reported: s.trials,
         trials_in_file: data.trials.len(),
         observed_snr: obs,
@@ -306,9 +301,9 @@ pub(crate) fn draw(
         p_value_ci95: s.p_value_ci95,
         gaussian_sigma: s.gaussian_sigma,
         histogram: hist,
-        analytic_density: s.analytic_density.as_ref().map(|(x, d)| Density {
-            snr: x.clone(),
-            density: d.clone(),
+        analytic_density: s.analytic_density.as_ref().map(|g| Density {
+            snr: g.snr.clone(),
+            density: g.density.clone(),
         }),
         x_label,
         y_label,

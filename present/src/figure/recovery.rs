@@ -171,23 +171,23 @@ pub(crate) fn draw(
             sample: Sample::Marker(DET_MARKER, true),
         },
     ];
-    let fap = format::compact(data.false_alarm_probability, 3, Style::Figure);
+    let fap = format::compact(data.recovery.false_alarm_probability, 3, Style::Figure);
 
     let below = recovery
         .iter()
         .filter(|r| r.placement == "below_axis")
         .count();
-    let target = if data.target.is_empty() {
+    let target = if data.recovery.target.is_empty() {
         String::new()
     } else {
-        format!(" ({})", data.target)
+        format!(" ({})", data.recovery.target)
     };
     let mut caption = format!(
         "{} pattern, {} mode{target}, {} realizations per amplitude. (a) Error bars: ±1 standard deviation of Â² over realizations. (b) Detected means S/N ≥ {} (false-alarm probability {}); binomial 1σ bars.",
-        pattern_words(&data.pattern),
-        data.mode,
-        data.realizations,
-        format::fixed(data.detection_threshold_snr, 2, Style::Figure),
+        pattern_words(&data.recovery.pattern),
+        data.recovery.mode,
+        data.recovery.realizations,
+        format::fixed(data.recovery.detection_threshold_snr, 2, Style::Figure),
         fap,
     );
     if let Some(z) = data.rows.iter().find(|r| r.amplitude == 0.0) {
@@ -263,25 +263,13 @@ pub(crate) fn draw(
 
     let title = format!(
         "Injection recovery of the {} pattern",
-        pattern_words(&data.pattern)
+        pattern_words(&data.recovery.pattern)
     );
     let mut svg = Svg::new(w, h, stem);
 
     // Panel (a).
-    let xs = Scale {
-        lo: ta.lo,
-        hi: ta.hi,
-        log: true,
-        a: pa.x,
-        b: pa.right(),
-    };
-    let ys = Scale {
-        lo: ta.lo,
-        hi: ta.hi,
-        log: true,
-        a: pa.bottom(),
-        b: pa.y,
-    };
+    let xs = Scale::x(&ta, &pa, true);
+    let ys = Scale::y(&ta, &pa, true);
     let clip_a = svg.clip(pa);
     draw_axes(
         &mut svg,
@@ -342,13 +330,7 @@ pub(crate) fn draw(
     )?;
 
     // Panel (b).
-    let xs = Scale {
-        lo: tbx.lo,
-        hi: tbx.hi,
-        log: true,
-        a: pb.x,
-        b: pb.right(),
-    };
+    let xs = Scale::x(&tbx, &pb, true);
     let ys = Scale {
         lo: 0.0,
         hi: 1.0,
@@ -414,7 +396,7 @@ pub(crate) fn draw(
     svg.text(
         &format!(
             "false-alarm probability {fap}: S/N ≥ {}",
-            format::fixed(data.detection_threshold_snr, 2, Style::Figure)
+            format::fixed(data.recovery.detection_threshold_snr, 2, Style::Figure)
         ),
         pb.right() - 3.0,
         pb.bottom() - 4.0,
@@ -431,10 +413,10 @@ pub(crate) fn draw(
     let sidecar = Sidecar {
         figure: STEM,
         source_folder: source.to_string(),
-        pattern: data.pattern.clone(),
-        mode: data.mode.clone(),
-        false_alarm_probability: data.false_alarm_probability,
-        detection_threshold_snr: data.detection_threshold_snr,
+        pattern: data.recovery.pattern.clone(),
+        mode: data.recovery.mode.clone(),
+        false_alarm_probability: data.recovery.false_alarm_probability,
+        detection_threshold_snr: data.recovery.detection_threshold_snr,
         recovery,
         detection,
         omitted_zero_rows: omitted,

@@ -194,20 +194,8 @@ pub(crate) fn draw(
             (l.min(r.value), h.max(r.value))
         });
         let xt = log_ticks(xl, xh);
-        let xs = Scale {
-            lo: xt.lo,
-            hi: xt.hi,
-            log: true,
-            a: plot.x,
-            b: plot.right(),
-        };
-        let ys = Scale {
-            lo: yt.lo,
-            hi: yt.hi,
-            log: true,
-            a: plot.bottom(),
-            b: plot.y,
-        };
+        let xs = Scale::x(&xt, &plot, true);
+        let ys = Scale::y(&yt, &plot, true);
         let ylabel = match (k, measure) {
             (0, Measure::Wall) => "wall time (s)",
             (0, Measure::Cpu) => "CPU time (s)",

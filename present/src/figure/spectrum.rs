@@ -58,10 +58,13 @@ pub(crate) fn draw(
     source: &str,
 ) -> Result<Drawn, FigureError> {
     let s = &data.summary;
-    let hd = s.pattern("hd").ok_or_else(|| FigureError::MissingField {
-        path: data.dir.join(SUMMARY_JSON),
-        field: "patterns.hd".to_string(),
-    })?;
+    let hd = s
+        .patterns
+        .get("hd")
+        .ok_or_else(|| FigureError::MissingField {
+            path: data.dir.join(SUMMARY_JSON),
+            field: "patterns.hd".to_string(),
+        })?;
     // Each frequency's estimate of A^2 and the power law at the broadband amplitude.
     let points: Vec<SidePoint> = data
         .per_frequency
@@ -73,7 +76,7 @@ pub(crate) fn draw(
                 f64::NAN
             };
             SidePoint {
-                index: r.index,
+                index: r.index as u64,
                 frequency_nhz: r.frequency_hz * 1e9,
                 amplitude2: r.amplitude2,
                 sigma: r.amplitude2_sigma,
@@ -146,20 +149,8 @@ pub(crate) fn draw(
         lines,
         cap_y,
     } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
-    let xs = Scale {
-        lo: xt.lo,
-        hi: xt.hi,
-        log: true,
-        a: plot.x,
-        b: plot.right(),
-    };
-    let ys = Scale {
-        lo: yt.lo,
-        hi: yt.hi,
-        log: false,
-        a: plot.bottom(),
-        b: plot.y,
-    };
+    let xs = Scale::x(&xt, &plot, true);
+    let ys = Scale::y(&yt, &plot, false);
     let title = format!("Per-frequency statistic: {}", s.title);
     let mut svg = Svg::new(w, h, stem);
     let clip = svg.clip(plot);
