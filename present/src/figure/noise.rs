@@ -48,32 +48,18 @@ pub struct NoiseData {
     pub fit_warnings: Vec<String>,
 }
 
+/// A CSV table read with the engine row type it is written with (the engine's reader).
 fn read_rows<T: serde::de::DeserializeOwned>(path: &Path) -> Result<Vec<T>, FigureError> {
-    let mut r = csv::Reader::from_path(path).map_err(|source| FigureError::Csv {
-        path: path.to_path_buf(),
-        source,
-    })?;
-    r.deserialize()
-        .collect::<Result<Vec<T>, _>>()
-        .map_err(|source| FigureError::Csv {
-            path: path.to_path_buf(),
-            source,
-        })
+    Ok(ptacorr::output::read_csv::<T>(path)?
+        .into_iter()
+        .map(|(_, r)| r)
+        .collect())
 }
 
 impl NoiseData {
     /// Reads a noise folder (its manifest already checked by `detect_kinds`).
     pub fn load(dir: &Path) -> Result<Self, FigureError> {
-        let path = dir.join(PROVENANCE_FILE);
-        let text = std::fs::read_to_string(&path).map_err(|source| FigureError::Read {
-            path: path.clone(),
-            source,
-        })?;
-        let prov: NoiseProvenance =
-            serde_json::from_str(&text).map_err(|source| FigureError::Json {
-                path: path.clone(),
-                source,
-            })?;
+        let prov: NoiseProvenance = ptacorr::output::read_json(&dir.join(PROVENANCE_FILE))?;
         let mode = prov
             .settings
             .get("mode")
@@ -100,8 +86,10 @@ impl NoiseData {
             provenance: Provenance {
                 program: prov.program.clone(),
                 version: prov.version.clone(),
-                input_hash: Some(prov.input_hash.clone()),
+                release_title: prov.release_title.clone(),
+                input_hash: prov.input_hash.clone(),
                 settings: prov.settings.clone(),
+                warnings: prov.warnings.clone(),
             },
             release_title: prov.release_title.clone(),
             mode,
