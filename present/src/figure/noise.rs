@@ -196,21 +196,21 @@ fn draw(
         },
         LegendItem {
             label: "median".to_string(),
-            sample: Sample::Line(median_stroke.clone()),
+            sample: Sample::Line(median_stroke),
         },
         LegendItem {
             label: "68% interval".to_string(),
-            sample: Sample::Line(band_stroke.clone()),
+            sample: Sample::Line(band_stroke),
         },
         LegendItem {
             label: "MAP".to_string(),
-            sample: Sample::Line(map_stroke.clone()),
+            sample: Sample::Line(map_stroke),
         },
     ];
     if has_truth {
         items.push(LegendItem {
             label: "true value".to_string(),
-            sample: Sample::Line(truth_stroke.clone()),
+            sample: Sample::Line(truth_stroke),
         });
     }
     let mut caption = format!(
@@ -631,7 +631,7 @@ pub(crate) mod tests {
         let dir = t.sub("noise");
         write_noise(&dir);
         let out = t.sub("report");
-        let md = crate::report::build_report(&[dir.clone()], &out).unwrap();
+        let md = crate::report::build_report(std::slice::from_ref(&dir), &out).unwrap();
         let text = std::fs::read_to_string(md).unwrap();
         assert!(text.contains("### Noise estimation: noise"), "{text}");
         assert!(text.contains("| `P01` | 120 | yes | 1.002 | 640 | 512 | 1 | yes |"));
