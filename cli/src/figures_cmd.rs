@@ -7,7 +7,7 @@ use std::path::{Path, PathBuf};
 
 #[derive(clap::Args)]
 pub struct PlotArgs {
-    /// An output folder of `correlate`, `null` or `inject`.
+    /// An output folder of `correlate`, `null`, `inject` or `noise`.
     pub dir: PathBuf,
     /// svg, png or pdf.
     #[arg(long, default_value = "svg")]
@@ -21,7 +21,7 @@ pub struct PlotArgs {
 
 #[derive(clap::Args)]
 pub struct ReportArgs {
-    /// Output folders of `correlate`, `null` and `inject` to gather.
+    /// Output folders of `correlate`, `null`, `inject` and `noise` to gather.
     #[arg(required = true)]
     pub dirs: Vec<PathBuf>,
     #[arg(long)]

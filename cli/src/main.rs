@@ -94,7 +94,7 @@ enum Command {
     },
     /// Fit a common red process (CURN, HD, monopole, dipole) and compare them by Bayes factors.
     Common(Box<common_cmd::CommonArgs>),
-    /// Draw the figure of an output folder (correlate, null or inject).
+    /// Draw the figure of an output folder (correlate, null, inject or noise).
     Plot(figures_cmd::PlotArgs),
     /// Gather output folders into a memo-ready report (Markdown, HTML, LaTeX tables, figures).
     Report(figures_cmd::ReportArgs),

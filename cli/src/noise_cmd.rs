@@ -195,14 +195,25 @@ pub fn run(args: NoiseArgs) -> Result<()> {
         _ => "posterior medians",
     };
     println!(
-        "wrote {}/noise.toml ({what}), estimates.csv, diagnostics.csv, priors.toml, provenance.json{}",
+        "wrote {}/noise.toml ({what}), estimates.csv, diagnostics.csv, priors.toml, provenance.json{}{}",
         args.out.display(),
         if mode == SampleMode::MapOnly {
             ""
         } else {
             ", chains/LABEL.csv"
+        },
+        if run.truth.is_empty() {
+            ""
+        } else {
+            ", truth.csv (the simulation's true values)"
         }
     );
+    if mode != SampleMode::MapOnly {
+        println!(
+            "figures: ptacorr plot {} (marginal posteriors per pulsar)",
+            args.out.display()
+        );
+    }
     Ok(())
 }
 

@@ -98,6 +98,7 @@ fn noise_writes_a_model_correlate_reads_and_shards_merge() {
         "estimates.csv",
         "diagnostics.csv",
         "priors.toml",
+        "truth.csv",
         "chains/P01.csv",
         "chains/P03.csv",
     ] {
@@ -107,6 +108,20 @@ fn noise_writes_a_model_correlate_reads_and_shards_merge() {
             "{f}"
         );
     }
+    // The merged folder is drawn like the unsharded one: one posterior figure per pulsar.
+    for (dir, out) in [("all", "fig-all"), ("merged", "fig-merged")] {
+        ok(ptacorr()
+            .arg("plot")
+            .arg(d.join(dir))
+            .arg("--out")
+            .arg(d.join(out)));
+    }
+    let svg = std::fs::read(d.join("fig-all/noise-posterior-P01.svg")).unwrap();
+    assert_eq!(
+        svg,
+        std::fs::read(d.join("fig-merged/noise-posterior-P01.svg")).unwrap()
+    );
+    assert!(String::from_utf8_lossy(&svg).contains("truth-line"));
     // The written model is what correlate reads.
     std::fs::copy(d.join("all/noise.toml"), d.join("rel/noise.toml")).unwrap();
     ok(ptacorr()

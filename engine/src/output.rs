@@ -94,6 +94,46 @@ mod round_trip {
         Err(E::custom(format!("a CSV cell cannot hold {what}")))
     }
 
+    /// The compound forms neither a row nor a cell can be.
+    macro_rules! no_compounds {
+        () => {
+            fn serialize_seq(self, _: Option<usize>) -> Result<Self::SerializeSeq, E> {
+                not_a_cell("a sequence")
+            }
+            fn serialize_tuple(self, _: usize) -> Result<Self::SerializeTuple, E> {
+                not_a_cell("a tuple")
+            }
+            fn serialize_tuple_struct(
+                self,
+                _: &'static str,
+                _: usize,
+            ) -> Result<Self::SerializeTupleStruct, E> {
+                not_a_cell("a tuple")
+            }
+            fn serialize_tuple_variant(
+                self,
+                _: &'static str,
+                _: u32,
+                _: &'static str,
+                _: usize,
+            ) -> Result<Self::SerializeTupleVariant, E> {
+                not_a_cell("an enum")
+            }
+            fn serialize_map(self, _: Option<usize>) -> Result<Self::SerializeMap, E> {
+                not_a_cell("a map")
+            }
+            fn serialize_struct_variant(
+                self,
+                _: &'static str,
+                _: u32,
+                _: &'static str,
+                _: usize,
+            ) -> Result<Self::SerializeStructVariant, E> {
+                not_a_cell("an enum")
+            }
+        };
+    }
+
     impl SerializeStruct for Row<'_> {
         type Ok = ();
         type Error = E;
@@ -174,40 +214,7 @@ mod round_trip {
         ) -> Result<(), E> {
             not_a_cell("an enum")
         }
-        fn serialize_seq(self, _: Option<usize>) -> Result<Self::SerializeSeq, E> {
-            not_a_cell("a sequence")
-        }
-        fn serialize_tuple(self, _: usize) -> Result<Self::SerializeTuple, E> {
-            not_a_cell("a tuple")
-        }
-        fn serialize_tuple_struct(
-            self,
-            _: &'static str,
-            _: usize,
-        ) -> Result<Self::SerializeTupleStruct, E> {
-            not_a_cell("a tuple")
-        }
-        fn serialize_tuple_variant(
-            self,
-            _: &'static str,
-            _: u32,
-            _: &'static str,
-            _: usize,
-        ) -> Result<Self::SerializeTupleVariant, E> {
-            not_a_cell("an enum")
-        }
-        fn serialize_map(self, _: Option<usize>) -> Result<Self::SerializeMap, E> {
-            not_a_cell("a map")
-        }
-        fn serialize_struct_variant(
-            self,
-            _: &'static str,
-            _: u32,
-            _: &'static str,
-            _: usize,
-        ) -> Result<Self::SerializeStructVariant, E> {
-            not_a_cell("an enum")
-        }
+        no_compounds!();
     }
 
     macro_rules! display {
@@ -284,42 +291,9 @@ mod round_trip {
         ) -> Result<String, E> {
             not_a_cell("an enum with data")
         }
-        fn serialize_seq(self, _: Option<usize>) -> Result<Self::SerializeSeq, E> {
-            not_a_cell("a sequence")
-        }
-        fn serialize_tuple(self, _: usize) -> Result<Self::SerializeTuple, E> {
-            not_a_cell("a tuple")
-        }
-        fn serialize_tuple_struct(
-            self,
-            _: &'static str,
-            _: usize,
-        ) -> Result<Self::SerializeTupleStruct, E> {
-            not_a_cell("a tuple")
-        }
-        fn serialize_tuple_variant(
-            self,
-            _: &'static str,
-            _: u32,
-            _: &'static str,
-            _: usize,
-        ) -> Result<Self::SerializeTupleVariant, E> {
-            not_a_cell("an enum")
-        }
-        fn serialize_map(self, _: Option<usize>) -> Result<Self::SerializeMap, E> {
-            not_a_cell("a map")
-        }
+        no_compounds!();
         fn serialize_struct(self, _: &'static str, _: usize) -> Result<Self::SerializeStruct, E> {
             not_a_cell("a nested struct")
-        }
-        fn serialize_struct_variant(
-            self,
-            _: &'static str,
-            _: u32,
-            _: &'static str,
-            _: usize,
-        ) -> Result<Self::SerializeStructVariant, E> {
-            not_a_cell("an enum")
         }
     }
 }

@@ -1,7 +1,7 @@
 //! Scenario files: the recipe of a simulated array (pulsars, observing campaign, noise and the
 //! common background), read from TOML, and its layout into pulsars with TOAs.
 
-use crate::constants::{DM_REFERENCE_MHZ, GAMMA_BINARIES, SECONDS_PER_DAY};
+use crate::constants::GAMMA_BINARIES;
 use crate::error::{Error, Result};
 use crate::noise::{line_of, toml_error, NoiseModel, PulsarNoise, RedProcess, WhiteNoise};
 use crate::release::Pulsar;
@@ -680,7 +680,6 @@ pub fn lay_out(s: &Scenario, seed: u64) -> Layout {
             n_frequencies: None,
         });
     }
-    let _ = (DM_REFERENCE_MHZ, SECONDS_PER_DAY);
     Layout {
         title: s.array.title.clone(),
         pulsars,

@@ -51,9 +51,9 @@ pub fn build_report_with(
     })?;
     let inputs = load_inputs(dirs)?;
     let mut figures = Vec::new();
-    let mut per_kind = [0usize; 3];
+    let mut per_kind = std::collections::BTreeMap::<FolderKind, usize>::new();
     for input in &inputs {
-        let slot = &mut per_kind[input.kind as usize];
+        let slot = per_kind.entry(input.kind).or_insert(0);
         *slot += 1;
         let suffix = if *slot > 1 {
             format!("-{slot}")
@@ -85,6 +85,7 @@ enum Loaded {
     Correlate(Box<CorrelateData>),
     Null(Box<NullData>),
     Inject(Box<InjectData>),
+    Noise(Box<figure::noise::NoiseData>),
 }
 
 struct Input {
@@ -100,6 +101,7 @@ impl Input {
             Loaded::Correlate(c) => &c.summary.provenance,
             Loaded::Null(n) => &n.provenance,
             Loaded::Inject(i) => &i.provenance,
+            Loaded::Noise(n) => &n.provenance,
         }
     }
 }
@@ -112,6 +114,7 @@ fn load_inputs(dirs: &[PathBuf]) -> Result<Vec<Input>, FigureError> {
                 FolderKind::Correlate => Loaded::Correlate(Box::new(CorrelateData::load(dir)?)),
                 FolderKind::Null => Loaded::Null(Box::new(NullData::load(dir)?)),
                 FolderKind::Inject => Loaded::Inject(Box::new(InjectData::load(dir)?)),
+                FolderKind::Noise => Loaded::Noise(Box::new(figure::noise::NoiseData::load(dir)?)),
             };
             inputs.push((
                 kind,
@@ -356,6 +359,7 @@ fn compose(inputs: &[Input], figures: &[Vec<Drawn>]) -> Doc {
             Loaded::Correlate(d) => correlate_section(&mut b, &i.label, d),
             Loaded::Null(d) => null_section(&mut b, &i.label, d),
             Loaded::Inject(d) => inject_section(&mut b, &i.label, d),
+            Loaded::Noise(d) => noise_section(&mut b, &i.label, d),
         }
         for f in drawn {
             b.push(Block::Figure {
@@ -716,6 +720,104 @@ fn inject_section(b: &mut Vec<Block>, label: &str, d: &InjectData) {
         right: vec![true; 9],
         rows,
     }));
+}
+
+/// The noise section: per pulsar its convergence, then per parameter the posterior median and
+/// central 68 % interval with R-hat and effective sample sizes (docs/noise-estimation.md).
+fn noise_section(b: &mut Vec<Block>, label: &str, d: &figure::noise::NoiseData) {
+    b.push(Block::Heading(3, format!("Noise estimation: {label}")));
+    b.push(Block::Para(vec![t(format!(
+        "Release {}, mode {}; {} pulsars. Posterior medians and central 68% intervals from the chains (MAP only where a parameter was not sampled); R-hat is the rank-normalised split R-hat, ESS the bulk and tail effective sample sizes (Vehtari et al. 2021). The values assume the priors of the folder's priors.toml and a Gaussian, stationary noise model.",
+        d.release_title,
+        d.mode,
+        d.diagnostics.len()
+    ))]));
+    // "–" where a value does not exist (a parameter or pulsar that was not sampled).
+    let dash =
+        |v: Option<f64>, f: &dyn Fn(f64) -> Cell| v.map_or_else(|| Cell::Text("–".into()), f);
+    let yes_no = |v: Option<bool>| match v {
+        Some(true) => "yes",
+        Some(false) => "NO",
+        None => "–",
+    };
+    let rows = d
+        .diagnostics
+        .iter()
+        .map(|r| {
+            vec![
+                Cell::Code(r.pulsar.clone()),
+                num_int(r.n_toa as u64),
+                Cell::Text(yes_no(Some(r.map_converged)).to_string()),
+                dash(r.max_rhat, &|x| num_fixed(x, 3)),
+                dash(r.min_ess_bulk, &|x| num_fixed(x, 0)),
+                dash(r.min_ess_tail, &|x| num_fixed(x, 0)),
+                r.divergences
+                    .map_or_else(|| Cell::Text("–".into()), |x| num_int(x as u64)),
+                Cell::Text(yes_no(r.posterior_converged).to_string()),
+            ]
+        })
+        .collect();
+    b.push(Block::Table(Table {
+        caption: format!("Convergence per pulsar ({label}): MAP search, worst R-hat, smallest bulk and tail ESS over the sampled parameters, divergent draws, and whether the chains meet the thresholds."),
+        header: vec![
+            ("pulsar".into(), "pulsar".into()),
+            ("TOAs".into(), "TOAs".into()),
+            ("MAP converged".into(), "MAP converged".into()),
+            ("max R-hat".into(), "max $\\hat{R}$".into()),
+            ("min bulk ESS".into(), "min bulk ESS".into()),
+            ("min tail ESS".into(), "min tail ESS".into()),
+            ("divergences".into(), "divergences".into()),
+            ("converged".into(), "converged".into()),
+        ],
+        right: vec![false, true, false, true, true, true, true, false],
+        rows,
+    }));
+    let g = |v: f64| format::general(v, 4, Style::Text);
+    let rows = d
+        .estimates
+        .iter()
+        .map(|e| {
+            let interval = match (e.q16, e.q84) {
+                (Some(a), Some(z)) => Cell::Text(format!("{} to {}", g(a), g(z))),
+                _ => Cell::Text("–".into()),
+            };
+            vec![
+                Cell::Code(e.pulsar.clone()),
+                Cell::Code(e.parameter.clone()),
+                dash(e.median, &|x| num_general(x, 4)),
+                interval,
+                num_general(e.map, 4),
+                dash(d.truth_of(&e.pulsar, &e.parameter), &|x| num_general(x, 4)),
+                dash(e.rhat, &|x| num_fixed(x, 3)),
+                dash(e.ess_bulk, &|x| num_fixed(x, 0)),
+                dash(e.ess_tail, &|x| num_fixed(x, 0)),
+            ]
+        })
+        .collect();
+    b.push(Block::Table(Table {
+        caption: format!("Noise hyperparameters ({label}): posterior median, central 68% interval, MAP, the simulation's true value where known, R-hat and ESS."),
+        header: vec![
+            ("pulsar".into(), "pulsar".into()),
+            ("parameter".into(), "parameter".into()),
+            ("median".into(), "median".into()),
+            ("68% interval".into(), "68\\% interval".into()),
+            ("MAP".into(), "MAP".into()),
+            ("true".into(), "true".into()),
+            ("R-hat".into(), "$\\hat{R}$".into()),
+            ("bulk ESS".into(), "bulk ESS".into()),
+            ("tail ESS".into(), "tail ESS".into()),
+        ],
+        right: vec![false, false, true, true, true, true, true, true, true],
+        rows,
+    }));
+    if !d.fit_warnings.is_empty() {
+        b.push(Block::Para(vec![t(format!(
+            "Convergence warnings ({label}):"
+        ))]));
+        b.push(Block::List(
+            d.fit_warnings.iter().map(|w| vec![t(w.clone())]).collect(),
+        ));
+    }
 }
 
 fn caveats(inputs: &[Input]) -> Vec<Vec<Span>> {

@@ -10,15 +10,20 @@
 //!     arXiv:1804.06788): the rank of the truth among L thinned posterior draws is uniform on
 //!     0..L; chi-square test over 10 equal bins at alpha = 0.001 per parameter.
 //! (c) End to end: simulate a noise-only array, estimate every pulsar's noise, correlate with
-//!     the estimated model: over realizations the optimal statistic's A^2 has mean zero and the
-//!     SNR unit variance, within their Monte Carlo errors.
+//!     the estimated model: over realizations the optimal statistic's A^2 has mean zero; the
+//!     SNR has unit variance with the true model and a variance below 1 with MAP models fitted
+//!     to the same residuals (measured and explained in docs/noise-estimation.md).
 
 use ptacorr::analysis::{correlate, CommonAutoPower, CorrelateSettings};
+use ptacorr::noise::NoiseModel;
 use ptacorr::noise_fit::sample::SampleMode;
 use ptacorr::noise_fit::{fit_release, noise_model, NoiseSettings};
 use ptacorr::orf::Pattern;
 use ptacorr::priors::PriorFile;
+use ptacorr::release::{read_release, Release};
 use ptacorr::sampler::SamplerSettings;
+use ptacorr::scenario::{lay_out, Scenario};
+use ptacorr::simulate::simulate_scenario;
 use ptacorr_checks::{simulate_release, temp_dir};
 use statrs::distribution::{ChiSquared, ContinuousCDF};
 use std::path::Path;
@@ -195,67 +200,141 @@ n_frequencies = 10
 span_factor = 1
 "#;
 
+/// The Hellings-Downs SNR of `rel` analysed with the noise model `model`.
+fn hd_snr(rel: &Release, model: &NoiseModel) -> (f64, f64) {
+    let mut r = rel.clone();
+    r.noise = model.clone();
+    let c = correlate(
+        &r,
+        &CorrelateSettings {
+            n_frequencies: 10,
+            common: CommonAutoPower::Off,
+            ..CorrelateSettings::default()
+        },
+    )
+    .unwrap();
+    let hd = &c.estimates[&Pattern::Hd];
+    (hd.snr, hd.amplitude2 / hd.amplitude2_sigma)
+}
+
+/// Sample mean, sample variance and the Monte Carlo standard errors of both: sd / sqrt(R) for
+/// the mean, and for the variance the large-sample sd of a sample variance,
+/// sqrt((m4 - s^4) / R) with m4 the fourth central moment (e.g. Kendall & Stuart, The Advanced
+/// Theory of Statistics, vol. 1, sec. 10.5, recalled from memory). The fourth moment is the
+/// measured one, not a Gaussian's: the OS is a quadratic form with heavier tails.
+fn moments(v: &[f64]) -> [f64; 4] {
+    let n = v.len() as f64;
+    let m = v.iter().sum::<f64>() / n;
+    let var = v.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (n - 1.0);
+    let m4 = v.iter().map(|x| (x - m).powi(4)).sum::<f64>() / n;
+    [
+        m,
+        var,
+        (var / n).sqrt(),
+        ((m4 - var * var).max(0.0) / n).sqrt(),
+    ]
+}
+
 #[test]
 #[ignore]
-fn estimated_noise_gives_an_unbiased_optimal_statistic_with_unit_snr_variance() {
+fn estimated_noise_gives_an_unbiased_optimal_statistic_and_a_conservative_snr() {
     let priors = PriorFile::parse(
         "[components]\nequad = false\necorr_backends = \"none\"\nred_frequencies = 10\n",
         Path::new("priors.toml"),
     )
     .unwrap();
-    // MAP noise models (the posterior medians would need four chains per pulsar and per
-    // realization; the check is of the chain simulate -> estimate -> correlate).
-    let settings = NoiseSettings {
+    // MAP noise models (posterior medians need chains per pulsar and realization; set
+    // PTACORR_NOISE_E2E_FULL=1 to add them and models fitted to an independent realization).
+    let map = NoiseSettings {
         mode: SampleMode::MapOnly,
         ..NoiseSettings::default()
     };
+    let full = std::env::var_os("PTACORR_NOISE_E2E_FULL").is_some();
+    let sampled = NoiseSettings {
+        mode: SampleMode::Full,
+        sampler: SamplerSettings {
+            warmup: 300,
+            draws: 300,
+            chains: 2,
+            ..SamplerSettings::default()
+        },
+        ..NoiseSettings::default()
+    };
+    let scenario = Scenario::parse(END_TO_END, Path::new("end-to-end.toml")).unwrap();
     const R: usize = 150;
-    let mut snr = Vec::new();
+    let names = [
+        "true model",
+        "MAP model",
+        "MAP white noise, true red noise",
+        "MAP red noise, true white noise",
+        "posterior-median model",
+        "MAP model of an independent realization",
+    ];
+    let mut snr: Vec<Vec<f64>> = vec![Vec::new(); names.len()];
     let mut a2 = Vec::new();
     for r in 0..R {
+        let seed = 1000 + r as u64;
+        let layout = lay_out(&scenario, seed);
         let dir = temp_dir(&format!("noise-mc-e2e-{r}"));
-        let mut rel = simulate_release(END_TO_END, &dir, 1000 + r as u64);
+        simulate_scenario(&layout, seed, &dir.join("a")).unwrap();
+        let rel = read_release(&dir.join("a")).unwrap();
+        let truth = rel.noise.clone();
+        let fitted = noise_model(&fit_release(&rel, &priors, &map, &|| {}).unwrap());
+        let (mut white_only, mut red_only) = (truth.clone(), truth.clone());
+        for (label, p) in white_only.pulsars.iter_mut() {
+            p.white = fitted.pulsars[label].white.clone();
+        }
+        for (label, p) in red_only.pulsars.iter_mut() {
+            p.red = fitted.pulsars[label].red;
+        }
+        let (s_true, _) = hd_snr(&rel, &truth);
+        let (s_map, a2_map) = hd_snr(&rel, &fitted);
+        snr[0].push(s_true);
+        snr[1].push(s_map);
+        snr[2].push(hd_snr(&rel, &white_only).0);
+        snr[3].push(hd_snr(&rel, &red_only).0);
+        a2.push(a2_map);
+        if full {
+            let median = noise_model(&fit_release(&rel, &priors, &sampled, &|| {}).unwrap());
+            snr[4].push(hd_snr(&rel, &median).0);
+            // The same pulsars and true noise, another noise realization.
+            simulate_scenario(&layout, seed + 1_000_000, &dir.join("b")).unwrap();
+            let other = read_release(&dir.join("b")).unwrap();
+            let elsewhere = noise_model(&fit_release(&other, &priors, &map, &|| {}).unwrap());
+            snr[5].push(hd_snr(&rel, &elsewhere).0);
+        }
         let _ = std::fs::remove_dir_all(&dir);
-        let run = fit_release(&rel, &priors, &settings, &|| {}).unwrap();
-        rel.noise = noise_model(&run);
-        let c = correlate(
-            &rel,
-            &CorrelateSettings {
-                n_frequencies: 10,
-                common: CommonAutoPower::Off,
-                ..CorrelateSettings::default()
-            },
-        )
-        .unwrap();
-        let hd = &c.estimates[&Pattern::Hd];
-        snr.push(hd.snr);
-        a2.push(hd.amplitude2 / hd.amplitude2_sigma);
     }
-    let n = R as f64;
-    let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
-    let var = |v: &[f64]| {
-        let m = mean(v);
-        v.iter().map(|x| (x - m).powi(2)).sum::<f64>() / (v.len() - 1) as f64
-    };
-    let (m_snr, v_snr) = (mean(&snr), var(&snr));
-    // Mean zero: se 1 / sqrt(R); unit variance: se of a Gaussian sample variance
-    // sqrt(2 / (R - 1)) (the OS is a quadratic form, so its variance estimate scatters a
-    // little more; 4 sd, a false-failure rate below 1e-4 for a Gaussian).
-    eprintln!(
-        "end to end, {R} noise-only realizations with MAP noise models: mean SNR {m_snr:.3} (se {:.3}), var SNR {v_snr:.3} (se {:.3})",
-        1.0 / n.sqrt(),
-        (2.0 / (n - 1.0)).sqrt()
-    );
-    assert!(m_snr.abs() < 3.3 / n.sqrt(), "mean SNR {m_snr}");
-    // Known deviation, measured and left open (docs/noise-estimation.md, "Validation"): with
-    // MAP noise models estimated from the same residuals the noise-only SNR variance is about
-    // 0.5 (0.486 +- 0.116 at R = 150), not 1: the fitted red noise absorbs part of the data, so
-    // sigma_0 is too large and the SNR conservative. The check below guards the direction that
-    // would be harmful (an anti-conservative SNR, variance above 1) at 4 sd; unit variance
-    // itself is not reached yet.
+    let stats: Vec<[f64; 4]> = snr
+        .iter()
+        .filter(|v| !v.is_empty())
+        .map(|v| moments(v))
+        .collect();
+    for (name, [m, v, se_m, se_v]) in names.iter().zip(&stats) {
+        eprintln!(
+            "end to end, {R} noise-only realizations, {name}: mean SNR {m:.3} (se {se_m:.3}), var SNR {v:.3} (se {se_v:.3})"
+        );
+    }
+    // With the true noise model the SNR is normalised by construction: mean 0 and variance 1
+    // under the null (the OS normalisation; Anholm et al. 2009, PRD 79, 084030; Chamberlin et
+    // al. 2015, PRD 91, 044048). 4 Monte Carlo standard errors: a false-failure rate below
+    // 1e-4 for a Gaussian estimator.
+    let [m, v, se_m, se_v] = stats[0];
+    assert!(m.abs() < 4.0 * se_m, "true model: mean SNR {m}");
+    assert!((v - 1.0).abs() < 4.0 * se_v, "true model: var SNR {v}");
+    // With MAP models fitted to the same residuals the mean stays 0 but the variance falls well
+    // below 1 (measured 0.49 +- 0.06; docs/noise-estimation.md): the red-noise fit adapts to the
+    // realization (with only the white noise fitted the variance stays at the true model's), a
+    // property of plug-in estimation, not of the chain's arithmetic, which the true-model check
+    // covers.
+    // Asserted: the mean, and that the variance is below 1 by more than 4 of its standard
+    // errors (the documented conservative direction; an anti-conservative change fails).
+    let [m, v, se_m, se_v] = stats[1];
+    assert!(m.abs() < 4.0 * se_m, "MAP model: mean SNR {m}");
     assert!(
-        v_snr < 1.0 + 4.0 * (2.0 / (n - 1.0)).sqrt(),
-        "var SNR {v_snr}: the SNR would be anti-conservative"
+        v < 1.0 - 4.0 * se_v,
+        "MAP model: var SNR {v} +- {se_v} is no longer below 1 (docs/noise-estimation.md)"
     );
-    assert!(mean(&a2).abs() < 3.3 / n.sqrt());
+    let [m, _, se_m, _] = moments(&a2);
+    assert!(m.abs() < 4.0 * se_m, "MAP model: mean A2 / sigma {m}");
 }

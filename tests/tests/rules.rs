@@ -452,6 +452,31 @@ fn every_file_write_goes_through_the_atomic_writer() {
     judge("writer", findings, &scanned);
 }
 
+/// Issue 10.7: an unused constant is removed, not silenced with `let _ = (A, B);`. A binding of
+/// a tuple to `_` in product code only ever serves that purpose.
+#[test]
+fn no_constants_are_silenced_with_a_tuple_binding() {
+    let mut findings = Vec::new();
+    let mut scanned = Vec::new();
+    let dirs = crate_sources();
+    assert!(
+        dirs.iter().any(|d| d.ends_with("engine/src")),
+        "engine/src not found among {dirs:?}"
+    );
+    for dir in dirs {
+        for (p, lines) in non_test_sources(&dir) {
+            let rel = relative(&p);
+            scanned.push(rel.clone());
+            for (n, line) in lines {
+                if code_of(&line).replace(' ', "").starts_with("let_=(") {
+                    findings.push(("silenced", rel.clone(), n, line.clone()));
+                }
+            }
+        }
+    }
+    judge("silenced", findings, &scanned);
+}
+
 /// What no file may mention: the outside document the code once cited, and the folder it was
 /// in. Built from pieces so that this file does not match itself.
 const FORBIDDEN_MENTIONS: &[&[&str]] = &[

@@ -8,6 +8,7 @@
 pub mod map;
 pub mod posterior;
 pub mod sample;
+pub mod truth;
 
 use crate::error::{Error, Result};
 use crate::likelihood::{CommonTerm, PulsarLikelihood};
@@ -345,6 +346,8 @@ pub struct NoiseRun {
     /// The common process written to `noise.toml` (a fixed one only).
     pub common: Option<RedProcess>,
     pub provenance: NoiseProvenance,
+    /// True values of the fitted parameters when the release has `truth.toml` (simulated).
+    pub truth: Vec<truth::TruthValue>,
     /// The priors file with every default written out.
     pub priors_toml: String,
 }
@@ -399,6 +402,8 @@ pub fn fit_release(
     check_settings(settings)?;
     priors.check_release(release)?;
     let grid = FrequencyGrid::for_release(release, 1)?;
+    // The simulated truth (if any) is read before the work, so a bad file stops the run early.
+    let truth = truth::read_truth(&release.dir)?;
     let range = settings.shard.range(release.pulsars.len() as u64);
     let chosen: Vec<(u64, &Pulsar)> = range
         .clone()
@@ -451,11 +456,17 @@ pub fn fit_release(
         warnings: release.warnings.clone(),
         fit_warnings: fits.iter().flat_map(PulsarFit::warnings).collect(),
     };
+    let names: Vec<(&str, &[String])> = fits
+        .iter()
+        .map(|f| (f.label.as_str(), f.parameters.as_slice()))
+        .collect();
+    let truth = truth::truth_values(&truth, &names);
     Ok(NoiseRun {
         fits,
         common,
         provenance,
         priors_toml,
+        truth,
     })
 }
 
@@ -542,6 +553,12 @@ pub fn write_run(run: &NoiseRun, set: &mut OutputSet) -> Result<()> {
         csv_text(&diagnostics, DIAGNOSTICS_FILE)?.as_bytes(),
     )?;
     set.write(PRIORS_FILE, run.priors_toml.as_bytes())?;
+    if !run.truth.is_empty() {
+        set.write(
+            truth::TRUTH_FILE,
+            csv_text(&run.truth, truth::TRUTH_FILE)?.as_bytes(),
+        )?;
+    }
     for f in &run.fits {
         if let Some(s) = &f.samples {
             set.write(
@@ -600,7 +617,23 @@ pub fn merge_shards(dirs: &[&Path], out: &mut OutputSet) -> Result<()> {
     let mut estimates = String::new();
     let mut diagnostics = String::new();
     let mut chains: Vec<(String, Vec<u8>)> = Vec::new();
+    let mut truth_text = String::new();
     for (k, (prov, d)) in shards.iter().enumerate() {
+        // truth.csv (simulated releases only): the header once, then every shard's rows.
+        let path = d.join(truth::TRUTH_FILE);
+        if path.is_file() {
+            let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
+            let mut lines = text.lines();
+            let header = lines.next().unwrap_or_default();
+            if truth_text.is_empty() {
+                truth_text.push_str(header);
+                truth_text.push('\n');
+            }
+            for l in lines {
+                truth_text.push_str(l);
+                truth_text.push('\n');
+            }
+        }
         let path = d.join(NOISE_FILE);
         let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
         let m = NoiseModel::parse(&text, &path)?;
@@ -655,6 +688,9 @@ pub fn merge_shards(dirs: &[&Path], out: &mut OutputSet) -> Result<()> {
     out.write(ESTIMATES_FILE, estimates.as_bytes())?;
     out.write(DIAGNOSTICS_FILE, diagnostics.as_bytes())?;
     out.write(PRIORS_FILE, priors.as_bytes())?;
+    if !truth_text.is_empty() {
+        out.write(truth::TRUTH_FILE, truth_text.as_bytes())?;
+    }
     for (name, bytes) in &chains {
         out.write(name, bytes)?;
     }

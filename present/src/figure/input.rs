@@ -29,6 +29,8 @@ pub enum FolderKind {
     Null,
     /// `ptacorr inject`: recovery.json, recovery.csv.
     Inject,
+    /// `ptacorr noise`: estimates.csv, diagnostics.csv, provenance.json (figure/noise.rs).
+    Noise,
 }
 
 impl FolderKind {
@@ -37,6 +39,7 @@ impl FolderKind {
             FolderKind::Correlate => "correlate",
             FolderKind::Null => "null",
             FolderKind::Inject => "inject",
+            FolderKind::Noise => "noise",
         }
     }
 
@@ -45,6 +48,11 @@ impl FolderKind {
             FolderKind::Correlate => &[SUMMARY_JSON, BINS_CSV, PAIRS_CSV],
             FolderKind::Null => &[NULL_JSON, TRIALS_CSV],
             FolderKind::Inject => &[RECOVERY_JSON, RECOVERY_CSV],
+            FolderKind::Noise => &[
+                ptacorr::noise_fit::ESTIMATES_FILE,
+                ptacorr::noise_fit::DIAGNOSTICS_FILE,
+                ptacorr::noise_fit::PROVENANCE_FILE,
+            ],
         }
     }
 }
@@ -61,7 +69,12 @@ pub fn detect_kinds(dir: &Path) -> Result<Vec<FolderKind>, FigureError> {
         });
     }
     let mut kinds = Vec::new();
-    for kind in [FolderKind::Correlate, FolderKind::Null, FolderKind::Inject] {
+    for kind in [
+        FolderKind::Correlate,
+        FolderKind::Null,
+        FolderKind::Inject,
+        FolderKind::Noise,
+    ] {
         let files = kind.files();
         if dir.join(files[0]).is_file() {
             for f in &files[1..] {
@@ -79,7 +92,10 @@ pub fn detect_kinds(dir: &Path) -> Result<Vec<FolderKind>, FigureError> {
     if kinds.is_empty() {
         return Err(FigureError::UnknownFolder {
             dir: dir.to_path_buf(),
-            reason: format!("none of {SUMMARY_JSON}, {NULL_JSON} or {RECOVERY_JSON} is there"),
+            reason: format!(
+                "none of {SUMMARY_JSON}, {NULL_JSON}, {RECOVERY_JSON} or {} is there",
+                ptacorr::noise_fit::ESTIMATES_FILE
+            ),
         });
     }
     ptacorr::output::check_manifest(dir)?;

@@ -9,7 +9,9 @@
 //! - an inject folder (recovery.json, recovery.csv): recovered against injected amplitude
 //!   and the detection probability ([`recovery`]);
 //! - a common folder with a sampled free spectrum (free-spectrum.csv): the per-frequency
-//!   posteriors with the grid fit's power law ([`free_spectrum`]).
+//!   posteriors with the grid fit's power law ([`free_spectrum`]);
+//! - a noise folder (estimates.csv, diagnostics.csv, chains/): one figure per pulsar with the
+//!   marginal posteriors of its noise hyperparameters ([`noise`]).
 //!
 //! Each figure is written as SVG, PNG or PDF together with a JSON sidecar holding exactly
 //! the numbers that were drawn. All text is drawn as vector outlines of an embedded font,
@@ -22,6 +24,7 @@ pub(crate) mod format;
 pub mod free_spectrum;
 mod input;
 mod nmos;
+pub mod noise;
 mod null;
 mod recovery;
 pub mod scaling;
@@ -241,6 +244,9 @@ pub(crate) fn draw_kind(
                 &format!("{}{stem_suffix}", recovery::STEM),
                 &source,
             )?]
+        }
+        FolderKind::Noise => {
+            noise::draw_all(&noise::NoiseData::load(dir)?, opts, stem_suffix, &source)?
         }
     })
 }
