@@ -1,7 +1,7 @@
 //! Scenario files: the recipe of a simulated array (pulsars, observing campaign, noise and the
 //! common background), read from TOML, and its layout into pulsars with TOAs.
 
-use crate::constants::GAMMA_BINARIES;
+use crate::constants::{DM_REFERENCE_MHZ, GAMMA_BINARIES};
 use crate::error::{Error, Result};
 use crate::noise::{line_of, toml_error, NoiseModel, PulsarNoise, RedProcess, WhiteNoise};
 use crate::release::Pulsar;

@@ -39,7 +39,9 @@ fn true_value(noise: &PulsarNoise, name: &str) -> Option<f64> {
         Parameter::RedSpectralIndex => noise.red.map(|r| r.spectral_index),
         Parameter::DmLog10Amplitude => noise.dm.map(|r| r.log10_amplitude),
         Parameter::DmSpectralIndex => noise.dm.map(|r| r.spectral_index),
-        Parameter::CommonLog10Amplitude | Parameter::CommonSpectralIndex => None,
+        Parameter::CommonLog10Amplitude
+        | Parameter::CommonSpectralIndex
+        | Parameter::CommonLog10Power(_) => None,
     }
 }
 
