@@ -155,8 +155,12 @@ def test_second_scenario_equals_the_command(cli, work):
     same_folder(work / "cli-precise-null", work / "py-precise-null")
 
 
-def test_release_built_from_arrays_gives_the_same_pairs(work, demo_release):
-    rel = ptacorr.read_release(demo_release)
+def test_release_built_from_arrays_gives_the_same_pairs(cli, work):
+    # build_release takes no timing-model design matrices, so the release compared is one that
+    # ships none (the demo ships DM design matrices for its multi-frequency pulsars).
+    cli("simulate", REPO / "simulations" / "precise.toml", "--out", work / "precise-for-build",
+        "--seed", 5)
+    rel = ptacorr.read_release(work / "precise-for-build")
     ps = [rel.pulsar(l) for l in rel.labels]
     built = ptacorr.build_release(
         work / "built",
@@ -169,7 +173,7 @@ def test_release_built_from_arrays_gives_the_same_pairs(work, demo_release):
         freq_mhz=[p["freq_mhz"] for p in ps],
         backend=[p["backend"] for p in ps],
         title=rel.title,
-        noise=(demo_release / "noise.toml").read_text(),
+        noise=(work / "precise-for-build" / "noise.toml").read_text(),
     )
     assert built.labels == rel.labels
     a = ptacorr.correlate(rel, out=work / "corr-orig")
@@ -287,7 +291,9 @@ def test_long_calls_release_the_gil(demo_release, work):
 
 
 def test_ctrl_c_raises_keyboard_interrupt_and_the_same_call_resumes(cli, work, demo_release):
-    args = dict(method="simulate", time_domain=True, trials=400, seed=8, analytic=False)
+    # 1,200 trials (50 chunks) leave the signal seconds to land even on a loaded machine; with
+    # 400 the run once finished first while other builds shared the two cores.
+    args = dict(method="simulate", time_domain=True, trials=1200, seed=8, analytic=False)
     out = work / "ctrl-c-null"
 
     def press_ctrl_c_after_the_first_chunks():
@@ -308,6 +314,6 @@ def test_ctrl_c_raises_keyboard_interrupt_and_the_same_call_resumes(cli, work, d
     assert 2 <= len(chunks) < 50, len(chunks)  # stopped part-way, finished chunks kept
     assert not (out / "null.json").exists()
     ptacorr.null(demo_release, out=out, **args)
-    cli("null", demo_release, "--method", "simulate", "--time-domain", "--trials", 400,
+    cli("null", demo_release, "--method", "simulate", "--time-domain", "--trials", 1200,
         "--seed", 8, "--no-analytic", "--out", work / "ctrl-c-cli")
     same_folder(work / "ctrl-c-cli", out)
