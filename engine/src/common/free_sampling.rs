@@ -16,7 +16,7 @@ use crate::error::{Error, Result};
 use crate::rng::Purpose;
 use crate::sampler::diagnostics::quantile_sorted;
 use crate::sampler::{sample, summarise_coordinates, ChainDraws, LogDensity, SamplerSettings};
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 impl LogDensity for FreeSpectrumPosterior {
     fn dim(&self) -> usize {
@@ -35,9 +35,9 @@ impl LogDensity for FreeSpectrumPosterior {
 }
 
 /// One row of `free-spectrum.csv`: the posterior of log10 rho_j of one model.
-#[derive(Clone, Debug, Serialize, PartialEq)]
+#[derive(Clone, Debug, Serialize, Deserialize, PartialEq)]
 pub struct FreeSpectrumRow {
-    pub model: &'static str,
+    pub model: String,
     /// j in f_j = j / T_span.
     pub frequency_index: usize,
     pub frequency_hz: f64,
@@ -161,7 +161,7 @@ pub fn sample_free_spectrum(
         let q = |p: f64| quantile_sorted(&v, p);
         let s = &summaries[j];
         rows.push(FreeSpectrumRow {
-            model: model.name(),
+            model: model.name().to_string(),
             frequency_index: j + 1,
             frequency_hz: data.freqs[j],
             median: q(0.5),

@@ -6,7 +6,7 @@
 
 use std::path::Path;
 
-use serde::{Deserialize, Serialize};
+use serde::Serialize;
 
 use super::canvas::{
     draw_axes, draw_caption, draw_legend, linear_ticks, log_ticks, single_panel, LegendItem,
@@ -19,37 +19,15 @@ pub(crate) const STEM: &str = "free-spectrum";
 /// The table this figure reads.
 pub const FREE_SPECTRUM_CSV: &str = "free-spectrum.csv";
 
-/// One row of free-spectrum.csv (the engine's `FreeSpectrumRow`).
-#[derive(Clone, Debug, Deserialize, Serialize)]
-pub struct FreeSpectrumPoint {
-    pub model: String,
-    pub frequency_index: u64,
-    pub frequency_hz: f64,
-    pub median: f64,
-    pub lo_68: f64,
-    pub hi_68: f64,
-    pub lo_95: f64,
-    pub hi_95: f64,
-    pub rhat: f64,
-    pub ess_bulk: f64,
-    pub ess_tail: f64,
-    pub power_law_log10_rho: Option<f64>,
-}
+/// One row of free-spectrum.csv: the engine's own schema, read with the type it is written with.
+pub use ptacorr::common::free_sampling::FreeSpectrumRow as FreeSpectrumPoint;
 
 /// Read free-spectrum.csv of `dir`: every value finite, ordered intervals.
 pub fn read_free_spectrum(dir: &Path) -> Result<Vec<FreeSpectrumPoint>, FigureError> {
     let path = dir.join(FREE_SPECTRUM_CSV);
-    let mut rdr = csv::Reader::from_path(&path).map_err(|source| FigureError::Csv {
-        path: path.clone(),
-        source,
-    })?;
     let mut out = Vec::new();
-    for (i, r) in rdr.deserialize::<FreeSpectrumPoint>().enumerate() {
-        let line = i as u64 + 2;
-        let p = r.map_err(|source| FigureError::Csv {
-            path: path.clone(),
-            source,
-        })?;
+    for (line, p) in ptacorr::output::read_csv::<FreeSpectrumPoint>(&path)? {
+        let line = line as u64;
         let bad = |column: &str, reason: &str| FigureError::InvalidCell {
             path: path.clone(),
             line,
@@ -290,7 +268,7 @@ mod tests {
     fn row(model: &str, j: u64, m: f64) -> FreeSpectrumPoint {
         FreeSpectrumPoint {
             model: model.into(),
-            frequency_index: j,
+            frequency_index: j as usize,
             frequency_hz: j as f64 * 2.4e-9,
             median: m,
             lo_68: m - 0.1,
