@@ -332,7 +332,8 @@ pub fn csv_columns<T: serde::de::DeserializeOwned>() -> &'static [&'static str] 
 }
 
 /// Read a CSV table with the row type it was written with (`T`): every column of `T` must be
-/// in the header (others are ignored), cells are trimmed, and a bad cell is an
+/// in the header (others are ignored), cells are trimmed, a line repeating the header (files
+/// of shards concatenated) is skipped, and a bad cell is an
 /// [`Error::Input`] naming the file, the line and the column. Rows come with their line.
 pub fn read_csv<T: serde::de::DeserializeOwned>(path: &Path) -> Result<Vec<(usize, T)>> {
     let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
@@ -366,6 +367,9 @@ pub fn read_csv<T: serde::de::DeserializeOwned>(path: &Path) -> Result<Vec<(usiz
     let mut rows = Vec::new();
     for rec in rdr.records() {
         let rec = rec.map_err(|e| bad(e, &header))?;
+        if rec == header {
+            continue; // the files of shards concatenated repeat the header
+        }
         let line = rec.position().map_or(0, |p| p.line() as usize);
         let row = rec
             .deserialize(Some(&header))

@@ -23,19 +23,28 @@ use rand::Rng;
 use rand_distr::StandardNormal;
 use rayon::prelude::*;
 
-/// One realization at one amplitude.
-#[derive(Clone, Copy, Debug, PartialEq)]
+/// One realization at one amplitude: a row of `realizations.csv` (written by
+/// [`crate::output::csv_table`], read back by [`crate::output::read_csv`]).
+#[derive(Clone, Copy, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct Record {
     pub amplitude: f64,
     pub realization: u64,
     pub amplitude2: f64,
     /// sigma_0 (weak signal).
+    #[serde(rename = "amplitude2_sigma_weak")]
     pub sigma_weak: f64,
     /// From the pair covariance at the injected amplitude.
+    #[serde(rename = "amplitude2_sigma_full")]
     pub sigma_full: f64,
-    /// From the pair covariance at the recovered amplitude (what an analyst would report).
+    /// From the pair covariance at the recovered amplitude (what an analyst would report); not
+    /// in the file (the merge recomputes it from the variance polynomial).
+    #[serde(skip, default = "not_in_file")]
     pub sigma_plugin: f64,
     pub snr: f64,
+}
+
+fn not_in_file() -> f64 {
+    f64::NAN
 }
 
 /// The analysis at one amplitude: D_c, the Woodbury transforms and the variance polynomial.

@@ -4,7 +4,8 @@
 //! seeds or settings are refused, and missing or duplicated shards are reported.
 
 use super::{
-    build_report, parse_trials, write_outputs, AnalyticNull, NullReport, Trial, EIGENVALUES_FILE,
+    build_report, parse_trials, write_outputs, AnalyticNull, EigenvalueRow, NullReport, Trial,
+    EIGENVALUES_FILE,
 };
 use crate::error::{Error, Result};
 use std::path::{Path, PathBuf};
@@ -13,7 +14,7 @@ struct Part {
     dir: PathBuf,
     report: NullReport,
     trials: Vec<Trial>,
-    eigen_text: Option<String>,
+    eigenvalues: Option<Vec<f64>>,
 }
 
 fn read_part(dir: &Path) -> Result<Part> {
@@ -25,9 +26,9 @@ fn read_part(dir: &Path) -> Result<Part> {
     let tpath = dir.join("trials.csv");
     let ttext = std::fs::read_to_string(&tpath).map_err(|e| Error::io(&tpath, e))?;
     let trials = parse_trials(&ttext, &tpath)?;
-    let eigen_text = if report.analytic.is_some() {
-        let e = dir.join(EIGENVALUES_FILE);
-        Some(std::fs::read_to_string(&e).map_err(|err| Error::io(&e, err))?)
+    let eigenvalues = if report.analytic.is_some() {
+        let rows = crate::output::read_csv::<EigenvalueRow>(&dir.join(EIGENVALUES_FILE))?;
+        Some(rows.into_iter().map(|(_, r)| r.eigenvalue).collect())
     } else {
         None
     };
@@ -35,7 +36,7 @@ fn read_part(dir: &Path) -> Result<Part> {
         dir: dir.to_path_buf(),
         report,
         trials,
-        eigen_text,
+        eigenvalues,
     })
 }
 
@@ -46,19 +47,6 @@ fn settings_without_shard(r: &NullReport) -> serde_json::Value {
         o.remove("shard");
     }
     s
-}
-
-fn parse_eigenvalues(text: &str, path: &Path) -> Result<Vec<f64>> {
-    text.lines()
-        .enumerate()
-        .skip(1)
-        .filter(|(_, l)| !l.is_empty())
-        .map(|(i, l)| {
-            l.trim()
-                .parse::<f64>()
-                .map_err(|_| Error::input(path, Some(i + 1), Some("eigenvalue"), "not a number"))
-        })
-        .collect()
 }
 
 /// Merge the shard folders `dirs` into `out` (null.json, trials.csv and the eigenvalues).
@@ -113,7 +101,7 @@ pub fn merge(dirs: &[PathBuf], out: &Path) -> Result<NullReport> {
             ));
         }
         let rel = (a.observed_snr - b.observed_snr).abs() / a.observed_snr.abs().max(1e-300);
-        if rel > 1e-9 || first.eigen_text.is_some() != p.eigen_text.is_some() {
+        if rel > 1e-9 || first.eigenvalues.is_some() != p.eigenvalues.is_some() {
             return refuse(format!(
                 "{} and {} disagree about the observed data; rerun the shards with one program version",
                 first.dir.display(),
@@ -189,12 +177,10 @@ pub fn merge(dirs: &[PathBuf], out: &Path) -> Result<NullReport> {
         ));
     }
     let r = &parts[0].report;
-    let analytic = match &parts[0].eigen_text {
-        Some(t) => Some(AnalyticNull {
-            eigenvalues: parse_eigenvalues(t, &parts[0].dir.join(EIGENVALUES_FILE))?,
-        }),
-        None => None,
-    };
+    let analytic = parts[0]
+        .eigenvalues
+        .clone()
+        .map(|eigenvalues| AnalyticNull { eigenvalues });
     let mut provenance = r.provenance.clone();
     if let Some(s) = provenance
         .get_mut("settings")

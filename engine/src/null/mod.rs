@@ -18,7 +18,7 @@ use crate::analysis::{correlate, CorrelateSettings, Correlation, Provenance};
 use crate::error::{Error, Result};
 use crate::optimal::{pair_numerators, pair_traces, weight, Weighted};
 use crate::orf::{pattern_for_pairs, Pattern};
-use crate::output::{fmt_f64, write_atomic, OutputSet};
+use crate::output::{write_atomic, OutputSet};
 use crate::pvalue::{clopper_pearson, gaussian_equivalent_sigma, trial_p_value};
 use crate::release::Release;
 use crate::sky::Direction;
@@ -503,16 +503,53 @@ pub fn parse_trials(text: &str, path: &Path) -> Result<Vec<Trial>> {
     Ok(out)
 }
 
-fn checkpoint_csv(trials: &[Trial]) -> String {
-    let mut s = String::from("trial,snr,amplitude2,attempts\n");
-    for t in trials {
-        let _ = writeln!(
-            s,
-            "{},{:?},{:?},{}",
-            t.index, t.snr, t.amplitude2, t.attempts
-        );
-    }
-    s
+/// One row of a checkpoint chunk (`.partial/chunk-*.csv`): a trial with the draws it took.
+/// Written by [`crate::output::csv_table`] and read back by [`crate::output::read_csv`].
+#[derive(Serialize, Deserialize)]
+struct CheckpointRow {
+    trial: u64,
+    snr: f64,
+    amplitude2: f64,
+    attempts: u64,
+}
+
+fn checkpoint_csv(trials: &[Trial]) -> Result<Vec<u8>> {
+    let rows: Vec<CheckpointRow> = trials
+        .iter()
+        .map(|t| CheckpointRow {
+            trial: t.index,
+            snr: t.snr,
+            amplitude2: t.amplitude2,
+            attempts: t.attempts,
+        })
+        .collect();
+    crate::output::csv_table(&rows, "a checkpoint chunk")
+}
+
+/// Read a checkpoint chunk; SNR and amplitude2 must be finite (as in trials.csv).
+fn read_checkpoint(path: &Path) -> Result<Vec<Trial>> {
+    crate::output::read_csv::<CheckpointRow>(path)?
+        .into_iter()
+        .map(|(line, r)| {
+            for (field, v) in [("snr", r.snr), ("amplitude2", r.amplitude2)] {
+                if !v.is_finite() {
+                    return Err(Error::input(path, Some(line), Some(field), "not a finite number"));
+                }
+            }
+            Ok(Trial {
+                index: r.trial,
+                snr: r.snr,
+                amplitude2: r.amplitude2,
+                attempts: r.attempts,
+            })
+        })
+        .collect()
+}
+
+/// One row of the analytic null's eigenvalue file ([`EIGENVALUES_FILE`]).
+#[derive(Serialize, Deserialize)]
+pub(crate) struct EigenvalueRow {
+    pub(crate) eigenvalue: f64,
 }
 
 /// The name of the eigenvalue file written beside null.json when the analytic null is on.
@@ -579,8 +616,7 @@ pub fn run_chunks(
         let file = partial.map(|p| p.join(format!("chunk-{start:013}-{end:013}.csv")));
         let existing = match &file {
             Some(f) if f.exists() => {
-                let text = std::fs::read_to_string(f).map_err(|e| Error::io(f, e))?;
-                let t = parse_trials(&text, f)?;
+                let t = read_checkpoint(f)?;
                 let ok = t.len() as u64 == end - start
                     && t.iter().zip(start..end).all(|(t, i)| t.index == i);
                 ok.then_some(t)
@@ -604,7 +640,7 @@ pub fn run_chunks(
                     .map(|i| source.trial(i))
                     .collect::<Result<_>>()?;
                 if let Some(f) = &file {
-                    write_atomic(f, checkpoint_csv(&t).as_bytes())?;
+                    write_atomic(f, &checkpoint_csv(&t)?)?;
                 }
                 t
             }
@@ -701,11 +737,15 @@ pub fn write_outputs(
 ) -> Result<()> {
     out.write("trials.csv", trials_csv(trials).as_bytes())?;
     if let Some(a) = analytic {
-        let mut s = String::from("eigenvalue\n");
-        for e in &a.eigenvalues {
-            let _ = writeln!(s, "{}", fmt_f64(*e));
-        }
-        out.write(EIGENVALUES_FILE, s.as_bytes())?;
+        let rows: Vec<EigenvalueRow> = a
+            .eigenvalues
+            .iter()
+            .map(|&eigenvalue| EigenvalueRow { eigenvalue })
+            .collect();
+        out.write(
+            EIGENVALUES_FILE,
+            &crate::output::csv_table(&rows, EIGENVALUES_FILE)?,
+        )?;
     }
     out.write_json("null.json", report)
 }
