@@ -11,8 +11,20 @@ use sha2::{Digest, Sha256};
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
-/// Header of a residual table, in order.
+/// Header of a residual table, in order (the fields of [`ResidualRow`]).
 pub const RESIDUAL_COLUMNS: [&str; 5] = ["mjd", "residual_s", "sigma_s", "freq_mhz", "backend"];
+
+/// One row of a residual table: what `simulate` writes (through [`crate::output::csv_table`]).
+/// The reader takes the same columns with a byte-level parser of its own (a release can hold
+/// millions of TOAs), checked against the csv reader in the tests.
+#[derive(Clone, Debug, PartialEq, serde::Serialize, Deserialize)]
+pub struct ResidualRow {
+    pub mjd: f64,
+    pub residual_s: f64,
+    pub sigma_s: f64,
+    pub freq_mhz: f64,
+    pub backend: String,
+}
 
 /// The timing residuals and metadata of one pulsar.
 #[derive(Clone, Debug)]

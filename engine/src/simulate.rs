@@ -10,7 +10,7 @@ use crate::linalg::PsdRoot;
 use crate::noise::NoiseModel;
 use crate::orf::pattern_matrix;
 use crate::output::{fmt_f64, write_atomic};
-use crate::release::Pulsar;
+use crate::release::{Pulsar, ResidualRow};
 use crate::rng::{stream, Purpose};
 use crate::scenario::{BackgroundPattern, BackgroundSpec, Layout, SimulationSpec};
 use crate::spectrum::{power_law_phi, PowerLaw};
@@ -254,36 +254,28 @@ pub fn write_release(
         );
         if let Some(d) = &p.design {
             let _ = writeln!(rel, "design_matrix = \"design/{}.csv\"", p.label);
-            let mut csv = d.names.join(",");
-            csv.push('\n');
+            let mut w = csv::Writer::from_writer(Vec::new());
+            let bad = |e: csv::Error| Error::setting("design matrix", e.to_string());
+            w.write_record(&d.names).map_err(bad)?;
             for row in d.values.rows() {
-                let cells: Vec<String> = row.iter().map(|&v| fmt_f64(v)).collect();
-                csv.push_str(&cells.join(","));
-                csv.push('\n');
+                w.write_record(row.iter().map(|&v| fmt_f64(v)))
+                    .map_err(bad)?;
             }
-            write_atomic(
-                &dir.join("design").join(format!("{}.csv", p.label)),
-                csv.as_bytes(),
-            )?;
+            let csv = w.into_inner().map_err(|e| bad(e.into_error().into()))?;
+            write_atomic(&dir.join("design").join(format!("{}.csv", p.label)), &csv)?;
         }
         rel.push('\n');
-        let mut csv = String::with_capacity(p.n_toa() * 64);
-        csv.push_str("mjd,residual_s,sigma_s,freq_mhz,backend\n");
-        for i in 0..p.n_toa() {
-            let _ = writeln!(
-                csv,
-                "{},{},{},{},{}",
-                fmt_f64(p.mjd[i]),
-                fmt_f64(p.residual[i]),
-                fmt_f64(p.sigma[i]),
-                fmt_f64(p.freq_mhz[i]),
-                p.backends[p.backend[i]]
-            );
-        }
-        write_atomic(
-            &dir.join("residuals").join(format!("{}.csv", p.label)),
-            csv.as_bytes(),
-        )?;
+        let rows: Vec<ResidualRow> = (0..p.n_toa())
+            .map(|i| ResidualRow {
+                mjd: p.mjd[i],
+                residual_s: p.residual[i],
+                sigma_s: p.sigma[i],
+                freq_mhz: p.freq_mhz[i],
+                backend: p.backends[p.backend[i]].clone(),
+            })
+            .collect();
+        let csv = crate::output::csv_table(&rows, "residuals")?;
+        write_atomic(&dir.join("residuals").join(format!("{}.csv", p.label)), &csv)?;
     }
     let noise_text = toml::to_string(noise).map_err(|e| Error::setting("noise", e.to_string()))?;
     write_atomic(&dir.join("noise.toml"), noise_text.as_bytes())?;
