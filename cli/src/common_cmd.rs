@@ -196,7 +196,7 @@ pub fn run(args: &CommonArgs) -> Result<()> {
         free_files = write_free_spectrum(&mut set, fs, &free)?;
     }
     set.commit()?;
-    println!(
+    outln!(
         "{} pulsars, {} frequencies; prior: {} on [{}, {}], gamma uniform on [{}, {}]",
         data.n_pulsars(),
         data.k(),
@@ -206,13 +206,13 @@ pub fn run(args: &CommonArgs) -> Result<()> {
         settings.spectral_index_min,
         settings.spectral_index_max
     );
-    println!(
+    outln!(
         "  model      log10 A (gamma = {:.3}): median [95% interval]   95% upper limit",
         settings.fixed_spectral_index
     );
     for (m, f) in &fit.fits {
         let s = f.fixed.posterior.summary();
-        println!(
+        outln!(
             "  {:<9} {:>8.3} [{:.3}, {:.3}]   {:.3}",
             m.name(),
             s.median,
@@ -222,9 +222,9 @@ pub fn run(args: &CommonArgs) -> Result<()> {
         );
     }
     for (fixed, label) in [(true, "fixed index"), (false, "varied index")] {
-        println!("  ln Bayes factors, {label}:");
+        outln!("  ln Bayes factors, {label}:");
         for b in fit.standard_bayes_factors(fixed) {
-            println!(
+            outln!(
                 "    {:<14} {:>9.3} +- {:.1e}",
                 comparison_name(&b),
                 b.ln_bayes_factor,
@@ -232,10 +232,10 @@ pub fn run(args: &CommonArgs) -> Result<()> {
             );
         }
     }
-    println!("  {COMMON_ASSUMPTIONS}");
+    outln!("  {COMMON_ASSUMPTIONS}");
     for s in &free {
         let (rhat, ess) = s.worst();
-        println!(
+        outln!(
             "  free spectrum {}: {} frequencies, largest R-hat {:.3}, smallest bulk ESS {:.0}, {} divergences",
             s.model.name(),
             s.rows.len(),
@@ -245,10 +245,10 @@ pub fn run(args: &CommonArgs) -> Result<()> {
         );
     }
     if !free.is_empty() {
-        println!("  {FREE_SPECTRUM_ASSUMPTIONS}");
+        outln!("  {FREE_SPECTRUM_ASSUMPTIONS}");
     }
-    eprintln!("fitted in {:.2} s", t.elapsed().as_secs_f64());
-    println!(
+    errln!("fitted in {:.2} s", t.elapsed().as_secs_f64());
+    outln!(
         "wrote {}/summary.json, posterior-fixed-index.csv, posterior-grid.csv, marginals.csv, \
          common-draws.csv{}",
         args.out.display(),

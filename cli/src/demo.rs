@@ -15,7 +15,7 @@ pub fn run(out: &Path, seed: u64) -> Result<()> {
     let analysis_dir = out.join("correlate");
     let layout = lay_out(&scenario, seed);
     let pulsars = simulate_scenario(&layout, seed, &release_dir)?;
-    println!(
+    outln!(
         "simulated the demo array: {} pulsars, {} TOAs (seed {seed}) -> {}",
         pulsars.len(),
         pulsars.iter().map(|p| p.n_toa()).sum::<usize>(),
@@ -40,11 +40,11 @@ pub fn run(out: &Path, seed: u64) -> Result<()> {
         std::slice::from_ref(&analysis_dir),
         &out.join("report"),
     )?;
-    println!("wrote the analysis to {}", analysis_dir.display());
-    println!(
+    outln!("wrote the analysis to {}", analysis_dir.display());
+    outln!(
         "wrote the figure to {}",
         figure_dir.join("angular-correlation.png").display()
     );
-    println!("wrote the report to {}", report.display());
+    outln!("wrote the report to {}", report.display());
     Ok(())
 }

@@ -94,10 +94,10 @@ pub fn plot(args: &PlotArgs) -> Result<()> {
         }
         std::fs::rename(figures[0], target)
             .with_context(|| format!("writing {}", target.display()))?;
-        println!("wrote {}", target.display());
+        outln!("wrote {}", target.display());
     } else {
         for f in written {
-            println!("wrote {}", f.display());
+            outln!("wrote {}", f.display());
         }
     }
     Ok(())
@@ -106,7 +106,7 @@ pub fn plot(args: &PlotArgs) -> Result<()> {
 pub fn report(args: &ReportArgs) -> Result<PathBuf> {
     let md = build_report_with(&args.dirs, &args.out, &args.style.options())
         .context("building the report")?;
-    println!(
+    outln!(
         "wrote {} (and report.html, tables.tex, figures)",
         md.display()
     );

@@ -103,7 +103,7 @@ pub fn run(args: InjectArgs) -> Result<()> {
         let out = merge_shards(&args.merge)?;
         out.write(&args.out)?;
         print_table(&out);
-        println!(
+        outln!(
             "merged {} shards -> {}/recovery.csv, recovery.json, realizations.csv",
             args.merge.len(),
             args.out.display()
@@ -176,8 +176,8 @@ pub fn run(args: InjectArgs) -> Result<()> {
     let out = run_campaign(target, settings)?;
     out.write(&args.out)?;
     print_table(&out);
-    eprintln!("done in {:.2} s", t.elapsed().as_secs_f64());
-    println!(
+    errln!("done in {:.2} s", t.elapsed().as_secs_f64());
+    outln!(
         "wrote {}/recovery.csv, recovery.json, realizations.csv, coverage_plugin.csv, campaign.json",
         args.out.display()
     );
@@ -186,8 +186,8 @@ pub fn run(args: InjectArgs) -> Result<()> {
 
 fn print_table(out: &Outcome) {
     let s = &out.state;
-    println!("target: {}", s.target.describe());
-    println!(
+    outln!("target: {}", s.target.describe());
+    outln!(
         "{} injections, {} pattern, {} realizations per amplitude; detection: snr > {:.3} (false-alarm probability {})",
         s.mode.name(),
         s.pattern.name(),
@@ -195,12 +195,12 @@ fn print_table(out: &Outcome) {
         s.detection_threshold_snr,
         s.false_alarm_probability
     );
-    println!(
+    outln!(
         "  {:>10} {:>11} {:>11} {:>9} {:>7} {:>13} {:>13} {:>6}",
         "A", "mean A2", "bias/sem", "std A2", "snr", "cov68 w/full", "cov95 w/full", "P_det"
     );
     for r in &out.rows {
-        println!(
+        outln!(
             "  {:>10.3e} {:>11.3e} {:>11.2} {:>9.2e} {:>7.2} {:>6.3}/{:<6.3} {:>6.3}/{:<6.3} {:>6.3}",
             r.amplitude,
             r.amplitude2_mean,

@@ -101,13 +101,13 @@ pub fn run(a: JobArrayArgs, strict: bool, allow_outside_paths: bool) -> Result<(
         )
     })?;
     recipe.write()?;
-    println!(
+    outln!(
         "wrote {}/array.sh ({} tasks), merge.sh, submit.sh; submit with: bash {}/submit.sh",
         recipe.recipe_dir.display(),
         a.tasks,
         recipe.recipe_dir.display()
     );
-    println!(
+    outln!(
         "the merged {} campaign will be written to {}",
         kind.name(),
         recipe.out.display()

@@ -16,6 +16,20 @@ use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 use std::time::Instant;
 
+/// `println!` that cannot panic on a closed standard output (print.rs).
+macro_rules! outln {
+    ($($t:tt)*) => {
+        $crate::print::line(false, format_args!($($t)*))
+    };
+}
+
+/// `eprintln!` that cannot panic on a closed standard error (print.rs).
+macro_rules! errln {
+    ($($t:tt)*) => {
+        $crate::print::line(true, format_args!($($t)*))
+    };
+}
+
 mod common_cmd;
 mod demo;
 mod figures_cmd;
@@ -23,6 +37,7 @@ mod inject_cmd;
 mod job_array_cmd;
 mod noise_cmd;
 mod null_cmd;
+mod print;
 
 #[derive(Parser)]
 #[command(
@@ -44,7 +59,7 @@ struct Cli {
 
 /// Print a data warning to stderr (it is also recorded in the output's provenance).
 fn print_warning(w: &str) {
-    eprintln!("warning: {w}");
+    errln!("warning: {w}");
 }
 
 /// A seed: a whole number in 0..=2^64-1 (negative numbers reach here and get this message).
@@ -242,9 +257,9 @@ fn main() -> ExitCode {
     match run(cli) {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
-            eprintln!("error: {e}");
+            errln!("error: {e}");
             for cause in e.chain().skip(1) {
-                eprintln!("  caused by: {cause}");
+                errln!("  caused by: {cause}");
             }
             ExitCode::FAILURE
         }
@@ -267,7 +282,7 @@ fn run(cli: Cli) -> Result<()> {
             let pulsars =
                 ptacorr::simulate::simulate_release(&layout, seed, &out, replace_release)?;
             let n: usize = pulsars.iter().map(|p| p.n_toa()).sum();
-            println!(
+            outln!(
                 "simulated {} pulsars, {} TOAs (seed {seed}) -> {}",
                 pulsars.len(),
                 n,
@@ -296,7 +311,7 @@ fn run(cli: Cli) -> Result<()> {
                 let (rel, c) = correlate_release(&release, &settings)?;
                 c.write(&out, &rel, &settings)?;
                 print_summary(&rel, &c);
-                println!("wrote {}/summary.json, pairs.csv, bins.csv", out.display());
+                outln!("wrote {}/summary.json, pairs.csv, bins.csv", out.display());
                 return Ok(());
             };
             // The chain tables are read and checked before any work.
@@ -305,11 +320,11 @@ fn run(cli: Cli) -> Result<()> {
             let tables = ptacorr::nmos::read_tables(&rel, &nmos, &settings)?;
             let (rel, c) = correlate_release(&release, &settings)?;
             let (summary, results) = ptacorr::nmos::run(&rel, &settings, &nmos, &tables)?;
-            eprintln!("{} noise draws done", results.len());
+            errln!("{} noise draws done", results.len());
             c.write_with(&out, &rel, &settings, Some((&summary, &results)))?;
             print_summary(&rel, &c);
             print_nmos(&summary);
-            println!(
+            outln!(
                 "wrote {}/summary.json, pairs.csv, bins.csv, {}",
                 out.display(),
                 ptacorr::nmos::DRAWS_FILE
@@ -327,7 +342,7 @@ fn run(cli: Cli) -> Result<()> {
             if first.command == "correlate" {
                 let s = ptacorr::nmos::merge_shards(&dirs, &out)?;
                 print_nmos(&s);
-                println!("merged {} shards into {}", dirs.len(), out.display());
+                outln!("merged {} shards into {}", dirs.len(), out.display());
                 Ok(())
             } else {
                 null_cmd::run_merge(&dirs, &out)
@@ -362,7 +377,7 @@ pub(crate) fn correlate_release(
     let reduce_s = (pairs.0 - reduce.0).as_secs_f64();
     let reduce_cpu = pairs.1 - reduce.1;
     let pairs_s = (done.0 - pairs.0).as_secs_f64();
-    eprintln!(
+    errln!(
         "read {} TOAs in {read_s:.3} s (cpu {read_cpu:.3} s); reduced {} pulsars in {reduce_s:.3} s \
          (cpu {reduce_cpu:.3} s, {:.3} GFlop counted); pairs and fits in {pairs_s:.3} s",
         rel.n_toa(),
@@ -385,8 +400,8 @@ fn cpu_seconds() -> f64 {
 
 /// A short human summary of a correlation analysis.
 pub(crate) fn print_summary(rel: &Release, c: &Correlation) {
-    println!("{}", rel.title);
-    println!(
+    outln!("{}", rel.title);
+    outln!(
         "  {} pulsars, {} pairs, {} frequencies (1/{:.2} yr to {}/{:.2} yr), template index {:.3}",
         c.n_pulsars(),
         c.pairs.len(),
@@ -396,13 +411,13 @@ pub(crate) fn print_summary(rel: &Release, c: &Correlation) {
         c.grid.t_span / ptacorr::constants::SECONDS_PER_YEAR,
         c.spectral_index
     );
-    println!(
+    outln!(
         "  {:<9} {:>12} {:>12} {:>7}",
         "pattern", "A^2", "sigma(A^2)", "SNR"
     );
     for p in Pattern::ALL {
         let e = c.estimates[&p];
-        println!(
+        outln!(
             "  {:<9} {:>12.3e} {:>12.3e} {:>7.2}",
             p.name(),
             e.amplitude2,
@@ -412,17 +427,17 @@ pub(crate) fn print_summary(rel: &Release, c: &Correlation) {
     }
     let hd = c.estimates[&Pattern::Hd];
     if hd.amplitude2 > 0.0 {
-        println!(
+        outln!(
             "  hd amplitude A = {:.3e} (sqrt of A^2)",
             hd.amplitude2.sqrt()
         );
     }
-    println!("  SNR is not a false-alarm probability: use `ptacorr null` for that.");
+    outln!("  SNR is not a false-alarm probability: use `ptacorr null` for that.");
 }
 
 /// The noise-marginalised OS in a few lines.
 pub(crate) fn print_nmos(s: &ptacorr::nmos::NmosSummary) {
-    println!(
+    outln!(
         "  noise-marginalised over {} draws ({} pulsars drawn, {} at noise.toml{}):",
         s.draws,
         s.pulsars_drawn.len(),
@@ -433,12 +448,12 @@ pub(crate) fn print_nmos(s: &ptacorr::nmos::NmosSummary) {
             ""
         }
     );
-    println!(
+    outln!(
         "  {:<9} {:>12} {:>25} {:>7} {:>15}",
         "pattern", "median A^2", "68% interval of A^2", "SNR", "68% of SNR"
     );
     for (p, x) in &s.patterns {
-        println!(
+        outln!(
             "  {:<9} {:>12.3e} {:>12.3e}..{:<11.3e} {:>7.2} {:>6.2}..{:<6.2}",
             p.name(),
             x.amplitude2.median,

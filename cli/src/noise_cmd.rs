@@ -151,7 +151,7 @@ pub fn run(args: NoiseArgs) -> Result<()> {
     pb.finish_and_clear();
     write_run(&run, &mut set)?;
     set.commit()?;
-    println!(
+    outln!(
         "{:<8} {:>6} {:>6} {:>16}  {:<28} posterior ({})",
         "pulsar",
         "TOAs",
@@ -182,19 +182,19 @@ pub fn run(args: NoiseArgs) -> Result<()> {
             ),
             _ => "-".to_string(),
         };
-        println!(
+        outln!(
             "{:<8} {:>6} {:>6} {:>16.3}  {:<28} {}",
             d.pulsar, d.n_toa, d.n_parameters, d.map_log_posterior, map, post
         );
     }
     for w in &run.provenance.fit_warnings {
-        eprintln!("warning: {w}");
+        errln!("warning: {w}");
     }
     let what = match (mode, settings.values) {
         (SampleMode::MapOnly, _) | (_, ModelValues::Map) => "MAP values",
         _ => "posterior medians",
     };
-    println!(
+    outln!(
         "wrote {}/noise.toml ({what}), estimates.csv, diagnostics.csv, priors.toml, provenance.json{}{}",
         args.out.display(),
         if mode == SampleMode::MapOnly {
@@ -209,7 +209,7 @@ pub fn run(args: NoiseArgs) -> Result<()> {
         }
     );
     if mode != SampleMode::MapOnly {
-        println!(
+        outln!(
             "figures: ptacorr plot {} (marginal posteriors per pulsar)",
             args.out.display()
         );
@@ -223,6 +223,6 @@ pub fn run_merge(args: MergeNoiseArgs) -> Result<()> {
     let mut set = OutputSet::begin(&args.out, "merge-noise")?;
     merge_shards(&dirs, &mut set)?;
     set.commit()?;
-    println!("merged {} shards into {}", dirs.len(), args.out.display());
+    outln!("merged {} shards into {}", dirs.len(), args.out.display());
     Ok(())
 }

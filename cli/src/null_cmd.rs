@@ -104,7 +104,7 @@ fn interrupt_flag() -> Arc<AtomicBool> {
             // A second Ctrl-C: leave at once (every file is written atomically).
             std::process::exit(130);
         }
-        eprintln!(
+        errln!(
             "\ninterrupt: finishing the current chunk, then stopping (Ctrl-C again to quit now)"
         );
     });
@@ -144,7 +144,7 @@ fn print_report(r: &NullReport, out: &Path) {
         (Method::Simulate, false) => "simulated nulls (reduced space)",
         (Method::Simulate, true) => "simulated nulls (time domain)",
     };
-    println!(
+    outln!(
         "{} pattern, {} {method} (seed {}{})",
         r.pattern.name(),
         r.trials,
@@ -153,8 +153,8 @@ fn print_report(r: &NullReport, out: &Path) {
             .map(|s| format!(", shard {}/{}", s.index, s.count))
             .unwrap_or_default()
     );
-    println!("  observed SNR {:.3}", r.observed_snr);
-    println!(
+    outln!("  observed SNR {:.3}", r.observed_snr);
+    outln!(
         "  {} trials at least as extreme: p = {:.3e} (95% interval of k/N {:.2e} .. {:.2e}), {} sigma one-sided",
         r.n_at_least_as_extreme,
         r.p_value,
@@ -164,7 +164,7 @@ fn print_report(r: &NullReport, out: &Path) {
             .map_or("-".to_string(), |z| format!("{z:.2}"))
     );
     if let Some(a) = r.acceptance_rate {
-        println!(
+        outln!(
             "  acceptance rate {:.3} under |match| < {}",
             a,
             r.match_threshold.unwrap_or(1.0)
@@ -172,12 +172,12 @@ fn print_report(r: &NullReport, out: &Path) {
     }
     if let Some(a) = &r.analytic {
         if a.p_value < a.absolute_accuracy {
-            println!(
+            outln!(
                 "  analytic null (generalised chi-square): p < {:.0e} (below the inversion's accuracy)",
                 a.absolute_accuracy
             );
         } else {
-            println!(
+            outln!(
                 "  analytic null (generalised chi-square): p = {:.3e}, {} sigma",
                 a.p_value,
                 a.gaussian_sigma
@@ -185,6 +185,6 @@ fn print_report(r: &NullReport, out: &Path) {
             );
         }
     }
-    println!("  the p-values assume the noise model; a detection claim needs the collaboration's full analysis");
-    println!("wrote {}/null.json, trials.csv", out.display());
+    outln!("  the p-values assume the noise model; a detection claim needs the collaboration's full analysis");
+    outln!("wrote {}/null.json, trials.csv", out.display());
 }

@@ -240,3 +240,54 @@ fn null_and_inject_folders_plot_and_gather_into_one_report() {
         std::fs::remove_dir_all(d).ok();
     }
 }
+
+/// `ptacorr null ... | head`: the reader of standard output is gone before the command prints.
+/// POSIX write(2): a write to a pipe with no reader fails with EPIPE (the Rust runtime ignores
+/// SIGPIPE, so the write returns the error, which `println!` turns into a panic). The read end
+/// is closed before the command starts, so every print meets the closed pipe. The command must
+/// not panic, must write its files and must exit as it would have.
+#[test]
+fn a_closed_standard_output_ends_the_printing_not_the_run() {
+    let (rel, nul) = (temp("pipe-rel"), temp("pipe-null"));
+    let closed = || {
+        let (reader, writer) = std::io::pipe().unwrap();
+        drop(reader);
+        writer
+    };
+    let quiet = repo().join("simulations/quiet.toml");
+    let runs: [(&[&std::ffi::OsStr], &Path, &str); 2] = [
+        (
+            &["simulate".as_ref(), quiet.as_os_str(), "--out".as_ref()],
+            &rel,
+            "release.toml",
+        ),
+        (
+            &[
+                "null".as_ref(),
+                rel.as_os_str(),
+                "--method".as_ref(),
+                "phase".as_ref(),
+                "--trials".as_ref(),
+                "20".as_ref(),
+                "--out".as_ref(),
+            ],
+            &nul,
+            "null.json",
+        ),
+    ];
+    for (args, out, file) in runs {
+        let o = ptacorr()
+            .args(args)
+            .arg(out)
+            .stdout(closed())
+            .output()
+            .unwrap();
+        let err = String::from_utf8_lossy(&o.stderr);
+        assert!(o.status.success(), "{args:?}: {:?}\n{err}", o.status);
+        assert!(!err.contains("panicked"), "{args:?}: {err}");
+        assert!(out.join(file).is_file(), "{args:?} wrote no {file}");
+    }
+    for d in [rel, nul] {
+        std::fs::remove_dir_all(d).ok();
+    }
+}
