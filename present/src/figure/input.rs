@@ -19,6 +19,8 @@ pub const NULL_JSON: &str = "null.json";
 pub const TRIALS_CSV: &str = "trials.csv";
 pub const RECOVERY_JSON: &str = "recovery.json";
 pub const RECOVERY_CSV: &str = "recovery.csv";
+/// The marginals of a `ptacorr common` folder (engine `common::write`): marks the folder kind.
+pub const COMMON_MARGINALS_CSV: &str = "marginals.csv";
 
 /// The kind of a ptacorr output folder, in the order the report presents them.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
@@ -66,6 +68,15 @@ pub fn detect_kinds(dir: &Path) -> Result<Vec<FolderKind>, FigureError> {
         return Err(FigureError::UnknownFolder {
             dir: dir.to_path_buf(),
             reason: "it is not a readable directory".to_string(),
+        });
+    }
+    // A `ptacorr common` folder also holds a summary.json: say what it lacks, not that it
+    // lacks the correlate files.
+    let free = super::free_spectrum::FREE_SPECTRUM_CSV;
+    if dir.join(COMMON_MARGINALS_CSV).is_file() && !dir.join(free).is_file() {
+        return Err(FigureError::CommonWithoutFreeSpectrum {
+            dir: dir.to_path_buf(),
+            file: free,
         });
     }
     let mut kinds = Vec::new();

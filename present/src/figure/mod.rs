@@ -79,6 +79,9 @@ pub enum FigureError {
         file: &'static str,
         kind: &'static str,
     },
+    /// A `ptacorr common` folder without a free spectrum: nothing of it is drawn.
+    #[error("{dir}: a `ptacorr common` folder without {file}: `plot` and `report` draw `correlate`, `null`, `inject` and `noise` folders and the free spectrum of a `common` folder (`ptacorr common --free-spectrum MODELS` writes {file})")]
+    CommonWithoutFreeSpectrum { dir: PathBuf, file: &'static str },
     #[error("option `{option}`: {reason}")]
     InvalidOption {
         option: &'static str,
@@ -583,6 +586,23 @@ mod tests {
             plot_folder(&empty, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
         assert!(matches!(e, FigureError::UnknownFolder { .. }), "{e}");
         assert!(e.to_string().contains("empty"));
+        // A `common` folder without a free spectrum: the message names what it lacks and the
+        // folders `plot` draws, not the correlate folder's bins.csv.
+        let common = t.sub("common");
+        for f in [input::SUMMARY_JSON, input::COMMON_MARGINALS_CSV] {
+            std::fs::write(common.join(f), "").unwrap();
+        }
+        let e =
+            plot_folder(&common, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
+        let msg = e.to_string();
+        assert!(
+            matches!(e, FigureError::CommonWithoutFreeSpectrum { .. }),
+            "{msg}"
+        );
+        for part in ["free-spectrum.csv", "`correlate`", "`noise`", "--free-spectrum"] {
+            assert!(msg.contains(part), "{part} not in {msg}");
+        }
+        assert!(!msg.contains(input::BINS_CSV), "{msg}");
     }
 
     #[test]
