@@ -11,11 +11,13 @@
 use super::evidence::CommonFit;
 use super::free_spectrum::{FreeSpectrum, FreeSpectrumPosterior};
 use super::likelihood::{CommonData, CommonModel};
-use crate::chains::{ChainDraw, ChainTable, Parameter};
+use crate::chains::{ChainTable, Parameter};
 use crate::error::{Error, Result};
 use crate::rng::Purpose;
 use crate::sampler::diagnostics::quantile_sorted;
-use crate::sampler::{sample, summarise_coordinates, ChainDraws, LogDensity, SamplerSettings};
+use crate::sampler::{
+    chain_table, map_draws, sample, summarise_coordinates, ChainDraws, LogDensity, SamplerSettings,
+};
 use serde::{Deserialize, Serialize};
 
 impl LogDensity for FreeSpectrumPosterior {
@@ -133,11 +135,8 @@ pub fn sample_free_spectrum(
         &|_| {},
     )?;
     let map = |y: &[f64]| post.to_log10_rho(y);
-    let summaries = summarise_coordinates(&chains, &map);
-    let log10_rho: Vec<Vec<Vec<f64>>> = chains
-        .iter()
-        .map(|c| (0..c.len()).map(|i| map(c.draw(i))).collect())
-        .collect();
+    let log10_rho = map_draws(&chains, &map);
+    let summaries = summarise_coordinates(&log10_rho);
     let power_law = grid.and_then(|g| g.fits.get(&model)).map(|f| {
         let a = f.fixed.posterior.summary().median;
         let phi0 = data.phi0(f.fixed.spectral_index);
@@ -190,19 +189,11 @@ impl FreeSpectrumSamples {
     /// `log_posterior` is the log density on the sampler's unconstrained scale.
     pub fn table(&self) -> Result<ChainTable> {
         let k = self.rows.len();
-        let mut t = ChainTable::new((1..=k).map(Parameter::CommonLog10Power).collect())?;
-        for (c, phys) in self.chains.iter().zip(&self.log10_rho) {
-            for (i, row) in phys.iter().enumerate() {
-                t.push(ChainDraw {
-                    chain: c.chain as u32,
-                    draw: i as u64,
-                    log_posterior: Some(c.log_density[i]),
-                    diverging: c.diverging[i],
-                    values: row.clone(),
-                })?;
-            }
-        }
-        Ok(t)
+        chain_table(
+            (1..=k).map(Parameter::CommonLog10Power).collect(),
+            &self.chains,
+            &self.log10_rho,
+        )
     }
 
     /// Largest R-hat and smallest bulk ESS over the frequencies.

@@ -4,11 +4,13 @@
 //! per-parameter diagnostics in the physical scale.
 
 use super::posterior::Posterior;
-use crate::chains::{ChainDraw, ChainTable, Parameter};
+use crate::chains::{ChainTable, Parameter};
 use crate::error::{Error, Result};
 use crate::rng::Purpose;
 use crate::sampler::diagnostics::{Summary, ESS_MIN, RHAT_MAX};
-use crate::sampler::{sample, summarise_coordinates, ChainDraws, SamplerSettings};
+use crate::sampler::{
+    chain_table, map_draws, sample, summarise_coordinates, ChainDraws, SamplerSettings,
+};
 use serde::{Deserialize, Serialize};
 
 /// What `ptacorr noise` samples.
@@ -103,19 +105,7 @@ impl PulsarSamples {
             .iter()
             .map(|n| Parameter::parse(n).map_err(|m| Error::setting("chain table", m)))
             .collect::<Result<Vec<_>>>()?;
-        let mut table = ChainTable::new(params)?;
-        for (c, phys) in self.chains.iter().zip(&self.physical) {
-            for (i, row) in phys.iter().enumerate() {
-                table.push(ChainDraw {
-                    chain: c.chain as u32,
-                    draw: i as u64,
-                    log_posterior: Some(c.log_density[i]),
-                    diverging: c.diverging[i],
-                    values: row.clone(),
-                })?;
-            }
-        }
-        Ok(table)
+        chain_table(params, &self.chains, &self.physical)
     }
 }
 
@@ -157,11 +147,8 @@ pub fn sample_pulsar(
         let theta = post.theta(x);
         free.iter().map(|&i| theta[i]).collect()
     };
-    let physical: Vec<Vec<Vec<f64>>> = chains
-        .iter()
-        .map(|c| (0..c.len()).map(|i| to_physical(c.draw(i))).collect())
-        .collect();
-    let summaries = summarise_coordinates(&chains, &to_physical);
+    let physical = map_draws(&chains, &to_physical);
+    let summaries = summarise_coordinates(&physical);
     let divergences: usize = chains.iter().map(ChainDraws::divergences).sum();
     let kept: usize = chains.iter().map(ChainDraws::len).sum();
     let converged = summaries

@@ -335,24 +335,43 @@ pub fn sample<D: LogDensity>(
         .collect()
 }
 
-/// Per-coordinate diagnostics of the chains of one item (coordinates mapped by `map`, e.g. to
-/// the physical scale, before summarising; R-hat and ESS are invariant under monotone maps only
-/// in their rank-based parts, so summarise the scale you report).
-pub fn summarise_coordinates(
+/// The chain table of an item's draws: `parameters` name the columns of `mapped` (the draws of
+/// `chains` in the reported scale, [`map_draws`]); `log_posterior` is the log density on the
+/// sampler's unconstrained scale.
+pub fn chain_table(
+    parameters: Vec<crate::chains::Parameter>,
     chains: &[ChainDraws],
-    map: &dyn Fn(&[f64]) -> Vec<f64>,
-) -> Vec<diagnostics::Summary> {
-    let Some(first) = chains.first() else {
-        return Vec::new();
-    };
-    let mapped: Vec<Vec<Vec<f64>>> = chains
+    mapped: &[Vec<Vec<f64>>],
+) -> Result<crate::chains::ChainTable> {
+    let mut table = crate::chains::ChainTable::new(parameters)?;
+    for (c, rows) in chains.iter().zip(mapped) {
+        for (i, row) in rows.iter().enumerate() {
+            table.push(crate::chains::ChainDraw {
+                chain: c.chain as u32,
+                draw: i as u64,
+                log_posterior: Some(c.log_density[i]),
+                diverging: c.diverging[i],
+                values: row.clone(),
+            })?;
+        }
+    }
+    Ok(table)
+}
+
+/// Every draw of every chain mapped by `map` (e.g. to the physical scale): per chain, one row
+/// per draw.
+pub fn map_draws(chains: &[ChainDraws], map: &dyn Fn(&[f64]) -> Vec<f64>) -> Vec<Vec<Vec<f64>>> {
+    chains
         .iter()
         .map(|c| (0..c.len()).map(|i| map(c.draw(i))).collect())
-        .collect();
-    let dim = mapped
-        .first()
-        .and_then(|c| c.first())
-        .map_or(first.dim, Vec::len);
+        .collect()
+}
+
+/// Per-coordinate diagnostics of the chains of one item, from their draws mapped by
+/// [`map_draws`] (e.g. to the physical scale; R-hat and ESS are invariant under monotone maps
+/// only in their rank-based parts, so summarise the scale you report).
+pub fn summarise_coordinates(mapped: &[Vec<Vec<f64>>]) -> Vec<diagnostics::Summary> {
+    let dim = mapped.first().and_then(|c| c.first()).map_or(0, Vec::len);
     (0..dim)
         .map(|k| {
             let series: Vec<Vec<f64>> = mapped
