@@ -64,24 +64,38 @@ pub enum BackendSet {
     List(Vec<String>),
 }
 
-/// Component choices; absent keys fall back to the `[components]` table, then to the defaults.
-#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct ComponentChoice {
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub efac: Option<bool>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub equad: Option<bool>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub ecorr_backends: Option<BackendSet>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub red: Option<bool>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub red_frequencies: Option<usize>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub dm: Option<bool>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub dm_frequencies: Option<usize>,
+/// A struct of the component keys (`efac`, `equad`, `ecorr_backends`, `red`, `red_frequencies`,
+/// `dm`, `dm_frequencies`), each optional, then `$extra` fields: the `[components]` table and a
+/// pulsar's table share them. (Not `#[serde(flatten)]`, which cannot refuse unknown keys.)
+macro_rules! component_keys {
+    ($(#[$doc:meta])* $name:ident { $($extra:tt)* }) => {
+        $(#[$doc])*
+        #[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+        #[serde(deny_unknown_fields)]
+        pub struct $name {
+            #[serde(default, skip_serializing_if = "Option::is_none")]
+            pub efac: Option<bool>,
+            #[serde(default, skip_serializing_if = "Option::is_none")]
+            pub equad: Option<bool>,
+            #[serde(default, skip_serializing_if = "Option::is_none")]
+            pub ecorr_backends: Option<BackendSet>,
+            #[serde(default, skip_serializing_if = "Option::is_none")]
+            pub red: Option<bool>,
+            #[serde(default, skip_serializing_if = "Option::is_none")]
+            pub red_frequencies: Option<usize>,
+            #[serde(default, skip_serializing_if = "Option::is_none")]
+            pub dm: Option<bool>,
+            #[serde(default, skip_serializing_if = "Option::is_none")]
+            pub dm_frequencies: Option<usize>,
+            $($extra)*
+        }
+    };
+}
+
+component_keys! {
+    /// Component choices; absent keys fall back to the `[components]` table, then to the
+    /// defaults.
+    ComponentChoice {}
 }
 
 /// The ranges of a power law's two parameters (`[ranges] red.log10_amplitude = [...]`).
@@ -139,26 +153,12 @@ impl Ranges {
     }
 }
 
-/// One pulsar's table: the keys of [`ComponentChoice`] and range overrides.
-#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct PulsarChoice {
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub efac: Option<bool>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub equad: Option<bool>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub ecorr_backends: Option<BackendSet>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub red: Option<bool>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub red_frequencies: Option<usize>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub dm: Option<bool>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub dm_frequencies: Option<usize>,
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub ranges: Option<Ranges>,
+component_keys! {
+    /// One pulsar's table: the keys of [`ComponentChoice`] and range overrides.
+    PulsarChoice {
+        #[serde(default, skip_serializing_if = "Option::is_none")]
+        pub ranges: Option<Ranges>,
+    }
 }
 
 impl PulsarChoice {
