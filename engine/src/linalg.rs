@@ -113,30 +113,8 @@ pub fn symmetric_eigenvalues(mut a: Array2<f64>) -> Option<Vec<f64>> {
     let (jobz, uplo) = (b'N' as std::ffi::c_char, b'L' as std::ffi::c_char);
     let mut w = vec![0.0; n];
     let mut info: std::ffi::c_int = 0;
-    let mut query = 0.0;
-    let minus_one: std::ffi::c_int = -1;
-    // SAFETY: `a` is a contiguous n x n array, `w` holds n values; the first call only writes
-    // the optimal workspace size into `query`.
-    unsafe {
-        dsyev_2stage_(
-            &jobz,
-            &uplo,
-            &ni,
-            a.as_mut_ptr(),
-            &ni,
-            w.as_mut_ptr(),
-            &mut query,
-            &minus_one,
-            &mut info,
-        );
-    }
-    if info != 0 {
-        return None;
-    }
-    let lwork = std::ffi::c_int::try_from(query as i64).ok()?.max(1);
-    let mut work = vec![0.0; lwork as usize];
-    // SAFETY: as above, with a workspace of the size LAPACK asked for.
-    unsafe {
+    // SAFETY: `a` is a contiguous n x n array, `w` holds n values, `work` its stated length.
+    with_workspace(|work: &mut [f64], lwork| unsafe {
         dsyev_2stage_(
             &jobz,
             &uplo,
@@ -148,8 +126,44 @@ pub fn symmetric_eigenvalues(mut a: Array2<f64>) -> Option<Vec<f64>> {
             &lwork,
             &mut info,
         );
-    }
+    });
     (info == 0 && w.iter().all(|v| v.is_finite())).then_some(w)
+}
+
+/// A LAPACK workspace element: the size a workspace query returns in its first element.
+pub(crate) trait Workspace: Copy + Default {
+    fn size(self) -> usize;
+}
+
+impl Workspace for f64 {
+    fn size(self) -> usize {
+        self as usize
+    }
+}
+
+impl Workspace for std::ffi::c_int {
+    fn size(self) -> usize {
+        usize::try_from(self).unwrap_or(0)
+    }
+}
+
+/// LAPACK's workspace protocol for a routine with two workspaces (Anderson et al. 1999,
+/// LAPACK Users' Guide, "workspace query"): `call(w1, l1, w2, l2)` once with l1 = l2 = -1, which
+/// returns the sizes needed in w1[0] and w2[0], then with workspaces of those sizes (at least 1).
+pub(crate) fn with_workspaces<A: Workspace, B: Workspace>(
+    mut call: impl FnMut(&mut [A], std::ffi::c_int, &mut [B], std::ffi::c_int),
+) {
+    let (mut q1, mut q2) = ([A::default()], [B::default()]);
+    call(&mut q1, -1, &mut q2, -1);
+    let (n1, n2) = (q1[0].size().max(1), q2[0].size().max(1));
+    let (mut w1, mut w2) = (vec![A::default(); n1], vec![B::default(); n2]);
+    let len = |n: usize| std::ffi::c_int::try_from(n).unwrap_or(std::ffi::c_int::MAX);
+    call(&mut w1, len(n1), &mut w2, len(n2));
+}
+
+/// [`with_workspaces`] for a routine with one workspace.
+pub(crate) fn with_workspace<A: Workspace>(mut call: impl FnMut(&mut [A], std::ffi::c_int)) {
+    with_workspaces(|w: &mut [A], l, _: &mut [std::ffi::c_int], _| call(w, l));
 }
 
 /// Make OpenBLAS single-threaded (once per process). The engine parallelises over pulsars and

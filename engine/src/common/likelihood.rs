@@ -16,7 +16,7 @@
 //! rank 3) loses nothing; for the uncorrelated process (CURN) M is block-diagonal per pulsar.
 
 use crate::error::{Error, Result};
-use crate::linalg::{single_threaded_blas, ScaledCholesky};
+use crate::linalg::{single_threaded_blas, with_workspaces, ScaledCholesky};
 use crate::noise::NoiseModel;
 use crate::orf::{pattern_matrix, Pattern};
 use crate::reduce::{reduce_release, FrequencyGrid, Reduced};
@@ -356,32 +356,8 @@ fn spectral_weights_tridiagonal(
     let mut e = vec![0.0; n];
     let mut tau = vec![0.0; n];
     let mut info: c_int = 0;
-    let minus1: c_int = -1;
-    let (mut hq, mut wq) = ([0.0f64], [0.0f64]);
-    // SAFETY: workspace query.
-    unsafe {
-        dsytrd_2stage_(
-            &vect,
-            &uplo,
-            &ni,
-            a.as_mut_ptr(),
-            &ni,
-            d.as_mut_ptr(),
-            e.as_mut_ptr(),
-            tau.as_mut_ptr(),
-            hq.as_mut_ptr(),
-            &minus1,
-            wq.as_mut_ptr(),
-            &minus1,
-            &mut info,
-        );
-    }
-    let (lh, lw) = ((hq[0] as usize).max(1), (wq[0] as usize).max(1));
-    let mut hous = vec![0.0; lh];
-    let mut work = vec![0.0; lw];
-    let (lhi, lwi) = (lh as c_int, lw as c_int);
-    // SAFETY: buffers sized by the query; a is n x n.
-    unsafe {
+    // SAFETY: a is n x n, d, e and tau have n elements, the workspaces their stated lengths.
+    with_workspaces(|hous: &mut [f64], lh, work: &mut [f64], lw| unsafe {
         dsytrd_2stage_(
             &vect,
             &uplo,
@@ -392,12 +368,12 @@ fn spectral_weights_tridiagonal(
             e.as_mut_ptr(),
             tau.as_mut_ptr(),
             hous.as_mut_ptr(),
-            &lhi,
+            &lh,
             work.as_mut_ptr(),
-            &lwi,
+            &lw,
             &mut info,
         );
-    }
+    });
     if info != 0 {
         return Err(Error::NonFinite {
             what: format!("the tridiagonal reduction of {what} (LAPACK dsytrd_2stage info {info})"),
@@ -412,39 +388,9 @@ fn spectral_weights_tridiagonal(
     let mut z = vec![0.0; n * n];
     let mut isuppz: Vec<c_int> = vec![0; 2 * n];
     let mut tryrac: c_int = 1;
-    let (mut wq, mut iwq) = ([0.0f64], [0 as c_int]);
-    // SAFETY: workspace query (nzc = -1 is not needed with RANGE = 'A' and ldz = n).
-    unsafe {
-        dstemr_(
-            &jobz,
-            &range,
-            &ni,
-            d.as_mut_ptr(),
-            e.as_mut_ptr(),
-            &vl,
-            &vu,
-            &il,
-            &iu,
-            &mut found,
-            vals.as_mut_ptr(),
-            z.as_mut_ptr(),
-            &ni,
-            &ni,
-            isuppz.as_mut_ptr(),
-            &mut tryrac,
-            wq.as_mut_ptr(),
-            &minus1,
-            iwq.as_mut_ptr(),
-            &minus1,
-            &mut info,
-        );
-    }
-    let (lw, liw) = ((wq[0] as usize).max(1), (iwq[0] as usize).max(1));
-    let mut work = vec![0.0; lw];
-    let mut iwork: Vec<c_int> = vec![0; liw];
-    let (lwi, liwi) = (lw as c_int, liw as c_int);
-    // SAFETY: buffers sized by the query; z is n x n column-major.
-    unsafe {
+    // SAFETY: d, e have n elements, z is n x n column-major (nzc = n suffices with
+    // RANGE = 'A'), isuppz 2n, the workspaces their stated lengths.
+    with_workspaces(|work: &mut [f64], lw, iwork: &mut [c_int], liw| unsafe {
         dstemr_(
             &jobz,
             &range,
@@ -463,12 +409,12 @@ fn spectral_weights_tridiagonal(
             isuppz.as_mut_ptr(),
             &mut tryrac,
             work.as_mut_ptr(),
-            &lwi,
+            &lw,
             iwork.as_mut_ptr(),
-            &liwi,
+            &liw,
             &mut info,
         );
-    }
+    });
     if info != 0 || found as usize != n {
         // MRRR can fail on clusters of tiny eigenvalues; divide and conquer (dstedc,
         // Cuppen 1981) is slower but always succeeds on a finite tridiagonal matrix.
@@ -492,30 +438,8 @@ fn tridiagonal_eigen_dc(
     let compz = b'I' as c_char;
     let mut z = vec![0.0; n * n];
     let mut info: c_int = 0;
-    let minus1: c_int = -1;
-    let (mut wq, mut iwq) = ([0.0f64], [0 as c_int]);
-    // SAFETY: workspace query.
-    unsafe {
-        dstedc_(
-            &compz,
-            &ni,
-            d.as_mut_ptr(),
-            e.as_mut_ptr(),
-            z.as_mut_ptr(),
-            &ni,
-            wq.as_mut_ptr(),
-            &minus1,
-            iwq.as_mut_ptr(),
-            &minus1,
-            &mut info,
-        );
-    }
-    let (lw, liw) = ((wq[0] as usize).max(1), (iwq[0] as usize).max(1));
-    let mut work = vec![0.0; lw];
-    let mut iwork: Vec<c_int> = vec![0; liw];
-    let (lwi, liwi) = (lw as c_int, liw as c_int);
-    // SAFETY: buffers sized by the query; z is n x n.
-    unsafe {
+    // SAFETY: d, e have n elements, z is n x n, the workspaces their stated lengths.
+    with_workspaces(|work: &mut [f64], lw, iwork: &mut [c_int], liw| unsafe {
         dstedc_(
             &compz,
             &ni,
@@ -524,12 +448,12 @@ fn tridiagonal_eigen_dc(
             z.as_mut_ptr(),
             &ni,
             work.as_mut_ptr(),
-            &lwi,
+            &lw,
             iwork.as_mut_ptr(),
-            &liwi,
+            &liw,
             &mut info,
         );
-    }
+    });
     if info != 0 {
         return Err(Error::NonFinite {
             what: format!("the tridiagonal eigenproblem of {what} (LAPACK dstedc info {info})"),
@@ -636,32 +560,8 @@ pub fn symmetric_eigen(m: Array2<f64>, what: &str) -> Result<(Vec<f64>, Array2<f
     let mut w = vec![0.0; n];
     let (jobz, uplo) = (b'V' as c_char, b'L' as c_char);
     let mut info: c_int = 0;
-    let mut work_q = [0.0f64];
-    let mut iwork_q: [c_int; 1] = [0];
-    let minus1: c_int = -1;
-    // SAFETY: workspace query with valid pointers and sizes.
-    unsafe {
-        dsyevd_(
-            &jobz,
-            &uplo,
-            &ni,
-            a.as_mut_ptr(),
-            &ni,
-            w.as_mut_ptr(),
-            work_q.as_mut_ptr(),
-            &minus1,
-            iwork_q.as_mut_ptr(),
-            &minus1,
-            &mut info,
-        );
-    }
-    let lwork = work_q[0] as usize;
-    let liwork = iwork_q[0].max(1) as usize;
-    let mut work = vec![0.0; lwork.max(1)];
-    let mut iwork: Vec<c_int> = vec![0; liwork];
-    let (lw, liw) = (lwork.max(1) as c_int, liwork as c_int);
-    // SAFETY: buffers sized by the workspace query above; a is n x n.
-    unsafe {
+    // SAFETY: a is n x n, w has n elements, the workspaces their stated lengths.
+    with_workspaces(|work: &mut [f64], lw, iwork: &mut [c_int], liw| unsafe {
         dsyevd_(
             &jobz,
             &uplo,
@@ -675,7 +575,7 @@ pub fn symmetric_eigen(m: Array2<f64>, what: &str) -> Result<(Vec<f64>, Array2<f
             &liw,
             &mut info,
         );
-    }
+    });
     if info != 0 {
         return Err(Error::NonFinite {
             what: format!("the eigendecomposition of {what} (LAPACK dsyevd info {info})"),
