@@ -197,7 +197,14 @@ fn print_table(out: &Outcome) {
     );
     outln!(
         "  {:>10} {:>11} {:>11} {:>9} {:>7} {:>13} {:>13} {:>6}",
-        "A", "mean A2", "bias/sem", "std A2", "snr", "cov68 w/full", "cov95 w/full", "P_det"
+        "A",
+        "mean A2",
+        "bias/sem",
+        "std A2",
+        "snr",
+        "cov68 w/full",
+        "cov95 w/full",
+        "P_det"
     );
     for r in &out.rows {
         outln!(

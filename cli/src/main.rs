@@ -413,7 +413,10 @@ pub(crate) fn print_summary(rel: &Release, c: &Correlation) {
     );
     outln!(
         "  {:<9} {:>12} {:>12} {:>7}",
-        "pattern", "A^2", "sigma(A^2)", "SNR"
+        "pattern",
+        "A^2",
+        "sigma(A^2)",
+        "SNR"
     );
     for p in Pattern::ALL {
         let e = c.estimates[&p];
@@ -450,7 +453,11 @@ pub(crate) fn print_nmos(s: &ptacorr::nmos::NmosSummary) {
     );
     outln!(
         "  {:<9} {:>12} {:>25} {:>7} {:>15}",
-        "pattern", "median A^2", "68% interval of A^2", "SNR", "68% of SNR"
+        "pattern",
+        "median A^2",
+        "68% interval of A^2",
+        "SNR",
+        "68% of SNR"
     );
     for (p, x) in &s.patterns {
         outln!(

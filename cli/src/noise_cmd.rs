@@ -184,7 +184,12 @@ pub fn run(args: NoiseArgs) -> Result<()> {
         };
         outln!(
             "{:<8} {:>6} {:>6} {:>16.3}  {:<28} {}",
-            d.pulsar, d.n_toa, d.n_parameters, d.map_log_posterior, map, post
+            d.pulsar,
+            d.n_toa,
+            d.n_parameters,
+            d.map_log_posterior,
+            map,
+            post
         );
     }
     for w in &run.provenance.fit_warnings {

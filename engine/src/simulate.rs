@@ -275,7 +275,10 @@ pub fn write_release(
             })
             .collect();
         let csv = crate::output::csv_table(&rows, "residuals")?;
-        write_atomic(&dir.join("residuals").join(format!("{}.csv", p.label)), &csv)?;
+        write_atomic(
+            &dir.join("residuals").join(format!("{}.csv", p.label)),
+            &csv,
+        )?;
     }
     let noise_text = toml::to_string(noise).map_err(|e| Error::setting("noise", e.to_string()))?;
     write_atomic(&dir.join("noise.toml"), noise_text.as_bytes())?;

@@ -533,7 +533,12 @@ fn read_checkpoint(path: &Path) -> Result<Vec<Trial>> {
         .map(|(line, r)| {
             for (field, v) in [("snr", r.snr), ("amplitude2", r.amplitude2)] {
                 if !v.is_finite() {
-                    return Err(Error::input(path, Some(line), Some(field), "not a finite number"));
+                    return Err(Error::input(
+                        path,
+                        Some(line),
+                        Some(field),
+                        "not a finite number",
+                    ));
                 }
             }
             Ok(Trial {

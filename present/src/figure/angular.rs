@@ -16,7 +16,7 @@ use super::canvas::{
 };
 use super::format::{self, Style};
 use super::input::{CorrelateData, SUMMARY_JSON};
-use super::{ColumnWidth, Drawn, FigureError, FigureOptions};
+use super::{Drawn, FigureError, FigureOptions};
 
 pub(crate) const STEM: &str = "angular-correlation";
 
@@ -373,10 +373,7 @@ pub(crate) fn draw(
     }
 
     // Layout in points.
-    let aspect = match opts.width {
-        ColumnWidth::Single => 0.64,
-        ColumnWidth::Double => 0.42,
-    };
+    let aspect = opts.width.aspect(0.64, 0.42);
     let PanelLayout {
         w,
         h,
@@ -462,10 +459,11 @@ pub(crate) fn draw(
     for b in &bins {
         if let Some(e) = b.y_err_full {
             let x = xs.map(b.angle_mean_deg);
-            svg.error_bar(
+            svg.interval(
                 x,
-                ys.map(b.y - e),
-                ys.map(b.y + e),
+                &ys,
+                b.y - e,
+                b.y + e,
                 2.4,
                 &FULL_BAR,
                 "bin-errorbar-full",
@@ -474,10 +472,11 @@ pub(crate) fn draw(
     }
     for b in &bins {
         let x = xs.map(b.angle_mean_deg);
-        svg.error_bar(
+        svg.interval(
             x,
-            ys.map(b.y - b.y_err),
-            ys.map(b.y + b.y_err),
+            &ys,
+            b.y - b.y_err,
+            b.y + b.y_err,
             1.3,
             &bar,
             "bin-errorbar",

@@ -393,6 +393,57 @@ impl Svg {
         );
     }
 
+    /// The interval `lo..hi` (data units of `ys`) as a vertical bar at x: [`Svg::error_bar`].
+    #[allow(clippy::too_many_arguments)]
+    pub(crate) fn interval(
+        &mut self,
+        x: f64,
+        ys: &Scale,
+        lo: f64,
+        hi: f64,
+        cap: f64,
+        st: &Stroke,
+        class: &str,
+    ) {
+        self.error_bar(x, ys.map(lo), ys.map(hi), cap, st, class);
+    }
+
+    /// A density histogram in a group `histogram` clipped by `clip`: bar i spans
+    /// `edges[i]..edges[i + 1]` from zero to `density[i]`, with a thin BLUE edge, filled SKY
+    /// (class `hist-bar`) or, where `tail(i)`, BLUE (class `hist-bar tail`).
+    pub(crate) fn histogram(
+        &mut self,
+        clip: &str,
+        (xs, ys): (&Scale, &Scale),
+        edges: &[f64],
+        density: &[f64],
+        tail: &dyn Fn(usize) -> bool,
+    ) {
+        self.open("histogram", Some(clip), "");
+        let edge = Stroke::new(BLUE, 0.3, LineStyle::Solid);
+        for (i, &d) in density.iter().enumerate() {
+            let (x0, x1) = (xs.map(edges[i]), xs.map(edges[i + 1]));
+            let y = ys.map(d);
+            let (fill, opacity, class) = if tail(i) {
+                (BLUE, 0.9, "hist-bar tail")
+            } else {
+                (SKY, 0.55, "hist-bar")
+            };
+            self.rect(
+                Rect {
+                    x: x0,
+                    y,
+                    w: x1 - x0,
+                    h: ys.map(0.0) - y,
+                },
+                Some((fill, opacity)),
+                Some(&edge),
+                class,
+            );
+        }
+        self.close();
+    }
+
     pub(crate) fn rect(
         &mut self,
         r: Rect,

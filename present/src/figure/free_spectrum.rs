@@ -13,7 +13,7 @@ use super::canvas::{
     LineStyle, Marker, MarkerStyle, PanelLayout, Sample, Scale, Stroke, Svg, BLACK, BLUE, GREEN,
     SKY, VERMILLION,
 };
-use super::{ColumnWidth, Drawn, FigureError, FigureOptions};
+use super::{Drawn, FigureError, FigureOptions};
 
 pub(crate) const STEM: &str = "free-spectrum";
 /// The table this figure reads.
@@ -151,10 +151,7 @@ pub(crate) fn draw(
             .max()
             .unwrap_or(0)
     );
-    let aspect = match opts.width {
-        ColumnWidth::Single => 0.72,
-        ColumnWidth::Double => 0.45,
-    };
+    let aspect = opts.width.aspect(0.72, 0.45);
     let PanelLayout {
         w,
         h,
@@ -164,20 +161,8 @@ pub(crate) fn draw(
         lines,
         cap_y,
     } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
-    let xs = Scale {
-        lo: xt.lo,
-        hi: xt.hi,
-        log: true,
-        a: plot.x,
-        b: plot.right(),
-    };
-    let ys = Scale {
-        lo: yt.lo,
-        hi: yt.hi,
-        log: false,
-        a: plot.bottom(),
-        b: plot.y,
-    };
+    let xs = Scale::x(&xt, &plot, true);
+    let ys = Scale::y(&yt, &plot, false);
     let title = format!("Free spectrum: {title_of_data}");
     let mut svg = Svg::new(w, h, stem);
     let clip = svg.clip(plot);
@@ -203,18 +188,20 @@ pub(crate) fn draw(
         svg.open("intervals", Some(&clip), "");
         for p in &mine {
             let x = xs.map(p.frequency_hz * 1e9 * shift);
-            svg.error_bar(
+            svg.interval(
                 x,
-                ys.map(p.lo_95),
-                ys.map(p.hi_95),
+                &ys,
+                p.lo_95,
+                p.hi_95,
                 0.0,
                 &Stroke::new(c, 0.7, LineStyle::Solid),
                 "interval-95",
             );
-            svg.error_bar(
+            svg.interval(
                 x,
-                ys.map(p.lo_68),
-                ys.map(p.hi_68),
+                &ys,
+                p.lo_68,
+                p.hi_68,
                 0.0,
                 &Stroke::new(c, 2.2, LineStyle::Solid),
                 "interval-68",

@@ -145,6 +145,14 @@ pub enum ColumnWidth {
 }
 
 impl ColumnWidth {
+    /// Height over width of a one-panel figure at this width (`single` or `double`).
+    pub(crate) fn aspect(self, single: f64, double: f64) -> f64 {
+        match self {
+            ColumnWidth::Single => single,
+            ColumnWidth::Double => double,
+        }
+    }
+
     pub fn inches(self) -> f64 {
         match self {
             ColumnWidth::Single => 3.4,
@@ -599,7 +607,12 @@ mod tests {
             matches!(e, FigureError::CommonWithoutFreeSpectrum { .. }),
             "{msg}"
         );
-        for part in ["free-spectrum.csv", "`correlate`", "`noise`", "--free-spectrum"] {
+        for part in [
+            "free-spectrum.csv",
+            "`correlate`",
+            "`noise`",
+            "--free-spectrum",
+        ] {
             assert!(msg.contains(part), "{part} not in {msg}");
         }
         assert!(!msg.contains(input::BINS_CSV), "{msg}");

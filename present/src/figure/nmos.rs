@@ -6,12 +6,12 @@ use serde::Serialize;
 
 use super::canvas::{
     draw_axes, draw_caption, draw_legend, linear_ticks, single_panel, LegendItem, LineStyle,
-    PanelLayout, Rect, Sample, Scale, Stroke, Svg, BLACK, BLUE, SKY, VERMILLION,
+    PanelLayout, Sample, Scale, Stroke, Svg, BLACK, BLUE, SKY, VERMILLION,
 };
 use super::format::{self, Style};
 use super::input::CorrelateData;
 use super::null::{histogram, Histogram};
-use super::{ColumnWidth, Drawn, FigureError, FigureOptions};
+use super::{Drawn, FigureError, FigureOptions};
 use ptacorr::orf::Pattern;
 
 pub(crate) const STEM: &str = "noise-marginalised";
@@ -130,10 +130,7 @@ pub(crate) fn draw(
         f2(hd.snr.interval_68[1]),
         g(fixed),
     );
-    let aspect = match opts.width {
-        ColumnWidth::Single => 0.62,
-        ColumnWidth::Double => 0.40,
-    };
+    let aspect = opts.width.aspect(0.62, 0.40);
     let PanelLayout {
         w,
         h,
@@ -149,24 +146,9 @@ pub(crate) fn draw(
     let mut svg = Svg::new(w, h, stem);
     let clip = svg.clip(plot);
     draw_axes(&mut svg, plot, &xs, &ys, &xt, &yt, &x_label, &y_label)?;
-    svg.open("histogram", Some(&clip), "");
-    let edge = Stroke::new(BLUE, 0.3, LineStyle::Solid);
-    for i in 0..k {
-        let (x0, x1) = (xs.map(hist.edges[i]), xs.map(hist.edges[i + 1]));
-        let y = ys.map(hist.density[i]);
-        svg.rect(
-            Rect {
-                x: x0,
-                y,
-                w: x1 - x0,
-                h: ys.map(0.0) - y,
-            },
-            Some((SKY, 0.55)),
-            Some(&edge),
-            "hist-bar",
-        );
-    }
-    svg.close();
+    svg.histogram(&clip, (&xs, &ys), &hist.edges, &hist.density[..k], &|_| {
+        false
+    });
     let vline = |svg: &mut Svg, x: f64, s: &Stroke, class: &str| {
         if x.is_finite() {
             let px = xs.map(x);

@@ -287,20 +287,8 @@ fn draw(
             w: plot_w,
             h: plot_h,
         };
-        let xs = Scale {
-            lo: xt.lo,
-            hi: xt.hi,
-            log: false,
-            a: plot.x,
-            b: plot.right(),
-        };
-        let ys = Scale {
-            lo: yt.lo,
-            hi: yt.hi,
-            log: false,
-            a: plot.bottom(),
-            b: plot.y,
-        };
+        let xs = Scale::x(&xt, &plot, false);
+        let ys = Scale::y(&yt, &plot, false);
         let x_label = if xt.exponent != 0 {
             format!("{name} [10{}]", super::canvas::superscript(xt.exponent))
         } else {
@@ -308,24 +296,9 @@ fn draw(
         };
         draw_axes(&mut svg, plot, &xs, &ys, &xt, &yt, &x_label, "density")?;
         let clip = svg.clip(plot);
-        svg.open("histogram", Some(&clip), "");
-        let edge = Stroke::new(BLUE, 0.3, LineStyle::Solid);
-        for i in 0..nb {
-            let (x0, x1) = (xs.map(hist.edges[i]), xs.map(hist.edges[i + 1]));
-            let y = ys.map(hist.density[i]);
-            svg.rect(
-                Rect {
-                    x: x0,
-                    y,
-                    w: x1 - x0,
-                    h: ys.map(0.0) - y,
-                },
-                Some((SKY, 0.55)),
-                Some(&edge),
-                "hist-bar",
-            );
-        }
-        svg.close();
+        svg.histogram(&clip, (&xs, &ys), &hist.edges, &hist.density[..nb], &|_| {
+            false
+        });
         let mut vline = |v: Option<f64>, s: &Stroke, class: &str| {
             if let Some(v) = v.filter(|v| v.is_finite()) {
                 let px = xs.map(v);

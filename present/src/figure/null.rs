@@ -6,12 +6,12 @@ use serde::Serialize;
 
 use super::canvas::{
     draw_axes, draw_caption, draw_legend, linear_ticks, single_panel, text_width, Anchor,
-    LegendItem, LineStyle, PanelLayout, Rect, Sample, Scale, Stroke, Svg, BLACK, BLUE, FS_SMALL,
-    SKY, VERMILLION,
+    LegendItem, LineStyle, PanelLayout, Sample, Scale, Stroke, Svg, BLACK, BLUE, FS_SMALL, SKY,
+    VERMILLION,
 };
 use super::format::{self, Style};
 use super::input::NullData;
-use super::{ColumnWidth, Drawn, FigureError, FigureOptions};
+use super::{Drawn, FigureError, FigureOptions};
 
 pub(crate) const STEM: &str = "null-distribution";
 
@@ -202,10 +202,7 @@ pub(crate) fn draw(
         ));
     }
 
-    let aspect = match opts.width {
-        ColumnWidth::Single => 0.62,
-        ColumnWidth::Double => 0.40,
-    };
+    let aspect = opts.width.aspect(0.62, 0.40);
     let PanelLayout {
         w,
         h,
@@ -225,30 +222,9 @@ pub(crate) fn draw(
     let mut svg = Svg::new(w, h, stem);
     let clip = svg.clip(plot);
     draw_axes(&mut svg, plot, &xs, &ys, &xt, &yt, &x_label, &y_label)?;
-    svg.open("histogram", Some(&clip), "");
-    let edge = Stroke::new(BLUE, 0.3, LineStyle::Solid);
-    for i in 0..k {
-        let (x0, x1) = (xs.map(hist.edges[i]), xs.map(hist.edges[i + 1]));
-        let y = ys.map(hist.density[i]);
-        let tail = hist.edges[i] >= obs;
-        let (fill, op, class) = if tail {
-            (BLUE, 0.9, "hist-bar tail")
-        } else {
-            (SKY, 0.55, "hist-bar")
-        };
-        svg.rect(
-            Rect {
-                x: x0,
-                y,
-                w: x1 - x0,
-                h: ys.map(0.0) - y,
-            },
-            Some((fill, op)),
-            Some(&edge),
-            class,
-        );
-    }
-    svg.close();
+    svg.histogram(&clip, (&xs, &ys), &hist.edges, &hist.density[..k], &|i| {
+        hist.edges[i] >= obs
+    });
     if let Some((x, d)) = s.analytic_density.as_ref().map(|g| (&g.snr, &g.density)) {
         svg.open("analytic", Some(&clip), "");
         let pts: Vec<(f64, f64)> = x

@@ -373,7 +373,7 @@ pub(crate) fn draw(
             (d.detection_probability - d.error).max(0.0),
             (d.detection_probability + d.error).min(1.0),
         );
-        svg.error_bar(x, ys.map(lo), ys.map(hi), 1.3, &dbar, "detection-errorbar");
+        svg.interval(x, &ys, lo, hi, 1.3, &dbar, "detection-errorbar");
     }
     for d in &detection {
         svg.marker(

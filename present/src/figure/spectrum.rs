@@ -13,7 +13,7 @@ use super::canvas::{
 };
 use super::format::{self, Style};
 use super::input::{CorrelateData, SUMMARY_JSON};
-use super::{ColumnWidth, Drawn, FigureError, FigureOptions};
+use super::{Drawn, FigureError, FigureOptions};
 
 pub(crate) const STEM: &str = "per-frequency";
 
@@ -136,10 +136,7 @@ pub(crate) fn draw(
         format::plus_minus(hd.amplitude2, hd.amplitude2_sigma, 3, Style::Figure),
     );
 
-    let aspect = match opts.width {
-        ColumnWidth::Single => 0.64,
-        ColumnWidth::Double => 0.42,
-    };
+    let aspect = opts.width.aspect(0.64, 0.42);
     let PanelLayout {
         w,
         h,
@@ -178,10 +175,11 @@ pub(crate) fn draw(
     for p in &points {
         let x = xs.map(p.frequency_nhz);
         if let Some(e) = p.sigma_signal {
-            svg.error_bar(
+            svg.interval(
                 x,
-                ys.map(p.amplitude2 - e),
-                ys.map(p.amplitude2 + e),
+                &ys,
+                p.amplitude2 - e,
+                p.amplitude2 + e,
                 2.4,
                 &SIGNAL_BAR,
                 "errorbar-signal",
@@ -190,10 +188,11 @@ pub(crate) fn draw(
     }
     for p in &points {
         let x = xs.map(p.frequency_nhz);
-        svg.error_bar(
+        svg.interval(
             x,
-            ys.map(p.amplitude2 - p.sigma),
-            ys.map(p.amplitude2 + p.sigma),
+            &ys,
+            p.amplitude2 - p.sigma,
+            p.amplitude2 + p.sigma,
             1.3,
             &bar,
             "errorbar",
