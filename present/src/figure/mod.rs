@@ -199,6 +199,25 @@ pub(crate) struct Drawn {
     pub sidecar: String,
 }
 
+impl Drawn {
+    /// A drawn figure with its sidecar serialised ([`sidecar_json`]).
+    pub(crate) fn new<T: serde::Serialize>(
+        stem: &str,
+        title: String,
+        caption: String,
+        svg: String,
+        sidecar: &T,
+    ) -> Result<Drawn, FigureError> {
+        Ok(Drawn {
+            stem: stem.to_string(),
+            title,
+            caption,
+            svg,
+            sidecar: sidecar_json(sidecar, stem)?,
+        })
+    }
+}
+
 /// Draws every figure of one folder kind. `stem_suffix` is appended to the file stems (the
 /// report uses it to keep two folders of one kind apart).
 pub(crate) fn draw_kind(

@@ -197,11 +197,5 @@ pub(crate) fn draw(
         plot_box_pt: plot.as_array(),
         caption_box_pt: cap_box.as_array(),
     };
-    Ok(Drawn {
-        stem: stem.to_string(),
-        title,
-        caption,
-        svg: svg_text,
-        sidecar: super::sidecar_json(&sidecar, stem)?,
-    })
+    Drawn::new(stem, title, caption, svg_text, &sidecar)
 }

@@ -338,13 +338,7 @@ fn draw(
         size_in: [w / 72.0, h / 72.0],
         caption_box_pt: cap_box.as_array(),
     };
-    Ok(Drawn {
-        stem: stem.to_string(),
-        title,
-        caption,
-        svg: svg_text,
-        sidecar: super::sidecar_json(&sidecar, stem)?,
-    })
+    Drawn::new(stem, title, caption, svg_text, &sidecar)
 }
 
 #[cfg(test)]

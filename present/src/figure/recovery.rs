@@ -429,11 +429,5 @@ pub(crate) fn draw(
         panel_b_box_pt: pb.as_array(),
         caption_box_pt: cap_box.as_array(),
     };
-    Ok(Drawn {
-        stem: stem.to_string(),
-        title,
-        caption,
-        svg: svg_text,
-        sidecar: super::sidecar_json(&sidecar, stem)?,
-    })
+    Drawn::new(stem, title, caption, svg_text, &sidecar)
 }

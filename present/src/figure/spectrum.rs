@@ -212,11 +212,5 @@ pub(crate) fn draw(
         y_axis: [yt.lo, yt.hi],
         caption: caption.clone(),
     };
-    Ok(Drawn {
-        stem: stem.to_string(),
-        title,
-        caption,
-        svg: svg_text,
-        sidecar: super::sidecar_json(&sidecar, stem)?,
-    })
+    Drawn::new(stem, title, caption, svg_text, &sidecar)
 }
