@@ -120,7 +120,10 @@ impl Campaign {
         // Per pulsar (in parallel): the bare model, its weighted Z~_a,0 and, for a release,
         // the weighted reduction of its residuals; the model itself is dropped at once unless
         // time-domain mode needs it, so only a thread's worth of models is held at a time.
-        let per: Vec<(Array2<f64>, Option<Array1<f64>>, Option<PulsarModel>)> = target
+        /// A pulsar's weighted Z~_a,0, its weighted data reduction (release targets) and its
+        /// model (time-domain mode).
+        type PerPulsar = (Array2<f64>, Option<Array1<f64>>, Option<PulsarModel>);
+        let per: Vec<PerPulsar> = target
             .pulsars
             .par_iter()
             .map(|p| {

@@ -595,7 +595,10 @@ pub fn run_chunks(
     partial: Option<&Path>,
     control: Control,
 ) -> Result<Vec<Trial>> {
-    type Pending<'s> = Option<(std::thread::ScopedJoinHandle<'s, Result<()>>, std::path::PathBuf)>;
+    type Pending<'s> = Option<(
+        std::thread::ScopedJoinHandle<'s, Result<()>>,
+        std::path::PathBuf,
+    )>;
     fn finish(pending: &mut Pending<'_>) -> Result<()> {
         match pending.take() {
             Some((h, f)) => h.join().unwrap_or_else(|_| {

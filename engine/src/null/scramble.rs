@@ -320,15 +320,7 @@ fn candidate_fused(pattern: Pattern, t: &Tables, w: &mut Work) -> [f64; 4] {
         &mut w.z[..n],
     );
     match pattern {
-        Pattern::Dipole => fused_pass(
-            |c| c.clamp(-1.0, 1.0),
-            n,
-            &w.x,
-            &w.y,
-            &w.z,
-            t,
-            &mut w.g,
-        ),
+        Pattern::Dipole => fused_pass(|c| c.clamp(-1.0, 1.0), n, &w.x, &w.y, &w.z, t, &mut w.g),
         Pattern::Monopole => fused_pass(|_| 1.0, n, &w.x, &w.y, &w.z, t, &mut w.g),
         Pattern::Hd => fused_pass(hd_fast, n, &w.x, &w.y, &w.z, t, &mut w.g),
     }
