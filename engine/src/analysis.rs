@@ -169,12 +169,37 @@ pub fn correlate_observed(
     Ok(c)
 }
 
+/// [`correlate`] without the products that only `correlate` writes (the per-frequency
+/// statistic, the Hellings-Downs spread and the bin covariance: `per_frequency` and `hd_spread`
+/// are None and `bin_covariance` says it was not computed). The reduction, the pairs, the
+/// estimates and the bins are the same numbers. Null runs use it: they need the reduced pulsars
+/// and the template only, and at 100 pulsars and K = 14 the bin covariance alone costs more CPU
+/// than 10^4 sky scrambles (docs/performance.md).
+pub fn correlate_core(release: &Release, settings: &CorrelateSettings) -> Result<Correlation> {
+    settings.validate()?;
+    let grid = FrequencyGrid::for_release(release, settings.n_frequencies)?;
+    let common = settings.common_power_law(release);
+    let reduced = reduce_release(release, &release.noise, &grid, common.as_ref())?;
+    pair_stage(reduced, grid, settings, common, false)
+}
+
 /// The pair stage of the analysis from already reduced pulsars.
 pub fn correlate_reduced(
     reduced: Vec<Reduced>,
     grid: FrequencyGrid,
     settings: &CorrelateSettings,
     common: Option<PowerLaw>,
+) -> Result<Correlation> {
+    pair_stage(reduced, grid, settings, common, true)
+}
+
+/// The pair stage, with or without the products of [`extras`].
+fn pair_stage(
+    reduced: Vec<Reduced>,
+    grid: FrequencyGrid,
+    settings: &CorrelateSettings,
+    common: Option<PowerLaw>,
+    with_extras: bool,
 ) -> Result<Correlation> {
     let phi = template(settings.spectral_index, &grid.freqs, grid.t_span);
     let pairs = pair_correlations(&reduced, &phi)?;
@@ -201,6 +226,12 @@ pub fn correlate_reduced(
             per_frequency: None,
             hd_spread: None,
             bin_covariance: Err("no pulsar pairs".into()),
+        }
+    } else if !with_extras {
+        Extras {
+            per_frequency: None,
+            hd_spread: None,
+            bin_covariance: Err("not computed in this command".into()),
         }
     } else {
         extras(

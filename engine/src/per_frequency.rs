@@ -108,19 +108,41 @@ pub fn signal_covariance_with(
     for a in 0..n {
         gp[[a, a]] = 0.0;
     }
-    let flat = c
-        .view()
-        .into_shape_with_order((n, m * nm))
-        .map_err(|_| Error::setting("per-frequency", "joint covariance not contiguous"))?;
-    let p = gp
-        .dot(&flat)
-        .into_shape_with_order((nm, nm))
-        .expect("contiguous product");
+    // Per component pair, as in bin_covariance.rs: with V_ij the N x N matrix
+    // V_ij[c, b] = C~[(c, i), (b, j)], the (i, j) block of P is G' V_ij, and C~ symmetric gives
+    // V_ji = V_ij^T, so the rows r of component i and s of component j add
+    //   sum_ab (G' V_ij)[a, b] (G' V_ji)[b, a] = <G' V_ij, V_ij G'> (Frobenius),
+    // the same for (j, i). Two N x N products per pair i <= j (the same 2 (2K)^2 N^3 operations
+    // as the one product G' C~ in all), each on cache-resident N x N matrices, and nothing of
+    // size (N 2K)^2 is written; the pairs run in parallel a chunk at a time and their terms are
+    // added in pair order, so the result does not depend on the thread count.
+    let gather = |i: usize, j: usize| -> Array2<f64> {
+        let mut v = Array2::<f64>::zeros((n, n));
+        for cc in 0..n {
+            let row = c.row(cc * m + i);
+            for b in 0..n {
+                v[[cc, b]] = row[b * m + j];
+            }
+        }
+        v
+    };
+    let term = |(i, j): (usize, usize)| -> f64 {
+        let v = gather(i, j);
+        let left = gp.dot(&v);
+        let right = v.dot(&gp);
+        crate::optimal::frobenius(&left, &right)
+    };
+    let tasks: Vec<(usize, usize)> = (0..m).flat_map(|i| (i..m).map(move |j| (i, j))).collect();
     let mut cov = vec![vec![0.0; k]; k];
-    for r in 0..nm {
-        let fr = (r % m) / 2;
-        for s in 0..nm {
-            cov[fr][(s % m) / 2] += p[[r, s]] * p[[s, r]];
+    let chunk = 16 * rayon::current_num_threads().max(1);
+    for part in tasks.chunks(chunk) {
+        let terms: Vec<f64> = part.par_iter().map(|&t| term(t)).collect();
+        for (&(i, j), t) in part.iter().zip(terms) {
+            let (fi, fj) = (i / 2, j / 2);
+            cov[fi][fj] += t;
+            if i != j {
+                cov[fj][fi] += t;
+            }
         }
     }
     for i in 0..k {
@@ -571,6 +593,66 @@ mod tests {
         }
         // and the signal makes the spread larger than the no-signal one
         assert!(cs[0][0] > 1.2 * pf.covariance[0][0]);
+    }
+
+    #[test]
+    fn block_form_is_the_dense_trace() {
+        // The per-component-pair form equals the definition written out densely,
+        // (1/2) sum over rows r of frequency k and s of frequency l of P_rs P_sr with
+        // P = (G' (x) I) C (Isserlis 1918), on a random symmetric C; tolerance: a few hundred
+        // roundings of terms of order one (1e-12 relative).
+        let (n, k) = (5, 3);
+        let m = 2 * k;
+        let nm = n * m;
+        let mut r = crate::rng::stream(5, crate::rng::Purpose::Layout, 0);
+        let mut c = Array2::<f64>::zeros((nm, nm));
+        for i in 0..nm {
+            for j in 0..=i {
+                let v = rand::Rng::random::<f64>(&mut r) - 0.5;
+                c[[i, j]] = v;
+                c[[j, i]] = v;
+            }
+        }
+        let mut g = Array2::<f64>::eye(n);
+        for a in 0..n {
+            for b in 0..a {
+                let v = rand::Rng::random::<f64>(&mut r) - 0.5;
+                g[[a, b]] = v;
+                g[[b, a]] = v;
+            }
+        }
+        let sigma = [1.0, 0.5, 2.0];
+        let got = signal_covariance_with(&c, &g, m, &sigma).unwrap();
+        let mut gpi = Array2::<f64>::zeros((nm, nm));
+        for a in 0..n {
+            for b in 0..n {
+                if a != b {
+                    for i in 0..m {
+                        gpi[[a * m + i, b * m + i]] = g[[a, b]];
+                    }
+                }
+            }
+        }
+        let p = gpi.dot(&c);
+        for fk in 0..k {
+            for fl in 0..k {
+                let mut want = 0.0;
+                for rr in 0..nm {
+                    for ss in 0..nm {
+                        if (rr % m) / 2 == fk && (ss % m) / 2 == fl {
+                            want += p[[rr, ss]] * p[[ss, rr]];
+                        }
+                    }
+                }
+                want *= 0.5 * (sigma[fk] * sigma[fl]).powi(2);
+                let scale = want.abs().max(1.0);
+                assert!(
+                    (got[fk][fl] - want).abs() < 1e-12 * scale,
+                    "{fk} {fl}: {} {want}",
+                    got[fk][fl]
+                );
+            }
+        }
     }
 
     #[test]

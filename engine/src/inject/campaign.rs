@@ -63,7 +63,11 @@ pub struct Campaign {
     /// The template (A = 1), length 2K.
     pub phi: Vec<f64>,
     pub(super) h: Array1<f64>,
-    pub(super) models: Vec<PulsarModel>,
+    /// The bare per-pulsar models, kept only in time-domain mode (which reduces fresh
+    /// residuals in every realization); empty in reduced mode. A model holds the whitened basis
+    /// (n x c doubles: about 97 MB at 50,000 TOAs and c = 243), so keeping all of them bounded
+    /// `inject` at 200 x 50,000 x 60 by the machine's memory (docs/performance.md).
+    models: Vec<PulsarModel>,
     /// Bare weighted Z~_a,0.
     pub(super) z0: Vec<Array2<f64>>,
     /// Z~_a,0^(1/2) (symmetric root).
@@ -119,29 +123,41 @@ impl Campaign {
         let grid = FrequencyGrid::new(lo, hi, settings.n_frequencies)?;
         let phi = template(settings.spectral_index, &grid.freqs, grid.t_span);
         let h: Array1<f64> = phi.iter().map(|p| p.sqrt()).collect();
-        let models: Vec<PulsarModel> = target
+        let m = phi.len();
+        let keep_models = settings.mode == Mode::TimeDomain;
+        let release_data = target.kind == TargetKind::Release;
+        // Per pulsar (in parallel): the bare model, its weighted Z~_a,0 and, for a release,
+        // the weighted reduction of its residuals; the model itself is dropped at once unless
+        // time-domain mode needs it, so only a thread's worth of models is held at a time.
+        /// A pulsar's weighted Z~_a,0, its weighted data reduction (release targets) and its
+        /// model (time-domain mode).
+        type PerPulsar = (Array2<f64>, Option<Array1<f64>>, Option<PulsarModel>);
+        let per: Vec<PerPulsar> = target
             .pulsars
             .par_iter()
             .map(|p| {
-                PulsarModel::build(
+                let md = PulsarModel::build(
                     p,
                     &target.noise.pulsar(&p.label),
                     &grid,
                     AutoPower { common: None },
-                )
-            })
-            .collect::<Result<_>>()?;
-        let m = phi.len();
-        let z0: Vec<Array2<f64>> = models
-            .iter()
-            .map(|md| {
+                )?;
                 let mut z = md.z.clone();
                 for ((i, j), v) in z.indexed_iter_mut() {
                     *v *= h[i] * h[j];
                 }
-                z
+                let x = release_data.then(|| md.reduce(&p.residual) * &h);
+                Ok((z, x, keep_models.then_some(md)))
             })
-            .collect();
+            .collect::<Result<_>>()?;
+        let mut z0 = Vec::with_capacity(n);
+        let mut reduced_data = Vec::with_capacity(n);
+        let mut models = Vec::new();
+        for (z, x, md) in per {
+            z0.push(z);
+            reduced_data.push(x);
+            models.extend(md);
+        }
         for (a, z) in z0.iter().enumerate() {
             if z.iter().any(|v| !v.is_finite()) {
                 return Err(Error::NonFinite {
@@ -157,14 +173,14 @@ impl Campaign {
         let data = match target.kind {
             TargetKind::Release => {
                 let mut d = Array2::<f64>::zeros((n, m));
-                for (a, (md, p)) in models.iter().zip(&target.pulsars).enumerate() {
-                    let x = md.reduce(&p.residual) * &h;
+                for (a, (x, p)) in reduced_data.iter().zip(&target.pulsars).enumerate() {
+                    let x = x.as_ref().expect("reduced for a release target");
                     if x.iter().any(|v| !v.is_finite()) {
                         return Err(Error::NonFinite {
                             what: format!("the reduction of pulsar {}", p.label),
                         });
                     }
-                    d.row_mut(a).assign(&x);
+                    d.row_mut(a).assign(x);
                 }
                 Some(d)
             }
@@ -385,7 +401,10 @@ impl Campaign {
         }
     }
 
+    /// The weighted bare reduction of fresh residuals (time-domain mode, which keeps the
+    /// models).
     fn reduce_weighted(&self, residuals: &[Vec<f64>], scale: f64) -> Array2<f64> {
+        debug_assert_eq!(self.models.len(), residuals.len(), "models kept");
         let n = self.models.len();
         let mut x = Array2::<f64>::zeros((n, self.phi.len()));
         for (a, (md, r)) in self.models.iter().zip(residuals).enumerate() {

@@ -93,7 +93,15 @@ fn transform_matches_a_model_rebuilt_with_the_common_process() {
             .map(|i| ((i * 7919) % 13) as f64 * 1e-7)
             .collect();
         let x_direct = md.reduce(&res) * &c.h;
-        let x_bare = c.models[k].reduce(&res) * &c.h;
+        // The bare model as the campaign built it (it keeps it only in time-domain mode).
+        let bare = PulsarModel::build(
+            p,
+            &c.target.noise.pulsar(&p.label),
+            &c.grid,
+            AutoPower { common: None },
+        )
+        .unwrap();
+        let x_bare = bare.reduce(&res) * &c.h;
         let x_t = r.dot(&x_bare);
         let sx = x_direct.iter().fold(0.0f64, |m, v| m.max(v.abs()));
         let dx = (&x_t - &x_direct)

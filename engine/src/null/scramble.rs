@@ -219,6 +219,68 @@ fn lane_dot(a: &[f64], b: &[f64], c: Option<&[f64]>) -> f64 {
     lane_sum(&s)
 }
 
+/// The sums of one candidate over the padded pair array in three flat passes: the cosines of
+/// every row in whole vectors of [`LANES`] (fixed-size arrays, so no row ends in a scalar
+/// remainder), then the pattern over the whole array in one long loop (which the compiler
+/// vectorises and the processor overlaps across iterations: in rows of a few vectors the
+/// pattern's long dependency chain and the loop's set-up were not hidden), then the four sums.
+/// Lane l of each sum adds the terms at indices l mod [`LANES`] in order: the same terms in the
+/// same order as [`lane_dot`] over the values of [`pattern_pass`], so the results are bit for
+/// bit those of the separate passes (test `fused_pass_is_the_passes`). `valid` is 1 at a pair
+/// and 0 in the padding (G' x 1 is G' exactly; the padding's G' becomes 0 as in
+/// [`pattern_pass`]). Returns (sum G' G, sum G'^2, sum G' num_ab, sum G'^2 tr_ab).
+#[inline(always)]
+fn fused_pass<F: Fn(f64) -> f64>(
+    f: F,
+    n: usize,
+    x: &[f64],
+    y: &[f64],
+    z: &[f64],
+    t: &Tables,
+    g: &mut [f64],
+) -> [f64; 4] {
+    let mut k = 0;
+    for a in 0..n {
+        let plen = (n - a - 1).div_ceil(LANES) * LANES;
+        let (xa, ya, za) = (x[a], y[a], z[a]);
+        for c in 0..plen / LANES {
+            let r = a + 1 + c * LANES..a + 1 + (c + 1) * LANES;
+            let lane = |v: &[f64]| -> [f64; LANES] { v[r.clone()].try_into().expect("LANES") };
+            let (xb, yb, zb) = (lane(x), lane(y), lane(z));
+            let out: &mut [f64; LANES] = (&mut g[k + c * LANES..k + (c + 1) * LANES])
+                .try_into()
+                .expect("LANES");
+            for l in 0..LANES {
+                out[l] = xa * xb[l] + ya * yb[l] + za * zb[l];
+            }
+        }
+        k += plen;
+    }
+    let g = &mut g[..k];
+    for (v, ok) in g.iter_mut().zip(&t.valid[..k]) {
+        *v = f(*v) * ok;
+    }
+    let g = &g[..];
+    [
+        lane_dot(g, &t.g_true[..k], None),
+        lane_dot(g, g, None),
+        lane_dot(g, &t.numerators[..k], None),
+        lane_dot(g, g, Some(&t.traces[..k])),
+    ]
+}
+
+/// Pair values in the padded layout of the kernels.
+struct Tables {
+    /// G_ab of the true pattern.
+    g_true: Vec<f64>,
+    /// X_a^T Phi X_b of the data.
+    numerators: Vec<f64>,
+    /// 1/sigma_ab^2.
+    traces: Vec<f64>,
+    /// 1 at a pair, 0 in the padding.
+    valid: Vec<f64>,
+}
+
 /// (sum G' num_ab, sum G'^2 tr_ab) over the flat pair array.
 #[inline(always)]
 fn statistic_pass(g: &[f64], num: &[f64], tr: &[f64]) -> (f64, f64) {
@@ -243,6 +305,25 @@ fn candidate(pattern: Pattern, g_true: &[f64], w: &mut Work) -> (f64, f64) {
         Pattern::Hd => pattern_pass(hd_fast, n, &w.x, &w.y, &w.z, &mut w.g),
     }
     (lane_dot(&w.g, g_true, None), lane_dot(&w.g, &w.g, None))
+}
+
+/// One candidate scramble in one pass: directions from the uniforms and the four sums of
+/// [`fused_pass`] (the pattern values are not stored).
+#[inline(always)]
+fn candidate_fused(pattern: Pattern, t: &Tables, w: &mut Work) -> [f64; 4] {
+    let n = w.uv.len() / 2;
+    directions(
+        &w.uv[..n],
+        &w.uv[n..],
+        &mut w.x[..n],
+        &mut w.y[..n],
+        &mut w.z[..n],
+    );
+    match pattern {
+        Pattern::Dipole => fused_pass(|c| c.clamp(-1.0, 1.0), n, &w.x, &w.y, &w.z, t, &mut w.g),
+        Pattern::Monopole => fused_pass(|_| 1.0, n, &w.x, &w.y, &w.z, t, &mut w.g),
+        Pattern::Hd => fused_pass(hd_fast, n, &w.x, &w.y, &w.z, t, &mut w.g),
+    }
 }
 
 /// The instruction sets the kernels are compiled for; the best one the CPU has is picked at run
@@ -302,6 +383,18 @@ unsafe fn candidate_avx512(pattern: Pattern, g_true: &[f64], w: &mut Work) -> (f
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2")]
+unsafe fn fused_avx2(pattern: Pattern, t: &Tables, w: &mut Work) -> [f64; 4] {
+    candidate_fused(pattern, t, w)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn fused_avx512(pattern: Pattern, t: &Tables, w: &mut Work) -> [f64; 4] {
+    candidate_fused(pattern, t, w)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
 unsafe fn statistic_avx2(g: &[f64], num: &[f64], tr: &[f64]) -> (f64, f64) {
     statistic_pass(g, num, tr)
 }
@@ -354,9 +447,7 @@ pub struct Scrambles<'a> {
     /// sum G^2 of the true pattern.
     g2_true: f64,
     /// G_ab, num_ab and tr_ab in the padded layout of the kernels.
-    g_true: Vec<f64>,
-    numerators: Vec<f64>,
-    traces: Vec<f64>,
+    tables: Tables,
     isa: Isa,
 }
 
@@ -374,9 +465,12 @@ impl<'a> Scrambles<'a> {
             seed,
             threshold,
             g2_true: p.g.iter().map(|g| g * g).sum(),
-            g_true: pad(&p.g, p.n),
-            numerators: pad(&p.numerators, p.n),
-            traces: pad(&p.traces, p.n),
+            tables: Tables {
+                g_true: pad(&p.g, p.n),
+                numerators: pad(&p.numerators, p.n),
+                traces: pad(&p.traces, p.n),
+                valid: pad(&vec![1.0; p.g.len()], p.n),
+            },
             isa: Isa::detect(),
         })
     }
@@ -403,18 +497,30 @@ impl<'a> Scrambles<'a> {
     /// Directions, pattern values and (sum G' G, sum G'^2) of the drawn candidate.
     fn candidate(&self, w: &mut Work) -> (f64, f64) {
         match self.isa {
-            Isa::Baseline => candidate(self.pattern, &self.g_true, w),
+            Isa::Baseline => candidate(self.pattern, &self.tables.g_true, w),
             // SAFETY: `isa` is only ever a set the CPU reported (`Isa::detect`, `with_isa`).
             #[cfg(target_arch = "x86_64")]
-            Isa::Avx2 => unsafe { candidate_avx2(self.pattern, &self.g_true, w) },
+            Isa::Avx2 => unsafe { candidate_avx2(self.pattern, &self.tables.g_true, w) },
             #[cfg(target_arch = "x86_64")]
-            Isa::Avx512 => unsafe { candidate_avx512(self.pattern, &self.g_true, w) },
+            Isa::Avx512 => unsafe { candidate_avx512(self.pattern, &self.tables.g_true, w) },
+        }
+    }
+
+    /// Directions and the four sums of [`fused_pass`] of the drawn candidate.
+    fn candidate_fused(&self, w: &mut Work) -> [f64; 4] {
+        match self.isa {
+            Isa::Baseline => candidate_fused(self.pattern, &self.tables, w),
+            // SAFETY: as in `candidate`.
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx2 => unsafe { fused_avx2(self.pattern, &self.tables, w) },
+            #[cfg(target_arch = "x86_64")]
+            Isa::Avx512 => unsafe { fused_avx512(self.pattern, &self.tables, w) },
         }
     }
 
     /// (sum G' num, sum G'^2 tr) of the pattern values in `g`.
     fn statistic(&self, g: &[f64]) -> Sums {
-        let (num, tr) = (&self.numerators, &self.traces);
+        let (num, tr) = (&self.tables.numerators, &self.tables.traces);
         let (num, den) = match self.isa {
             Isa::Baseline => statistic_pass(g, num, tr),
             // SAFETY: as in `candidate`.
@@ -427,14 +533,15 @@ impl<'a> Scrambles<'a> {
     }
 
     /// Draw candidates from trial `index`'s stream until one is accepted; its attempt number
-    /// and its work space (directions and pattern values) and sums.
-    fn accepted_candidate(&self, index: u64, w: &mut Work) -> Result<(u64, f64)> {
+    /// and sums (its directions are left in `w`). The statistic's sums are computed with the
+    /// match sums in one pass (kept only for the accepted candidate).
+    fn accepted_candidate(&self, index: u64, w: &mut Work) -> Result<(u64, Sums)> {
         let mut rng = stream(self.seed, Purpose::Scramble, index);
         for attempt in 1..=MAX_ATTEMPTS {
             self.draw(&mut rng, w);
-            let (cross, g2) = self.candidate(w);
+            let [cross, g2, num, den] = self.candidate_fused(w);
             if self.accepted(cross, g2) {
-                return Ok((attempt, g2));
+                return Ok((attempt, Sums { num, den }));
             }
         }
         Err(Error::setting(
@@ -469,9 +576,20 @@ fn match_value(cross: f64, g2: f64, g2_true: f64) -> f64 {
 
 impl TrialSource for Scrambles<'_> {
     fn trial(&self, index: u64) -> Result<Trial> {
-        let mut w = Work::new(self.p.n);
-        let (attempts, _) = self.accepted_candidate(index, &mut w)?;
-        let s = self.statistic(&w.g);
+        // One work space per thread, reused from trial to trial (a trial overwrites every
+        // value it reads, so the numbers do not depend on what ran before on the thread).
+        thread_local! {
+            static WORK: std::cell::RefCell<Option<Work>> = const { std::cell::RefCell::new(None) };
+        }
+        let n = self.p.n;
+        let (attempts, s) = WORK.with(|cell| {
+            let mut cell = cell.borrow_mut();
+            let w = match cell.as_mut() {
+                Some(w) if w.uv.len() == 2 * n => w,
+                _ => cell.insert(Work::new(n)),
+            };
+            self.accepted_candidate(index, w)
+        })?;
         Ok(Trial {
             index,
             snr: s.num / s.den.sqrt(),
@@ -679,6 +797,51 @@ mod tests {
                     .iter()
                     .zip(&base.g)
                     .all(|(a, b)| a.to_bits() == b.to_bits()));
+            }
+        }
+    }
+
+    #[test]
+    fn fused_pass_is_the_passes() {
+        // The one-pass sums are bit for bit the separate passes' (pattern values stored, then
+        // the fixed-order lane sums), for every instruction set, both patterns and row lengths
+        // that are not multiples of the lane count; so a trial's numbers did not change.
+        for n in [2, 9, 37] {
+            let pairs = n * (n - 1) / 2;
+            let mut r = crate::rng::stream(4, Purpose::Scramble, n as u64);
+            let mut v = |shift: f64| -> Vec<f64> {
+                pad(
+                    &(0..pairs)
+                        .map(|_| r.random::<f64>() - shift)
+                        .collect::<Vec<_>>(),
+                    n,
+                )
+            };
+            let t = Tables {
+                g_true: v(0.3),
+                numerators: v(0.5),
+                traces: v(0.0),
+                valid: pad(&vec![1.0; pairs], n),
+            };
+            let uv: Vec<f64> = (0..2 * n).map(|_| r.random()).collect();
+            for pattern in [Pattern::Hd, Pattern::Dipole] {
+                let mut w = Work::new(n);
+                w.uv.clone_from(&uv);
+                let (cross, g2) = candidate(pattern, &t.g_true, &mut w);
+                let (num, den) = statistic_pass(&w.g, &t.numerators, &t.traces);
+                let want = [cross, g2, num, den].map(f64::to_bits);
+                for isa in Isa::available() {
+                    let mut w2 = Work::new(n);
+                    w2.uv.clone_from(&uv);
+                    let got = match isa {
+                        Isa::Baseline => candidate_fused(pattern, &t, &mut w2),
+                        #[cfg(target_arch = "x86_64")]
+                        Isa::Avx2 => unsafe { fused_avx2(pattern, &t, &mut w2) },
+                        #[cfg(target_arch = "x86_64")]
+                        Isa::Avx512 => unsafe { fused_avx512(pattern, &t, &mut w2) },
+                    };
+                    assert_eq!(got.map(f64::to_bits), want, "{n} {pattern:?} {isa:?}");
+                }
             }
         }
     }
