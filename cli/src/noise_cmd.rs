@@ -58,6 +58,11 @@ pub struct NoiseArgs {
     /// Kept draws per chain.
     #[arg(long, default_value_t = SamplerSettings::default().draws)]
     draws: u64,
+    /// Most kept draws per chain: chains whose draws miss the convergence thresholds (R-hat,
+    /// bulk and tail ESS) are continued in blocks of draws/2 up to this (default 4 x draws;
+    /// equal to --draws: never continued).
+    #[arg(long)]
+    max_draws: Option<u64>,
     /// Maximum tree depth of the sampler.
     #[arg(long, default_value_t = SamplerSettings::default().max_depth)]
     max_depth: u64,
@@ -124,6 +129,7 @@ pub fn run(args: NoiseArgs) -> Result<()> {
             target_accept: args.target_accept,
             ..SamplerSettings::default()
         },
+        max_draws: args.max_draws,
         values: match args.values {
             Values::Median => ModelValues::Median,
             Values::Map => ModelValues::Map,

@@ -1,5 +1,6 @@
 //! Issue 9.8: every artefact of a fixed seed is byte-identical across runs and thread counts.
-//! One chain of commands (simulate, correlate, a simulated null, an injection campaign, the
+//! One chain of commands (simulate, correlate, a simulated null, an injection campaign, noise
+//! estimation of two pulsars, the
 //! figure of each folder in SVG, PNG and PDF, and the report) runs twice, once with
 //! RAYON_NUM_THREADS=1 and once with 2, and every file written is compared byte for byte
 //! (the `.lock` file, empty, is the one file left out: it is the folder lock, not an output).
@@ -77,13 +78,35 @@ fn chain(root: &Path, threads: &str) {
         "--out",
         "inj",
     ]);
-    for dir in ["cor", "nul", "inj"] {
+    // Noise estimation of two pulsars (short chains: the bytes matter here, not the
+    // posterior), whose figures (one per pulsar) join the others.
+    run(&[
+        "noise",
+        "rel",
+        "--shard",
+        "1/20",
+        "--starts",
+        "2",
+        "--chains",
+        "2",
+        "--warmup",
+        "40",
+        "--draws",
+        "30",
+        "--max-draws",
+        "60",
+        "--seed",
+        "5",
+        "--out",
+        "noi",
+    ]);
+    for dir in ["cor", "nul", "inj", "noi"] {
         for format in ["svg", "png", "pdf"] {
             let out = format!("fig-{dir}-{format}");
             run(&["plot", dir, "--format", format, "--out", &out]);
         }
     }
-    run(&["report", "cor", "nul", "inj", "--out", "rep"]);
+    run(&["report", "cor", "nul", "inj", "noi", "--out", "rep"]);
 }
 
 #[test]
@@ -96,8 +119,9 @@ fn every_artefact_is_byte_identical_across_runs_and_thread_counts() {
     let names = |t: &[(String, Vec<u8>)]| t.iter().map(|x| x.0.clone()).collect::<Vec<_>>();
     assert_eq!(names(&ta), names(&tb), "the two runs wrote different files");
     let pdfs = ta.iter().filter(|(n, _)| n.ends_with(".pdf")).count();
-    // correlate draws two figures (angular correlation, per-frequency), null and inject one.
-    assert_eq!(pdfs, 4, "one PDF per figure");
+    // correlate draws two figures (angular correlation, per-frequency), null and inject one,
+    // noise one per pulsar (two).
+    assert_eq!(pdfs, 6, "one PDF per figure");
     let differ: Vec<&str> = ta
         .iter()
         .zip(&tb)

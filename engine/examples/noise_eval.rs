@@ -2,10 +2,11 @@
 //! noise.toml, timed; for benchmarks/noise, which runs the NumPy peer
 //! (tests/reference/noise_likelihood.py) on the same pulsar in the same run.
 //!
-//!     cargo run --release -p ptacorr-engine --example noise_eval -- RELEASE LABEL [REPEAT]
+//!     cargo run --release -p ptacorr-engine --example noise_eval -- RELEASE LABEL [REPEAT] [K]
 //!
-//! Prints `ln_l`, `seconds_per_evaluation` (value and gradient), `flops` (counted) and the
-//! shape. Red and DM processes use their `n_frequencies` (14 when absent, as the peer).
+//! Prints `ln_l`, `seconds_per_evaluation` (value and gradient), `flops` (counted), the
+//! shape, and the value and time of the fixed-white evaluation at the same point. Red and DM processes use their `n_frequencies` (14 when absent, as the peer), or K
+//! frequencies when K is given (30 is what `ptacorr noise` fits by default).
 
 use ptacorr::likelihood::{BackendTerms, Components, Hyper, PulsarLikelihood};
 use ptacorr::linalg::single_threaded_blas;
@@ -16,10 +17,11 @@ use std::time::Instant;
 fn main() {
     let args: Vec<String> = std::env::args().collect();
     if args.len() < 3 {
-        eprintln!("usage: noise_eval RELEASE LABEL [REPEAT]");
+        eprintln!("usage: noise_eval RELEASE LABEL [REPEAT] [K]");
         std::process::exit(2);
     }
     let repeat: usize = args.get(3).map_or(50, |s| s.parse().expect("REPEAT"));
+    let k: Option<usize> = args.get(4).map(|s| s.parse().expect("K"));
     single_threaded_blas();
     let rel = read_release(std::path::Path::new(&args[1])).expect("release");
     let p = rel
@@ -42,8 +44,8 @@ fn main() {
                 }
             })
             .collect(),
-        red: pn.red.map(|r| r.n_frequencies.unwrap_or(14)),
-        dm: pn.dm.map(|r| r.n_frequencies.unwrap_or(14)),
+        red: pn.red.map(|r| k.or(r.n_frequencies).unwrap_or(14)),
+        dm: pn.dm.map(|r| k.or(r.n_frequencies).unwrap_or(14)),
         common: None,
     };
     let grid = FrequencyGrid::for_release(&rel, 1).expect("grid");
@@ -71,9 +73,27 @@ fn main() {
         std::hint::black_box(lik.log_likelihood_and_gradient(&theta, &mut grad).unwrap());
     }
     let per = start.elapsed().as_secs_f64() / repeat as f64;
+    // The fixed-white path (`ptacorr noise --fixed-white`) at the same point: what the sampler
+    // evaluates there.
+    let fixed = lik.fixed_white(&theta).expect("fixed white");
+    let value_fixed = fixed
+        .log_likelihood_and_gradient(&theta, &mut grad)
+        .expect("ln L fixed white");
+    let reps_fixed = repeat * 20;
+    let start = Instant::now();
+    for _ in 0..reps_fixed {
+        std::hint::black_box(
+            fixed
+                .log_likelihood_and_gradient(&theta, &mut grad)
+                .unwrap(),
+        );
+    }
+    let per_fixed = start.elapsed().as_secs_f64() / reps_fixed as f64;
     let (n, c) = lik.shape();
     println!("ln_l {value:?}");
     println!("seconds_per_evaluation {per:?}");
     println!("flops {:?}", lik.flops());
     println!("shape {n} {c}");
+    println!("ln_l_fixed_white {value_fixed:?}");
+    println!("seconds_per_fixed_white_evaluation {per_fixed:?}");
 }

@@ -24,12 +24,14 @@
 use crate::basis::{chromatic_scale, ecorr_epochs, timing_model, ECORR_EPOCH_GAP_S};
 use crate::constants::F_YR;
 use crate::error::{Error, Result};
-use crate::linalg::{syrk_flops, ScaledCholesky};
+use crate::linalg::{mirror_upper, syrk_flops, syrk_tn, ScaledCholesky};
 use crate::noise::{PulsarNoise, RedProcess, WhiteNoise};
-use crate::reduce::{basis_columns, ecorr_beta, ecorr_rows, gram_n_inv, FrequencyGrid};
+use crate::reduce::{basis_columns, ecorr_beta, FrequencyGrid};
 use crate::release::Pulsar;
 use crate::spectrum::{power_law_phi, PowerLaw};
-use ndarray::{Array1, Array2};
+use ndarray::linalg::general_mat_vec_mul;
+use ndarray::{s, Array1, Array2, ArrayView1, ArrayViewMut1, Axis};
+use std::cell::RefCell;
 use std::f64::consts::{LN_10, PI};
 
 /// Which white-noise terms of one backend are free parameters (an absent EFAC is 1, an absent
@@ -106,44 +108,110 @@ struct Block {
     freqs: Vec<f64>,
 }
 
-/// The white-noise part of one evaluation (see [`PulsarLikelihood::white`]).
-struct White {
+/// Buffers of one evaluation's n-sized and (n x c)-sized steps, kept per thread and reused
+/// ([`with_work`]), so that an evaluation allocates nothing of size n: on 2,400 TOAs x 60
+/// columns a fresh 1.2 MB array per step cost more in page faults than the arithmetic
+/// (measured, docs/noise-estimation.md "Speed").
+#[derive(Default)]
+struct Work {
+    /// D_ii = (EFAC sigma_i)^2 + EQUAD^2 and D_ii^-1/2.
+    d: Vec<f64>,
+    sqrt_dinv: Vec<f64>,
+    /// D^-1/2 r.
+    wr: Vec<f64>,
+    /// D^-1/2 (r - T a).
+    e: Vec<f64>,
+    /// P r.
+    pr: Vec<f64>,
+    /// D^-1/2 T; in the gradient overwritten by N^-1 T and then by its rows whitened with S.
+    wa: Array2<f64>,
+    /// Per ECORR epoch: sum of D^-1 over its TOAs, beta^(1/2) of the Sherman-Morrison fold,
+    /// and beta^(1/2) times the sum of its D^-1/2 rows of D^-1/2 T.
+    sum_dinv: Vec<f64>,
+    sqrt_beta: Vec<f64>,
+    v: Array2<f64>,
+    /// T^T N^-1 T (both triangles).
+    gram: Array2<f64>,
+}
+
+impl Work {
+    /// Size the buffers for n TOAs, c columns and ne ECORR epochs (a no-op when they fit).
+    fn size(&mut self, n: usize, c: usize, ne: usize) {
+        for v in [
+            &mut self.d,
+            &mut self.sqrt_dinv,
+            &mut self.wr,
+            &mut self.e,
+            &mut self.pr,
+        ] {
+            v.resize(n, 0.0);
+        }
+        self.sum_dinv.resize(ne, 0.0);
+        self.sqrt_beta.resize(ne, 0.0);
+        for (m, dim) in [
+            (&mut self.wa, (n, c)),
+            (&mut self.v, (ne, c)),
+            (&mut self.gram, (c, c)),
+        ] {
+            if m.dim() != dim {
+                *m = Array2::zeros(dim);
+            }
+        }
+    }
+}
+
+thread_local! {
+    static WORK: RefCell<Work> = RefCell::new(Work::default());
+}
+
+/// Run `f` with this thread's buffers (fresh ones should they be in use, which an evaluation
+/// never nests).
+fn with_work<T>(f: impl FnOnce(&mut Work) -> T) -> T {
+    WORK.with(|cell| match cell.try_borrow_mut() {
+        Ok(mut w) => f(&mut w),
+        Err(_) => f(&mut Work::default()),
+    })
+}
+
+/// The white-noise values of one evaluation and the products they give.
+struct WhiteValues {
     efac: Vec<f64>,
     equad2: Vec<f64>,
     ecorr2: Vec<f64>,
-    /// D_ii = (EFAC sigma_i)^2 + EQUAD^2.
-    d: Vec<f64>,
-    sqrt_dinv: Vec<f64>,
-    /// D^-1/2 T and D^-1/2 r.
-    wa: Array2<f64>,
-    wr: Array1<f64>,
-    /// Per ECORR epoch: sum of D^-1 over its TOAs.
-    sum_dinv: Vec<f64>,
-    /// Per ECORR epoch: its TOAs and beta^(1/2) of the Sherman-Morrison fold.
-    fold: Vec<(Vec<usize>, f64)>,
-    /// Per ECORR epoch: beta^(1/2) sum of D^-1/2 rows of D^-1/2 T.
-    v: Array2<f64>,
-    /// T^T N^-1 T and T^T N^-1 r.
-    gram: Array2<f64>,
+    /// T^T N^-1 r, r^T N^-1 r and ln det N.
     tnr: Array1<f64>,
+    rnr: f64,
+    log_det_n: f64,
 }
 
-/// The likelihood with the white noise held at fixed values (`ptacorr noise --fixed-white`):
-/// T^T N^-1 T, T^T N^-1 r, r^T N^-1 r and ln det N are computed once, so an evaluation costs
-/// O(c^3) for c columns of T instead of O(n c^2). With S = B^-1 + T^T N^-1 T and
-/// a = S^-1 T^T N^-1 r, r^T P r = r^T N^-1 r - a^T T^T N^-1 r (Woodbury identity; Press et al.
-/// 2007, Numerical Recipes, sec. 2.7.3; the same S as in [`PulsarLikelihood`]). This scalar
-/// difference loses about log10(r^T N^-1 r / r^T P r) digits, a few at most for residuals
-/// dominated by red noise; the gradient in the power-law parameters is the same formula as the
-/// full likelihood's, and the white-noise entries of the gradient are zero.
+/// The likelihood with the white noise held at fixed values (`ptacorr noise --fixed-white`).
+/// N is then fixed, so T^T N^-1 T, T^T N^-1 r, r^T N^-1 r and ln det N are computed once, and
+/// so is the elimination of the timing model, whose columns carry no prior (B^-1 = 0 there):
+/// with T = [M | F] and G = T^T N^-1 T, block Gaussian elimination (the Schur complement;
+/// Golub & Van Loan 2013, Matrix Computations, sec. 3.2.10 and 4.2) gives
+///
+/// S' = B_F^-1 + G', G' = G_FF - G_FM G_MM^-1 G_MF, t' = t_F - G_FM G_MM^-1 t_M (t = T^T N^-1 r),
+/// ln det S = ln det G_MM + ln det S', a_F = S'^-1 t', (S^-1)_FF = S'^-1,
+/// r^T P r = r^T N^-1 r - t_M^T G_MM^-1 t_M - a_F^T t'
+///
+/// (the last by the Woodbury identity; Press et al. 2007, Numerical Recipes, sec. 2.7.3; the
+/// same S as in [`PulsarLikelihood`]). An evaluation factors only S' (c_F x c_F for the c_F
+/// Fourier columns) and inverts its triangular factor for diag(S'^-1): about 2 c_F^3 / 3
+/// operations instead of O(n c^2). The scalar difference loses about
+/// log10(r^T N^-1 r / r^T P r) digits, a few at most for residuals dominated by red noise; the
+/// gradient in the power-law parameters is the full likelihood's formula, and the white-noise
+/// entries of the gradient are zero.
 pub struct FixedWhite<'a> {
     lik: &'a PulsarLikelihood,
     /// (index, value) of every white-noise hyperparameter.
     white: Vec<(usize, f64)>,
+    /// G' and t' over the Fourier columns (timing model eliminated).
     gram: Array2<f64>,
     tnr: Array1<f64>,
+    /// r^T N^-1 r - t_M^T G_MM^-1 t_M.
     rnr: f64,
-    log_det_n: f64,
+    /// ln det N + ln det G_MM.
+    log_det: f64,
 }
 
 impl FixedWhite<'_> {
@@ -164,21 +232,23 @@ impl FixedWhite<'_> {
             ));
         }
         let (n, cols) = lik.t.dim();
+        let m = lik.n_m;
         let (phi, binv, red_share, common_share) = lik.prior_variances(theta)?;
         let mut s = self.gram.clone();
-        for c in lik.n_m..cols {
-            s[[c, c]] += binv[c];
+        for c in m..cols {
+            s[[c - m, c - m]] += binv[c];
         }
-        let chol = ScaledCholesky::new(
-            &s,
-            &format!("S = B^-1 + T^T N^-1 T of pulsar {}", lik.label),
-        )?;
-        let w_half = chol.whiten(&Array2::eye(cols));
-        let a = w_half.t().dot(&w_half.dot(&self.tnr));
+        let chol = ScaledCholesky::from_owned(s, || {
+            format!(
+                "S = B^-1 + T^T N^-1 T of pulsar {} (timing model eliminated)",
+                lik.label
+            )
+        })?;
+        let a = chol.solve_vec(self.tnr.as_slice().expect("contiguous"));
         let chi2 = self.rnr - a.dot(&self.tnr);
-        let log_det_b: f64 = phi[lik.n_m..].iter().map(|p| p.ln()).sum();
-        let lnl = -0.5 * (chi2 + self.log_det_n + log_det_b + chol.log_det())
-            - 0.5 * (n - lik.n_m) as f64 * (2.0 * PI).ln();
+        let log_det_b: f64 = phi[m..].iter().map(|p| p.ln()).sum();
+        let lnl = -0.5 * (chi2 + self.log_det + log_det_b + chol.log_det())
+            - 0.5 * (n - m) as f64 * (2.0 * PI).ln();
         if !lnl.is_finite() {
             return Err(Error::NonFinite {
                 what: format!("the likelihood of pulsar {} (ln L)", lik.label),
@@ -186,16 +256,12 @@ impl FixedWhite<'_> {
         }
         grad.iter_mut().for_each(|g| *g = 0.0);
         // (S^-1 T^T N^-1 T)_cc = 1 - (S^-1)_cc / phi_c since T^T N^-1 T = S - B^-1.
-        let h: Vec<f64> = (0..cols)
-            .map(|c| {
-                if c < lik.n_m {
-                    0.0
-                } else {
-                    let s_inv_cc = w_half.column(c).dot(&w_half.column(c));
-                    0.5 * (a[c] * a[c] * binv[c] - 1.0 + s_inv_cc * binv[c])
-                }
-            })
-            .collect();
+        let s_inv = chol.inverse_diagonal();
+        let mut h = vec![0.0; cols];
+        for c in m..cols {
+            let (ac, sc) = (a[c - m], s_inv[c - m]);
+            h[c] = 0.5 * (ac * ac * binv[c] - 1.0 + sc * binv[c]);
+        }
         lik.power_law_gradient(&h, &red_share, &common_share, grad);
         if let Some(k) = grad.iter().position(|g| !g.is_finite()) {
             return Err(Error::NonFinite {
@@ -229,6 +295,8 @@ pub struct PulsarLikelihood {
     common: Option<CommonTerm>,
     /// ECORR epochs: backend and TOA indices.
     epochs: Vec<(usize, Vec<usize>)>,
+    /// The ECORR epoch of each TOA (usize::MAX: none).
+    epoch_of: Vec<usize>,
     white_index: Vec<WhiteIndex>,
     red_index: Option<usize>,
     dm_index: Option<usize>,
@@ -344,6 +412,12 @@ impl PulsarLikelihood {
         } else {
             Vec::new()
         };
+        let mut epoch_of = vec![usize::MAX; t.len()];
+        for (k, (_, idx)) in epochs.iter().enumerate() {
+            for &i in idx {
+                epoch_of[i] = k;
+            }
+        }
         Ok(PulsarLikelihood {
             label: p.label.clone(),
             residual: p.residual.clone(),
@@ -365,6 +439,7 @@ impl PulsarLikelihood {
             }),
             common: components.common.map(|c| c.term),
             epochs,
+            epoch_of,
             white_index,
             red_index,
             dm_index,
@@ -404,20 +479,23 @@ impl PulsarLikelihood {
     }
 
     /// Floating-point operations of one value-and-gradient evaluation as counted: the rank-k
-    /// update T^T D^-1 T (n c (c + 1)), V^T V, the quadratic forms of diag(P) (counted as n c^2,
-    /// what a triangular solve L^-1 (N^-1 T)^T needs; the code uses one dgemm (N^-1 T) S^-1 of
-    /// 2 n c^2 flops, which runs faster than the solve and keeps rows contiguous),
-    /// forming V, N^-1 T and diag(P) (2 n c each), and the small dense steps on S (c^3 / 3 for
-    /// the factor, c^3 for S^-1/2, 2 c^3 for S^-1).
+    /// update T^T D^-1 T (n c (c + 1)) and V^T V, the triangular solve Z = N^-1 T D^-1 L^-T
+    /// whose row norms are the quadratic forms of diag(P) (n c^2), the passes over n x c
+    /// arrays (D^-1/2 T, T^T N^-1 r, T a, N^-1 T, the scaling before the solve, the row norms:
+    /// 9 n c; with ECORR also V, its rows in N^-1 T and the epoch sums of Z: 5 n c), and the
+    /// small dense steps on S (c^3 / 3 for the factor, c^3 / 3 for the inverse of the
+    /// triangular factor).
     pub fn flops(&self) -> f64 {
         let (n, c) = self.t.dim();
         let (nf, cf) = (n as f64, c as f64);
         let ne = self.epochs.len();
+        let ecorr = if ne > 0 { 5.0 * nf * cf } else { 0.0 };
         syrk_flops(n, c)
             + syrk_flops(ne, c)
             + nf * cf * cf
-            + 6.0 * nf * cf
-            + cf.powi(3) * (1.0 / 3.0 + 3.0)
+            + 9.0 * nf * cf
+            + ecorr
+            + cf.powi(3) * (2.0 / 3.0)
     }
 
     /// The noise model at `theta` in the types of `noise.toml` (red and DM with their own
@@ -557,124 +635,137 @@ impl PulsarLikelihood {
             .collect()
     }
 
-    /// The white-noise products at `theta` that a fixed white noise leaves constant:
-    /// T^T N^-1 T, T^T N^-1 r, r^T N^-1 r and ln det N ([`FixedWhite`]).
+    /// The white-noise products at `theta` that a fixed white noise leaves constant, with the
+    /// timing model eliminated ([`FixedWhite`]).
     pub fn fixed_white(&self, theta: &[f64]) -> Result<FixedWhite<'_>> {
-        let probe = self.white_products(theta)?;
+        self.check_theta(theta)?;
+        let (gram, tnr, rnr, log_det_n) = with_work(|w| {
+            let v = self.fill_white(theta, w)?;
+            Ok::<_, Error>((w.gram.clone(), v.tnr, v.rnr, v.log_det_n))
+        })?;
+        let m = self.n_m;
+        let white = self
+            .white_parameters()
+            .into_iter()
+            .map(|i| (i, theta[i]))
+            .collect();
+        if m == 0 {
+            return Ok(FixedWhite {
+                lik: self,
+                white,
+                gram,
+                tnr,
+                rnr,
+                log_det: log_det_n,
+            });
+        }
+        let chol = ScaledCholesky::new(
+            &gram.slice(s![..m, ..m]).to_owned(),
+            &format!("M^T N^-1 M of pulsar {} (its timing model)", self.label),
+        )?;
+        // W = L^-1 D^-1 G_MF and w = L^-1 D^-1 t_M, so G_FM G_MM^-1 G_MF = W^T W.
+        let wmf = chol.whiten(&gram.slice(s![..m, m..]).to_owned());
+        let wt = chol.whiten(&tnr.slice(s![..m]).to_owned().insert_axis(Axis(1)));
+        let wt = wt.column(0);
         Ok(FixedWhite {
             lik: self,
-            white: self
-                .white_parameters()
-                .into_iter()
-                .map(|i| (i, theta[i]))
-                .collect(),
-            gram: probe.0,
-            tnr: probe.1,
-            rnr: probe.2,
-            log_det_n: probe.3,
+            white,
+            gram: &gram.slice(s![m.., m..]) - &wmf.t().dot(&wmf),
+            tnr: &tnr.slice(s![m..]) - &wmf.t().dot(&wt),
+            rnr: rnr - wt.dot(&wt),
+            log_det: log_det_n + chol.log_det(),
         })
     }
 
-    /// The white-noise part at `theta`: D, the whitened T and r, ECORR's Sherman-Morrison
-    /// terms, T^T N^-1 T and T^T N^-1 r.
-    fn white(&self, theta: &[f64]) -> Result<White> {
-        let non_finite = |what: &str| Error::NonFinite {
-            what: format!("the likelihood of pulsar {} ({what})", self.label),
-        };
-        let n = self.t.nrows();
+    /// The white-noise part at `theta` into `w`: D, the whitened T and r, ECORR's
+    /// Sherman-Morrison terms and T^T N^-1 T; returns the values and T^T N^-1 r,
+    /// r^T N^-1 r and ln det N.
+    fn fill_white(&self, theta: &[f64], w: &mut Work) -> Result<WhiteValues> {
+        let (n, cols) = self.t.dim();
         let nb = self.backends.len();
+        w.size(n, cols, self.epochs.len());
         // White noise per backend: D_ii = (EFAC sigma_i)^2 + EQUAD^2, ECORR^2 per epoch.
         let mut efac = vec![1.0; nb];
         let mut equad2 = vec![0.0; nb];
         let mut ecorr2 = vec![0.0; nb];
-        for (b, w) in self.white_index.iter().enumerate() {
-            if let Some(i) = w.efac {
+        for (b, wi) in self.white_index.iter().enumerate() {
+            if let Some(i) = wi.efac {
                 efac[b] = theta[i];
             }
-            if let Some(i) = w.equad {
+            if let Some(i) = wi.equad {
                 equad2[b] = 10f64.powf(2.0 * theta[i]);
             }
-            if let Some(i) = w.ecorr {
+            if let Some(i) = wi.ecorr {
                 ecorr2[b] = 10f64.powf(2.0 * theta[i]);
             }
         }
-        let d: Vec<f64> = (0..n)
-            .map(|i| {
-                let b = self.backend[i];
-                (efac[b] * self.sigma[i]).powi(2) + equad2[b]
-            })
-            .collect();
-        if d.iter().any(|v| !(v.is_finite() && *v > 0.0)) {
-            return Err(non_finite("white-noise variance not positive"));
+        for i in 0..n {
+            let b = self.backend[i];
+            let di = (efac[b] * self.sigma[i]).powi(2) + equad2[b];
+            if !(di.is_finite() && di > 0.0) {
+                return Err(Error::NonFinite {
+                    what: format!(
+                        "the likelihood of pulsar {} (white-noise variance not positive)",
+                        self.label
+                    ),
+                });
+            }
+            w.d[i] = di;
+            w.sqrt_dinv[i] = 1.0 / di.sqrt();
+            w.wr[i] = self.residual[i] * w.sqrt_dinv[i];
         }
-        let sqrt_dinv: Vec<f64> = d.iter().map(|v| 1.0 / v.sqrt()).collect();
-
-        // Whitened T and r; ECORR's Sherman-Morrison terms per epoch.
-        let mut wa = self.t.clone();
-        for (mut row, &w) in wa.rows_mut().into_iter().zip(&sqrt_dinv) {
-            row *= w;
+        // Whitened T; ECORR's Sherman-Morrison terms per epoch (the fold of
+        // `reduce::ecorr_rows`, on this evaluation's buffers).
+        for ((mut dst, src), &sd) in
+            w.wa.rows_mut()
+                .into_iter()
+                .zip(self.t.rows())
+                .zip(&w.sqrt_dinv)
+        {
+            dst.zip_mut_with(&src, |x, &y| *x = y * sd);
         }
-        let wr: Array1<f64> = self
-            .residual
-            .iter()
-            .zip(&sqrt_dinv)
-            .map(|(r, w)| r * w)
-            .collect();
-        let sum_dinv: Vec<f64> = self
-            .epochs
-            .iter()
-            .map(|(_, idx)| idx.iter().map(|&i| sqrt_dinv[i] * sqrt_dinv[i]).sum())
-            .collect();
-        let fold: Vec<(Vec<usize>, f64)> = self
-            .epochs
-            .iter()
-            .zip(&sum_dinv)
-            .map(|((b, idx), &s)| (idx.clone(), ecorr_beta(ecorr2[*b], s).sqrt()))
-            .collect();
-        let v = ecorr_rows(&fold, &sqrt_dinv, &wa);
-        let gram = gram_n_inv(&wa, &v);
-        // Sum over an epoch of D^-1/2 x, times beta^(1/2), for a whitened vector x.
-        let epoch_sums = |x: &Array1<f64>| -> Array1<f64> {
-            fold.iter()
-                .map(|(idx, sb)| sb * idx.iter().map(|&i| sqrt_dinv[i] * x[i]).sum::<f64>())
-                .collect()
-        };
-        let mut tnr = wa.t().dot(&wr);
-        if !fold.is_empty() {
-            tnr -= &v.t().dot(&epoch_sums(&wr));
+        for (k, (b, idx)) in self.epochs.iter().enumerate() {
+            let sum: f64 = idx.iter().map(|&i| w.sqrt_dinv[i] * w.sqrt_dinv[i]).sum();
+            w.sum_dinv[k] = sum;
+            let sb = ecorr_beta(ecorr2[*b], sum).sqrt();
+            w.sqrt_beta[k] = sb;
+            let mut row = w.v.row_mut(k);
+            row.fill(0.0);
+            for &i in idx {
+                row.scaled_add(sb * w.sqrt_dinv[i], &w.wa.row(i));
+            }
         }
-
-        Ok(White {
+        // T^T N^-1 T = (D^-1/2 T)^T (D^-1/2 T) - V^T V: two symmetric rank-k updates.
+        syrk_tn(1.0, &w.wa, 0.0, &mut w.gram);
+        if !self.epochs.is_empty() {
+            syrk_tn(-1.0, &w.v, 1.0, &mut w.gram);
+        }
+        mirror_upper(&mut w.gram);
+        let es_r = self.epoch_sums(w, &w.wr);
+        let mut tnr = w.wa.t().dot(&ArrayView1::from(&w.wr[..]));
+        if !self.epochs.is_empty() {
+            tnr -= &w.v.t().dot(&es_r);
+        }
+        let rnr = w.wr.iter().map(|x| x * x).sum::<f64>() - es_r.dot(&es_r);
+        let log_det_n = self.log_det_n(&w.d, &w.sum_dinv, &ecorr2);
+        Ok(WhiteValues {
             efac,
             equad2,
             ecorr2,
-            d,
-            sqrt_dinv,
-            wa,
-            wr,
-            sum_dinv,
-            fold,
-            v,
-            gram,
             tnr,
+            rnr,
+            log_det_n,
         })
     }
 
-    /// T^T N^-1 T, T^T N^-1 r, r^T N^-1 r and ln det N at `theta`.
-    fn white_products(&self, theta: &[f64]) -> Result<(Array2<f64>, Array1<f64>, f64, f64)> {
-        self.check_theta(theta)?;
-        let w = self.white(theta)?;
-        let es: f64 = w
-            .fold
+    /// Per ECORR epoch: beta^(1/2) times the sum over its TOAs of D^-1/2 x, for a whitened
+    /// vector x.
+    fn epoch_sums(&self, w: &Work, x: &[f64]) -> Array1<f64> {
+        self.epochs
             .iter()
-            .map(|(idx, sb)| {
-                let x = sb * idx.iter().map(|&i| w.sqrt_dinv[i] * w.wr[i]).sum::<f64>();
-                x * x
-            })
-            .sum();
-        let rnr = w.wr.dot(&w.wr) - es;
-        let log_det_n = self.log_det_n(&w.d, &w.sum_dinv, &w.ecorr2);
-        Ok((w.gram, w.tnr, rnr, log_det_n))
+            .zip(&w.sqrt_beta)
+            .map(|((_, idx), sb)| sb * idx.iter().map(|&i| w.sqrt_dinv[i] * x[i]).sum::<f64>())
+            .collect()
     }
 
     /// ln det N: the diagonal and, per ECORR epoch, ln(1 + c^2 sum D^-1) (matrix determinant
@@ -714,52 +805,40 @@ impl PulsarLikelihood {
 
     fn evaluate(&self, theta: &[f64], grad: Option<&mut [f64]>) -> Result<f64> {
         self.check_theta(theta)?;
+        with_work(|w| self.evaluate_in(theta, grad, w))
+    }
+
+    fn evaluate_in(&self, theta: &[f64], grad: Option<&mut [f64]>, w: &mut Work) -> Result<f64> {
         let non_finite = |what: &str| Error::NonFinite {
             what: format!("the likelihood of pulsar {} ({what})", self.label),
         };
         let (n, cols) = self.t.dim();
-
-        let White {
+        let WhiteValues {
             efac,
             equad2,
             ecorr2,
-            d,
-            sqrt_dinv,
-            wa,
-            wr,
-            sum_dinv,
-            fold,
-            v,
-            gram,
             tnr,
-        } = self.white(theta)?;
-        // Sum over an epoch of D^-1/2 x, times beta^(1/2), for a whitened vector x.
-        let epoch_sums = |x: &Array1<f64>| -> Array1<f64> {
-            fold.iter()
-                .map(|(idx, sb)| sb * idx.iter().map(|&i| sqrt_dinv[i] * x[i]).sum::<f64>())
-                .collect()
-        };
-
+            log_det_n,
+            ..
+        } = self.fill_white(theta, w)?;
         let (phi, binv, red_share, common_share) = self.prior_variances(theta)?;
 
         // S = B^-1 + T^T N^-1 T, a = S^-1 T^T N^-1 r.
-        let mut s = gram.clone();
+        let mut s = w.gram.clone();
         for c in self.n_m..cols {
             s[[c, c]] += binv[c];
         }
-        let chol = ScaledCholesky::new(
-            &s,
-            &format!("S = B^-1 + T^T N^-1 T of pulsar {}", self.label),
-        )?;
-        let w_half = chol.whiten(&Array2::eye(cols)); // L^-1 D^-1, so S^-1 = W^T W
-        let a = w_half.t().dot(&w_half.dot(&tnr));
+        let chol = ScaledCholesky::from_owned(s, || {
+            format!("S = B^-1 + T^T N^-1 T of pulsar {}", self.label)
+        })?;
+        let a = chol.solve_vec(tnr.as_slice().expect("contiguous"));
 
         // r^T P r = |r - T a|^2_N^-1 + a^T B^-1 a: two non-negative terms, no cancellation.
-        let e = &wr - &wa.dot(&a);
-        let es = epoch_sums(&e);
-        let chi2 =
-            e.dot(&e) - es.dot(&es) + (self.n_m..cols).map(|c| binv[c] * a[c] * a[c]).sum::<f64>();
-        let log_det_n = self.log_det_n(&d, &sum_dinv, &ecorr2);
+        w.e.copy_from_slice(&w.wr);
+        general_mat_vec_mul(-1.0, &w.wa, &a, 1.0, &mut ArrayViewMut1::from(&mut w.e[..]));
+        let es = self.epoch_sums(w, &w.e);
+        let chi2 = w.e.iter().map(|x| x * x).sum::<f64>() - es.dot(&es)
+            + (self.n_m..cols).map(|c| binv[c] * a[c] * a[c]).sum::<f64>();
         let log_det_b: f64 = phi[self.n_m..].iter().map(|p| p.ln()).sum();
         let lnl = -0.5 * (chi2 + log_det_n + log_det_b + chol.log_det())
             - 0.5 * (n - self.n_m) as f64 * (2.0 * PI).ln();
@@ -777,54 +856,40 @@ impl PulsarLikelihood {
         }
         grad.iter_mut().for_each(|g| *g = 0.0);
 
-        // P r = N^-1 (r - T a), per TOA: D^-1/2 (e_i - D_i^-1/2 beta^(1/2) es_epoch).
-        let mut epoch_of = vec![usize::MAX; n];
-        for (k, (_, idx)) in self.epochs.iter().enumerate() {
-            for &i in idx {
-                epoch_of[i] = k;
-            }
-        }
-        let pr: Vec<f64> = (0..n)
-            .map(|i| {
-                let k = epoch_of[i];
-                let corr = if k == usize::MAX {
-                    0.0
-                } else {
-                    sqrt_dinv[i] * fold[k].1 * es[k]
-                };
-                sqrt_dinv[i] * (e[i] - corr)
-            })
-            .collect();
-        // N^-1 T (n x cols); diag(P)_i = (N^-1)_ii - (N^-1 T S^-1 T^T N^-1)_ii.
-        let mut nit = wa;
-        for (i, mut row) in nit.rows_mut().into_iter().enumerate() {
-            let k = epoch_of[i];
-            if k != usize::MAX {
-                row.scaled_add(-sqrt_dinv[i] * fold[k].1, &v.row(k));
-            }
-            row *= sqrt_dinv[i];
-        }
-        // With X = N^-1 T (n x cols, rows contiguous) and Y = X S^-1 (one dgemm),
-        // (N^-1 T S^-1 T^T N^-1)_ii = X_i . Y_i: row by row, no transposed copy.
-        let s_inv = w_half.t().dot(&w_half);
-        let y = nit.dot(&s_inv);
-        let diag_p: Vec<f64> = (0..n)
-            .map(|i| {
-                let k = epoch_of[i];
-                let beta = if k == usize::MAX {
-                    0.0
-                } else {
-                    fold[k].1 * fold[k].1
-                };
-                let di = sqrt_dinv[i] * sqrt_dinv[i];
-                di - beta * di * di - nit.row(i).dot(&y.row(i))
-            })
-            .collect();
-
-        // White noise: dD_ii = 2 EFAC sigma_i^2, or 2 ln 10 EQUAD^2, per backend.
+        // P r = N^-1 (r - T a), per TOA: D^-1/2 (e_i - D_i^-1/2 beta^(1/2) es_epoch); and
+        // N^-1 T in place of D^-1/2 T, row by row.
         for i in 0..n {
+            let k = self.epoch_of[i];
+            let sd = w.sqrt_dinv[i];
+            let mut row = w.wa.row_mut(i);
+            if k == usize::MAX {
+                w.pr[i] = sd * w.e[i];
+            } else {
+                let sb = w.sqrt_beta[k];
+                w.pr[i] = sd * (w.e[i] - sd * sb * es[k]);
+                row.scaled_add(-sd * sb, &w.v.row(k));
+            }
+            row *= sd;
+        }
+        // With X = N^-1 T, (N^-1 T S^-1 T^T N^-1)_ii = |Z_i|^2 for the rows of Z = X D^-1 L^-T
+        // (one triangular solve with n right-hand sides, in place; S = D L L^T D).
+        chol.whiten_rows(&mut w.wa);
+        let z = &w.wa;
+
+        // White noise: dD_ii = 2 EFAC sigma_i^2, or 2 ln 10 EQUAD^2, per backend;
+        // diag(P)_i = (N^-1)_ii - |Z_i|^2.
+        for i in 0..n {
+            let k = self.epoch_of[i];
+            let beta = if k == usize::MAX {
+                0.0
+            } else {
+                w.sqrt_beta[k] * w.sqrt_beta[k]
+            };
+            let di = w.sqrt_dinv[i] * w.sqrt_dinv[i];
+            let zi = z.row(i);
+            let diag_p = di - beta * di * di - zi.dot(&zi);
             let b = self.backend[i];
-            let h = pr[i] * pr[i] - diag_p[i];
+            let h = w.pr[i] * w.pr[i] - diag_p;
             if let Some(k) = self.white_index[b].efac {
                 grad[k] += 0.5 * 2.0 * efac[b] * self.sigma[i] * self.sigma[i] * h;
             }
@@ -832,34 +897,30 @@ impl PulsarLikelihood {
                 grad[k] += 0.5 * 2.0 * LN_10 * equad2[b] * h;
             }
         }
-        // ECORR: dC = 2 ln 10 c^2 1 1^T per epoch; 1^T P 1 = s/(1 + c^2 s) - 1^T N^-1 T S^-1 T^T N^-1 1.
+        // ECORR: dC = 2 ln 10 c^2 1 1^T per epoch;
+        // 1^T P 1 = s/(1 + c^2 s) - |sum of the epoch's rows of Z|^2.
+        let mut z1 = Array1::<f64>::zeros(cols);
         for (k, (b, idx)) in self.epochs.iter().enumerate() {
             let Some(g) = self.white_index[*b].ecorr else {
                 continue;
             };
             let c2 = ecorr2[*b];
-            let one_pr: f64 = idx.iter().map(|&i| pr[i]).sum();
-            // (1^T X) S^-1 (X^T 1) = (sum of X rows) . (sum of Y rows) over the epoch.
-            let mut x1 = Array1::<f64>::zeros(cols);
-            let mut y1 = Array1::<f64>::zeros(cols);
+            let one_pr: f64 = idx.iter().map(|&i| w.pr[i]).sum();
+            z1.fill(0.0);
             for &i in idx {
-                x1 += &nit.row(i);
-                y1 += &y.row(i);
+                z1 += &z.row(i);
             }
-            let one_p_one = sum_dinv[k] / (1.0 + c2 * sum_dinv[k]) - x1.dot(&y1);
+            let one_p_one = w.sum_dinv[k] / (1.0 + c2 * w.sum_dinv[k]) - z1.dot(&z1);
             grad[g] += 0.5 * 2.0 * LN_10 * c2 * (one_pr * one_pr - one_p_one);
         }
 
-        // Power laws: d ln L / d ln phi_j = 1/2 [a_j^2 / phi_j - (S^-1 T^T N^-1 T)_jj].
-        let h: Vec<f64> = (0..cols)
-            .map(|c| {
-                if c < self.n_m {
-                    0.0
-                } else {
-                    0.5 * (a[c] * a[c] * binv[c] - s_inv.row(c).dot(&gram.column(c)))
-                }
-            })
-            .collect();
+        // Power laws: d ln L / d ln phi_j = 1/2 [a_j^2 / phi_j - (S^-1 T^T N^-1 T)_jj], and
+        // (S^-1 T^T N^-1 T)_jj = 1 - (S^-1)_jj / phi_j since T^T N^-1 T = S - B^-1.
+        let s_inv = chol.inverse_diagonal();
+        let mut h = vec![0.0; cols];
+        for c in self.n_m..cols {
+            h[c] = 0.5 * (a[c] * a[c] * binv[c] - 1.0 + s_inv[c] * binv[c]);
+        }
         self.power_law_gradient(&h, &red_share, &common_share, grad);
         if let Some(k) = grad.iter().position(|g| !g.is_finite()) {
             return Err(non_finite(&format!("gradient in {}", self.params[k].name)));

@@ -21,6 +21,46 @@ extern "C" {
         c: *mut f64,
         ldc: std::ffi::c_int,
     );
+    fn cblas_dtrsm(
+        order: std::ffi::c_int,
+        side: std::ffi::c_int,
+        uplo: std::ffi::c_int,
+        trans: std::ffi::c_int,
+        diag: std::ffi::c_int,
+        m: std::ffi::c_int,
+        n: std::ffi::c_int,
+        alpha: f64,
+        a: *const f64,
+        lda: std::ffi::c_int,
+        b: *mut f64,
+        ldb: std::ffi::c_int,
+    );
+    fn cblas_dtrsv(
+        order: std::ffi::c_int,
+        uplo: std::ffi::c_int,
+        trans: std::ffi::c_int,
+        diag: std::ffi::c_int,
+        n: std::ffi::c_int,
+        a: *const f64,
+        lda: std::ffi::c_int,
+        x: *mut f64,
+        incx: std::ffi::c_int,
+    );
+    fn dtrtri_(
+        uplo: *const std::ffi::c_char,
+        diag: *const std::ffi::c_char,
+        n: *const std::ffi::c_int,
+        a: *mut f64,
+        lda: *const std::ffi::c_int,
+        info: *mut std::ffi::c_int,
+    );
+    fn dpotrf_(
+        uplo: *const std::ffi::c_char,
+        n: *const std::ffi::c_int,
+        a: *mut f64,
+        lda: *const std::ffi::c_int,
+        info: *mut std::ffi::c_int,
+    );
     fn dsyev_2stage_(
         jobz: *const std::ffi::c_char,
         uplo: *const std::ffi::c_char,
@@ -37,6 +77,15 @@ extern "C" {
 const CBLAS_ROW_MAJOR: std::ffi::c_int = 101;
 const CBLAS_TRANS: std::ffi::c_int = 112;
 const CBLAS_UPPER: std::ffi::c_int = 121;
+const CBLAS_NO_TRANS: std::ffi::c_int = 111;
+const CBLAS_LOWER: std::ffi::c_int = 122;
+const CBLAS_NON_UNIT: std::ffi::c_int = 131;
+const CBLAS_RIGHT: std::ffi::c_int = 142;
+
+/// A matrix dimension as a BLAS integer.
+fn blas_int(v: usize) -> std::ffi::c_int {
+    std::ffi::c_int::try_from(v).expect("matrix dimension fits a BLAS int")
+}
 
 /// Floating-point operations of `syrk_tn` on an `rows x cols` matrix: the upper triangle of
 /// A^T A, cols (cols + 1) / 2 inner products of length rows, each rows multiplies and adds.
@@ -62,7 +111,7 @@ pub fn syrk_tn(alpha: f64, a: &Array2<f64>, beta: f64, c: &mut Array2<f64>) {
         c.is_standard_layout(),
         "syrk_tn: c must be in standard layout"
     );
-    let to_int = |v: usize| std::ffi::c_int::try_from(v).expect("matrix dimension fits a BLAS int");
+    let to_int = blas_int;
     // SAFETY: both buffers are contiguous row-major with the leading dimensions given; dsyrk
     // reads rows x cols of `a` and writes the upper triangle of the cols x cols `c`.
     unsafe {
@@ -225,6 +274,13 @@ impl ScaledCholesky {
             }
             dinv[i] = 1.0 / d.sqrt();
         }
+        if n == 0 {
+            // LAPACK refuses an empty matrix (its leading dimension must be at least 1).
+            return Ok(ScaledCholesky {
+                l: Array2::zeros((0, 0)),
+                dinv,
+            });
+        }
         let mut scaled = s.clone();
         for ((i, j), v) in scaled.indexed_iter_mut() {
             *v *= dinv[i] * dinv[j];
@@ -239,7 +295,168 @@ impl ScaledCholesky {
                 pivot,
             }
         })?;
+        // Row-major storage, which the BLAS calls below assume.
+        let l = if l.is_standard_layout() {
+            l
+        } else {
+            l.as_standard_layout().into_owned()
+        };
         Ok(ScaledCholesky { l, dinv })
+    }
+
+    /// [`Self::new`] on a matrix it may overwrite, for small matrices factored many times
+    /// (a sampler's likelihood): scaled in place and handed to LAPACK's dpotrf directly, no
+    /// copy and no change of layout. Row-major storage of a symmetric matrix is its
+    /// column-major transpose, so LAPACK's upper factor U of that storage is, read row-major,
+    /// the lower factor L with S = L L^T. `what` names the matrix in the error.
+    pub fn from_owned(mut s: Array2<f64>, what: impl FnOnce() -> String) -> Result<Self> {
+        let n = s.nrows();
+        assert_eq!(s.ncols(), n, "from_owned: S must be square");
+        if !s.is_standard_layout() {
+            s = s.as_standard_layout().into_owned();
+        }
+        let mut dinv = Array1::zeros(n);
+        for i in 0..n {
+            let d = s[[i, i]];
+            if !(d.is_finite() && d > 0.0) {
+                return Err(Error::NotPositiveDefinite {
+                    what: what(),
+                    pivot: i + 1,
+                });
+            }
+            dinv[i] = 1.0 / d.sqrt();
+        }
+        if n == 0 {
+            return Ok(ScaledCholesky { l: s, dinv });
+        }
+        {
+            let flat = s.as_slice_mut().expect("standard layout");
+            let dv = dinv.as_slice().expect("contiguous");
+            for (i, row) in flat.chunks_exact_mut(n).enumerate() {
+                // Only the lower triangle (row-major) is read by the factorisation.
+                for (v, dj) in row[..=i].iter_mut().zip(dv) {
+                    *v *= dv[i] * dj;
+                }
+            }
+        }
+        let (uplo, ni) = (b'U' as std::ffi::c_char, blas_int(n));
+        let mut info: std::ffi::c_int = 0;
+        // SAFETY: `s` is a contiguous n x n array; dpotrf reads and overwrites one triangle.
+        unsafe { dpotrf_(&uplo, &ni, s.as_mut_ptr(), &ni, &mut info) };
+        if info != 0 {
+            return Err(Error::NotPositiveDefinite {
+                what: what(),
+                pivot: usize::try_from(info).unwrap_or(0),
+            });
+        }
+        // Clear the strict upper triangle (row-major), which still holds S.
+        let flat = s.as_slice_mut().expect("standard layout");
+        for (i, row) in flat.chunks_exact_mut(n).enumerate() {
+            row[i + 1..].iter_mut().for_each(|v| *v = 0.0);
+        }
+        Ok(ScaledCholesky { l: s, dinv })
+    }
+
+    /// Order of the factored matrix.
+    pub fn dim(&self) -> usize {
+        self.dinv.len()
+    }
+
+    /// Every row x_i of `x` (rows x dim, standard layout) replaced by (L^-1 D^-1 x_i)^T in
+    /// place, so that x_i^T S^-1 x_j = (row i) . (row j): one triangular solve with many
+    /// right-hand sides (BLAS dtrsm, Dongarra et al. 1990), rows x dim^2 operations, the rows
+    /// kept contiguous.
+    pub fn whiten_rows(&self, x: &mut Array2<f64>) {
+        let (rows, cols) = x.dim();
+        assert_eq!(cols, self.dim(), "whiten_rows: x must have dim columns");
+        assert!(x.is_standard_layout(), "whiten_rows: x must be row-major");
+        if rows == 0 || cols == 0 {
+            return;
+        }
+        for mut row in x.rows_mut() {
+            row *= &self.dinv;
+        }
+        // Row i of Z = X D^-1 L^-T solves Z L^T = X D^-1 (right side, L transposed); L is
+        // row-major with its lower triangle filled.
+        // SAFETY: `self.l` is a contiguous dim x dim row-major array, `x` a contiguous
+        // rows x dim row-major array; dtrsm reads L's lower triangle and overwrites x.
+        unsafe {
+            cblas_dtrsm(
+                CBLAS_ROW_MAJOR,
+                CBLAS_RIGHT,
+                CBLAS_LOWER,
+                CBLAS_TRANS,
+                CBLAS_NON_UNIT,
+                blas_int(rows),
+                blas_int(cols),
+                1.0,
+                self.l.as_ptr(),
+                blas_int(cols),
+                x.as_mut_ptr(),
+                blas_int(cols),
+            );
+        }
+    }
+
+    /// S^-1 b: two triangular solves (BLAS dtrsv) between the diagonal scalings.
+    pub fn solve_vec(&self, b: &[f64]) -> Array1<f64> {
+        let n = self.dim();
+        assert_eq!(b.len(), n, "solve_vec: b must have dim entries");
+        let mut x: Array1<f64> = b.iter().zip(&self.dinv).map(|(v, d)| v * d).collect();
+        if n == 0 {
+            return x;
+        }
+        let xs = x.as_slice_mut().expect("contiguous");
+        for trans in [CBLAS_NO_TRANS, CBLAS_TRANS] {
+            // SAFETY: L is a contiguous n x n row-major array, x holds n values.
+            unsafe {
+                cblas_dtrsv(
+                    CBLAS_ROW_MAJOR,
+                    CBLAS_LOWER,
+                    trans,
+                    CBLAS_NON_UNIT,
+                    blas_int(n),
+                    self.l.as_ptr(),
+                    blas_int(n),
+                    xs.as_mut_ptr(),
+                    1,
+                );
+            }
+        }
+        x *= &self.dinv;
+        x
+    }
+
+    /// The diagonal of S^-1, (S^-1)_jj = D_jj^-2 sum_k (L^-1)_kj^2, from the inverse of the
+    /// triangular factor (LAPACK dtrtri, dim^3 / 3 operations; Anderson et al. 1999), not from
+    /// S^-1 itself.
+    pub fn inverse_diagonal(&self) -> Vec<f64> {
+        let n = self.dim();
+        if n == 0 {
+            return Vec::new();
+        }
+        let mut inv = self.l.clone();
+        // Row-major L read column-major is L^T, an upper triangle; its inverse read row-major
+        // again is L^-1.
+        let (uplo, diag) = (b'U' as std::ffi::c_char, b'N' as std::ffi::c_char);
+        let ni = blas_int(n);
+        let mut info: std::ffi::c_int = 0;
+        // SAFETY: `inv` is a contiguous n x n array; dtrtri overwrites its triangle in place.
+        unsafe { dtrtri_(&uplo, &diag, &ni, inv.as_mut_ptr(), &ni, &mut info) };
+        if info != 0 {
+            // Only a zero pivot fails, which a successful Cholesky factor cannot have.
+            return vec![f64::NAN; n];
+        }
+        let mut out = vec![0.0; n];
+        for (k, row) in inv.rows().into_iter().enumerate() {
+            for (j, v) in row.iter().enumerate().take(k + 1) {
+                out[j] += v * v;
+            }
+        }
+        out.iter_mut()
+            .zip(&self.dinv)
+            .for_each(|(o, d)| *o *= d * d);
+        out
     }
 
     /// L^-1 D^-1 b, so that b^T S^-1 c = (whiten b)^T (whiten c).
@@ -367,6 +584,10 @@ mod tests {
             Err(Error::NotPositiveDefinite { pivot, .. }) => assert_eq!(pivot, 3),
             other => panic!("expected a pivot-3 failure, got {:?}", other.err()),
         }
+        match ScaledCholesky::from_owned(s, || "test matrix".into()) {
+            Err(Error::NotPositiveDefinite { pivot, .. }) => assert_eq!(pivot, 3),
+            other => panic!("expected a pivot-3 failure, got {:?}", other.err()),
+        }
     }
 
     #[test]
@@ -391,6 +612,45 @@ mod tests {
             assert!((v - (i as f64 - 40.0) * 0.5).abs() < 1e-13);
         }
         assert!(symmetric_eigenvalues(Array2::from_elem((3, 3), f64::NAN)).is_none());
+    }
+
+    #[test]
+    fn triangular_helpers_match_the_explicit_inverse() {
+        // Against S^-1 from ndarray-linalg's general inverse (LU, LAPACK dgetrf/dgetri), on a
+        // badly scaled symmetric positive-definite S (the case the diagonal scaling is for).
+        use ndarray_linalg::Inverse;
+        let n = 9;
+        let b = Array2::from_shape_fn((n, n), |(i, j)| ((i * 7 + j * 5) % 13) as f64 - 6.0);
+        let scale = Array1::from_iter((0..n).map(|i| 10f64.powi(i as i32 - 4)));
+        let mut s = b.t().dot(&b) + Array2::<f64>::eye(n) * 3.0;
+        for ((i, j), v) in s.indexed_iter_mut() {
+            *v *= scale[i] * scale[j];
+        }
+        let inv = s.inv().unwrap();
+        let chol = ScaledCholesky::new(&s, "test").unwrap();
+        let owned = ScaledCholesky::from_owned(s.clone(), || "test".into()).unwrap();
+        assert!((owned.log_det() - chol.log_det()).abs() < 1e-12 * chol.log_det().abs());
+        for (a, b) in owned.l.iter().zip(chol.l.iter()) {
+            assert!((a - b).abs() < 1e-12, "{a} vs {b}");
+        }
+        for (j, d) in chol.inverse_diagonal().iter().enumerate() {
+            assert!((d - inv[[j, j]]).abs() < 1e-10 * inv[[j, j]], "{j}");
+        }
+        let rhs: Vec<f64> = (0..n).map(|i| (i as f64 - 3.0) * scale[i]).collect();
+        let x = chol.solve_vec(&rhs);
+        let want = inv.dot(&Array1::from(rhs));
+        for (a, w) in x.iter().zip(want.iter()) {
+            assert!((a - w).abs() < 1e-9 * want.iter().fold(0.0f64, |m, v| m.max(v.abs())));
+        }
+        let mut rows =
+            Array2::from_shape_fn((5, n), |(i, j)| (i as f64 + 1.0) * scale[j] * j as f64);
+        let orig = rows.clone();
+        chol.whiten_rows(&mut rows);
+        let quad = orig.dot(&inv).dot(&orig.t());
+        let got = rows.dot(&rows.t());
+        for (a, w) in got.iter().zip(quad.iter()) {
+            assert!((a - w).abs() < 1e-9 * quad[[4, 4]], "{a} vs {w}");
+        }
     }
 
     #[test]

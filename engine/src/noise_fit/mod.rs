@@ -45,6 +45,10 @@ pub struct NoiseSettings {
     pub map: MapSettings,
     pub mode: SampleMode,
     pub sampler: SamplerSettings,
+    /// Chains whose draws miss the convergence thresholds after `sampler.draws` draws are
+    /// continued in blocks up to this many kept draws per chain (at least `sampler.draws`;
+    /// `None`: 4 x `sampler.draws`; equal to `sampler.draws`: never continued).
+    pub max_draws: Option<u64>,
     pub convergence: Convergence,
     pub values: ModelValues,
     /// The pulsars of this shard (contiguous block of the release's order); recorded in the
@@ -60,6 +64,7 @@ impl Default for NoiseSettings {
             map: MapSettings::default(),
             mode: SampleMode::Full,
             sampler: SamplerSettings::default(),
+            max_draws: None,
             convergence: Convergence::default(),
             values: ModelValues::Median,
             shard: Shard::ALL,
@@ -290,6 +295,7 @@ pub fn fit_pulsar(
             &post,
             &map.values,
             &settings.sampler,
+            settings.max_draws_per_chain(),
             &settings.convergence,
             settings.seed,
             index,
@@ -305,6 +311,7 @@ pub fn fit_pulsar(
                     &fixed,
                     &start,
                     &settings.sampler,
+                    settings.max_draws_per_chain(),
                     &settings.convergence,
                     settings.seed,
                     index,
@@ -386,8 +393,27 @@ pub fn check_settings(settings: &NoiseSettings) -> Result<()> {
     }
     if settings.mode != SampleMode::MapOnly {
         settings.sampler.check()?;
+        let cap = settings.max_draws_per_chain();
+        if cap < settings.sampler.draws || cap > crate::sampler::MAX_DRAWS {
+            return Err(Error::setting(
+                "max-draws",
+                format!(
+                    "{cap} is outside [{}, {}] (at least --draws)",
+                    settings.sampler.draws,
+                    crate::sampler::MAX_DRAWS
+                ),
+            ));
+        }
     }
     Ok(())
+}
+
+impl NoiseSettings {
+    /// The most kept draws per chain: `max_draws`, or 4 x `sampler.draws` when unset.
+    pub fn max_draws_per_chain(&self) -> u64 {
+        self.max_draws
+            .unwrap_or_else(|| self.sampler.draws.saturating_mul(4))
+    }
 }
 
 /// Fit the pulsars of `settings.shard` in parallel (one rayon task per pulsar, chains in

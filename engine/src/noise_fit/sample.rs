@@ -9,7 +9,7 @@ use crate::error::{Error, Result};
 use crate::rng::Purpose;
 use crate::sampler::diagnostics::{Summary, ESS_MIN, RHAT_MAX};
 use crate::sampler::{
-    chain_table, map_draws, sample, summarise_coordinates, ChainDraws, SamplerSettings,
+    chain_table, map_draws, sample_until, summarise_coordinates, ChainDraws, SamplerSettings,
 };
 use serde::{Deserialize, Serialize};
 
@@ -111,11 +111,15 @@ impl PulsarSamples {
 
 /// Sample the posterior `post` of pulsar number `pulsar_index` from the free values `start`
 /// (the MAP): chain c draws from `rng::stream(seed, NoiseChain, (pulsar_index << 16) | c)`.
-/// `done` is called after each chain.
+/// When after `settings.draws` draws per chain some parameter misses the `convergence`
+/// thresholds, the chains are run longer ([`sample_until`]), up to `max_draws` per chain
+/// (equal to `settings.draws`: never). `done` is called after each chain.
+#[allow(clippy::too_many_arguments)]
 pub fn sample_pulsar(
     post: &Posterior,
     start: &[f64],
     settings: &SamplerSettings,
+    max_draws: u64,
     convergence: &Convergence,
     seed: u64,
     pulsar_index: u64,
@@ -128,25 +132,50 @@ pub fn sample_pulsar(
         .into_iter()
         .map(|x| x.clamp(-4.0, 4.0))
         .collect();
-    let chains = sample(
+    let free = post.free().to_vec();
+    let to_physical = |x: &[f64]| -> Vec<f64> {
+        let theta = post.theta(x);
+        free.iter().map(|&i| theta[i]).collect()
+    };
+    // A longer run when some parameter misses the thresholds: ESS grows about in proportion
+    // to the draws, so ask for the draws that would give 1.2 x the threshold at the smallest
+    // ESS seen (at least 1.5 x as many; twice as many when only R-hat fails).
+    let more = |chains: &[ChainDraws]| -> Option<u64> {
+        let summaries = summarise_coordinates(&map_draws(chains, &to_physical));
+        if summaries
+            .iter()
+            .all(|s| s.converged(convergence.rhat_max, convergence.ess_min))
+        {
+            return None;
+        }
+        let have = chains.first().map_or(0, |c| c.len()) as f64;
+        let min_ess = summaries
+            .iter()
+            .map(|s| s.ess_bulk.min(s.ess_tail))
+            .fold(f64::INFINITY, f64::min);
+        let grow = if min_ess.is_finite() && min_ess > 0.0 && min_ess < convergence.ess_min {
+            (1.2 * convergence.ess_min / min_ess).max(1.5)
+        } else {
+            2.0
+        };
+        Some((have * grow).ceil() as u64)
+    };
+    let chains = sample_until(
         post,
         &x0,
         settings,
+        max_draws,
+        &more,
         seed,
         Purpose::NoiseChain,
         pulsar_index,
         done,
     )?;
-    let free = post.free().to_vec();
     let lik = post.likelihood();
     let parameters: Vec<String> = free
         .iter()
         .map(|&i| lik.parameters()[i].name.clone())
         .collect();
-    let to_physical = |x: &[f64]| -> Vec<f64> {
-        let theta = post.theta(x);
-        free.iter().map(|&i| theta[i]).collect()
-    };
     let physical = map_draws(&chains, &to_physical);
     let summaries = summarise_coordinates(&physical);
     let divergences: usize = chains.iter().map(ChainDraws::divergences).sum();

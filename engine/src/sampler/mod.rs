@@ -335,6 +335,60 @@ pub fn sample<D: LogDensity>(
         .collect()
 }
 
+/// Like [`sample`] with `settings.draws` kept draws per chain; then, while `more` (judged on
+/// all chains' draws, e.g. their effective sample sizes) asks for a longer run, every chain is
+/// run again from its start with the number of kept draws `more` names (capped at
+/// `max_draws`). A chain's first draws do not depend on how many follow (`nuts-rs` adapts
+/// during the warm-up only, and draws its random numbers in order from the chain's own
+/// generator), so the longer run extends the shorter one draw for draw; it is recomputed
+/// rather than continued because a `nuts-rs` chain cannot move between threads. The decisions
+/// depend on the draws alone, so the result still depends on (seed, purpose, item) alone,
+/// whatever the thread count. Each returned chain's `gradient_evaluations` includes those of
+/// the shorter runs. `done` is called once per chain when it is final.
+#[allow(clippy::too_many_arguments)]
+pub fn sample_until<D: LogDensity>(
+    density: &D,
+    start: &[f64],
+    settings: &SamplerSettings,
+    max_draws: u64,
+    more: &(dyn Fn(&[ChainDraws]) -> Option<u64> + Sync),
+    seed: u64,
+    purpose: Purpose,
+    item: u64,
+    done: &(dyn Fn(usize) + Sync),
+) -> Result<Vec<ChainDraws>> {
+    if max_draws < settings.draws || max_draws > MAX_DRAWS {
+        return Err(Error::setting(
+            "max-draws",
+            format!(
+                "{max_draws} is outside [{}, {MAX_DRAWS}] (at least --draws)",
+                settings.draws
+            ),
+        ));
+    }
+    let mut run = *settings;
+    let mut spent = vec![0u64; settings.chains];
+    loop {
+        let mut chains = sample(density, start, &run, seed, purpose, item, &|_| {})?;
+        for (c, s) in chains.iter_mut().zip(&mut spent) {
+            *s += c.gradient_evaluations;
+            c.gradient_evaluations = *s;
+        }
+        let next = if run.draws >= max_draws {
+            None
+        } else {
+            more(&chains).map(|d| d.clamp(run.draws + 1, max_draws))
+        };
+        match next {
+            Some(d) => run.draws = d,
+            None => {
+                (0..chains.len()).for_each(done);
+                return Ok(chains);
+            }
+        }
+    }
+}
+
 /// The chain table of an item's draws: `parameters` name the columns of `mapped` (the draws of
 /// `chains` in the reported scale, [`map_draws`]); `log_posterior` is the log density on the
 /// sampler's unconstrained scale.
@@ -418,6 +472,102 @@ mod tests {
     /// |estimate - truth| <= z * sd / sqrt(ESS): the Monte Carlo error of a mean (e.g. Geyer
     /// 1992, sec. 1). z = 4.4 gives a two-sided false-failure rate of 1e-5 per check.
     const Z: f64 = 4.4;
+
+    #[test]
+    fn a_longer_run_extends_the_shorter_one_draw_for_draw() {
+        // The premise of `sample_until`: a chain's first draws do not depend on how many
+        // follow, so re-running with more draws continues the shorter run exactly.
+        let target = Gaussian {
+            mu: vec![0.5, -1.0],
+            precision: vec![vec![2.0, 0.3], vec![0.3, 1.0]],
+        };
+        let short = SamplerSettings {
+            warmup: 40,
+            draws: 30,
+            chains: 2,
+            ..SamplerSettings::default()
+        };
+        let long = SamplerSettings { draws: 75, ..short };
+        let none = |_: usize| {};
+        let a = sample(
+            &target,
+            &[0.0, 0.0],
+            &short,
+            3,
+            Purpose::NoiseChain,
+            9,
+            &none,
+        )
+        .unwrap();
+        let b = sample(
+            &target,
+            &[0.0, 0.0],
+            &long,
+            3,
+            Purpose::NoiseChain,
+            9,
+            &none,
+        )
+        .unwrap();
+        for (x, y) in a.iter().zip(&b) {
+            assert_eq!(x.values[..], y.values[..x.values.len()]);
+            assert_eq!(x.log_density[..], y.log_density[..x.len()]);
+        }
+        // Asked once for 75 draws, then satisfied: the same draws as the direct long run, and
+        // the work of both runs counted.
+        let asked = std::sync::atomic::AtomicUsize::new(0);
+        let more = |c: &[ChainDraws]| {
+            asked.fetch_add(1, std::sync::atomic::Ordering::SeqCst);
+            (c[0].len() < 75).then_some(75)
+        };
+        let u = sample_until(
+            &target,
+            &[0.0, 0.0],
+            &short,
+            200,
+            &more,
+            3,
+            Purpose::NoiseChain,
+            9,
+            &none,
+        )
+        .unwrap();
+        assert_eq!(asked.load(std::sync::atomic::Ordering::SeqCst), 2);
+        for ((x, y), z) in u.iter().zip(&b).zip(&a) {
+            assert_eq!(x.values, y.values);
+            assert_eq!(
+                x.gradient_evaluations,
+                y.gradient_evaluations + z.gradient_evaluations
+            );
+        }
+        // The cap holds, and a cap below the first run is a setting error.
+        let always = |_: &[ChainDraws]| Some(1_000);
+        let capped = sample_until(
+            &target,
+            &[0.0, 0.0],
+            &short,
+            50,
+            &always,
+            3,
+            Purpose::NoiseChain,
+            9,
+            &none,
+        )
+        .unwrap();
+        assert!(capped.iter().all(|c| c.len() == 50));
+        assert!(sample_until(
+            &target,
+            &[0.0, 0.0],
+            &short,
+            20,
+            &always,
+            3,
+            Purpose::NoiseChain,
+            9,
+            &none
+        )
+        .is_err());
+    }
 
     #[test]
     fn standard_normal_moments_within_monte_carlo_error() {
