@@ -31,6 +31,9 @@ pub enum FolderKind {
     Inject,
     /// `ptacorr noise`: estimates.csv, diagnostics.csv, provenance.json (figure/noise.rs).
     Noise,
+    /// `ptacorr common`: posterior-fixed-index.csv, summary.json, posterior-grid.csv,
+    /// marginals.csv (figure/common.rs). Its summary.json is not a correlate folder's.
+    Common,
 }
 
 impl FolderKind {
@@ -40,6 +43,7 @@ impl FolderKind {
             FolderKind::Null => "null",
             FolderKind::Inject => "inject",
             FolderKind::Noise => "noise",
+            FolderKind::Common => "common",
         }
     }
 
@@ -52,6 +56,12 @@ impl FolderKind {
                 ptacorr::noise_fit::ESTIMATES_FILE,
                 ptacorr::noise_fit::DIAGNOSTICS_FILE,
                 ptacorr::noise_fit::PROVENANCE_FILE,
+            ],
+            FolderKind::Common => &[
+                ptacorr::common::FIXED_INDEX_FILE,
+                ptacorr::common::COMMON_SUMMARY_FILE,
+                ptacorr::common::GRID_FILE,
+                ptacorr::common::MARGINALS_FILE,
             ],
         }
     }
@@ -69,12 +79,18 @@ pub fn detect_kinds(dir: &Path) -> Result<Vec<FolderKind>, FigureError> {
         });
     }
     let mut kinds = Vec::new();
+    // A common folder's summary.json is its own, not a correlate folder's.
+    let common = dir.join(FolderKind::Common.files()[0]).is_file();
     for kind in [
         FolderKind::Correlate,
         FolderKind::Null,
         FolderKind::Inject,
         FolderKind::Noise,
+        FolderKind::Common,
     ] {
+        if common && kind == FolderKind::Correlate {
+            continue;
+        }
         let files = kind.files();
         if dir.join(files[0]).is_file() {
             for f in &files[1..] {
@@ -93,8 +109,9 @@ pub fn detect_kinds(dir: &Path) -> Result<Vec<FolderKind>, FigureError> {
         return Err(FigureError::UnknownFolder {
             dir: dir.to_path_buf(),
             reason: format!(
-                "none of {SUMMARY_JSON}, {NULL_JSON}, {RECOVERY_JSON} or {} is there",
-                ptacorr::noise_fit::ESTIMATES_FILE
+                "none of {SUMMARY_JSON}, {NULL_JSON}, {RECOVERY_JSON}, {} or {} is there",
+                ptacorr::noise_fit::ESTIMATES_FILE,
+                ptacorr::common::FIXED_INDEX_FILE
             ),
         });
     }
