@@ -3,10 +3,10 @@
 
 use anyhow::{Context, Result};
 use ptacorr::common::{
-    check_draws, comparison_name, draw_curn, estimate_free_spectrum_cost, fit_common, read_fitted_common, sample_free_spectrum,
-    write_free_spectrum, AmplitudePrior, CommonData, CommonModel, CommonSettings, DrawIndex,
-    DrawSettings, FitStatistic, FittedCommon, FreeSpectrumSettings, COMMON_ASSUMPTIONS,
-    FREE_SPECTRUM_ASSUMPTIONS,
+    check_draws, comparison_name, draw_curn, estimate_free_spectrum_cost, fit_common,
+    read_fitted_common, sample_free_spectrum, write_free_spectrum, AmplitudePrior, CommonData,
+    CommonModel, CommonSettings, DrawIndex, DrawSettings, FitStatistic, FittedCommon,
+    FreeSpectrumSettings, COMMON_ASSUMPTIONS, FREE_SPECTRUM_ASSUMPTIONS,
 };
 use ptacorr::output::OutputSet;
 use ptacorr::release::read_release;
@@ -195,7 +195,6 @@ pub fn run(args: &CommonArgs) -> Result<()> {
         // sampling, with advice.
         for &m in &fs.models {
             let c = estimate_free_spectrum_cost(&data, m, fs)?;
-            let minutes = c.seconds / 60.0;
             eprintln!(
                 "free spectrum of {}: one gradient factors a {}x{} matrix ({:.2e} flop), measured {:.3} s; about {} gradients ({} chains x {} iterations x {} leapfrog steps, a typical tree; not a bound) on {} threads: about {:.1} min",
                 m.name(),
@@ -205,16 +204,16 @@ pub fn run(args: &CommonArgs) -> Result<()> {
                 c.seconds_per_gradient,
                 c.gradients,
                 fs.sampler.chains,
-                fs.sampler.warmup + fs.sampler.draws,
+                c.iterations,
                 ptacorr::common::ASSUMED_STEPS_PER_ITERATION,
                 c.threads,
-                minutes
+                c.minutes
             );
-            if minutes > args.free_spectrum_max_minutes {
+            if c.minutes > args.free_spectrum_max_minutes {
                 anyhow::bail!(
                     "invalid setting free-spectrum: the {} free spectrum would take about {:.0} min (more than --free-spectrum-max-minutes {}): its cost grows as (rank x 2K)^3 per gradient; use fewer --frequencies (the cost falls as K^3), fewer --free-spectrum-draws/--free-spectrum-warmup, the curn model alone, or raise --free-spectrum-max-minutes",
                     m.name(),
-                    minutes,
+                    c.minutes,
                     args.free_spectrum_max_minutes
                 );
             }

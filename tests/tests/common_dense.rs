@@ -604,7 +604,10 @@ fn free_spectrum_cost_estimate_counts_the_factored_dimension_and_the_gradients()
         let c = estimate_free_spectrum_cost(&data, m, &fs).unwrap();
         assert_eq!(c.dimension, d, "{}", m.name());
         let df = d as f64;
-        assert_eq!(c.flops_per_gradient, blocks as f64 * (df.powi(3) / 3.0 + df.powi(3)));
+        assert_eq!(
+            c.flops_per_gradient,
+            blocks as f64 * (df.powi(3) / 3.0 + df.powi(3))
+        );
         assert_eq!(c.gradients, 3 * 300 * ASSUMED_STEPS_PER_ITERATION);
         assert!(c.seconds_per_gradient > 0.0 && c.seconds.is_finite() && c.seconds > 0.0);
     }

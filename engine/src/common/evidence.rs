@@ -562,7 +562,7 @@ where
     E: FnMut(&[f64]) -> Result<Vec<(T, f64)>>,
 {
     let n0 = start.len();
-    debug_assert!(n0 >= 3 && n0 % 2 == 1);
+    debug_assert!(n0 >= 3 && !n0.is_multiple_of(2));
     let width = start[n0 - 1] - start[0];
     let mut xs: Vec<f64> = start.to_vec();
     let mut payload: Vec<T> = Vec::new();
@@ -575,7 +575,7 @@ where
     let mut halves: Vec<[usize; 3]> = Vec::new();
     // Intervals with all five nodes (a, a + h/4, midpoint, b - h/4, b).
     let mut ready: Vec<[usize; 5]> = Vec::new();
-    if (n0 - 1) % 4 == 0 {
+    if (n0 - 1).is_multiple_of(4) {
         ready = (0..(n0 - 1) / 4)
             .map(|p| [4 * p, 4 * p + 1, 4 * p + 2, 4 * p + 3, 4 * p + 4])
             .collect();

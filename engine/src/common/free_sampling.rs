@@ -121,8 +121,12 @@ pub struct FreeSpectrumCost {
     pub seconds_per_gradient: f64,
     /// chains x (warm-up + draws) x [`ASSUMED_STEPS_PER_ITERATION`].
     pub gradients: u64,
+    /// Iterations per chain (warm-up + draws).
+    pub iterations: u64,
     /// Expected wall time with the chains spread over `threads` threads.
     pub seconds: f64,
+    /// The same in minutes.
+    pub minutes: f64,
     pub threads: usize,
 }
 
@@ -152,13 +156,16 @@ pub fn estimate_free_spectrum_cost(
     let gradients = s.chains as u64 * (s.warmup + s.draws) * ASSUMED_STEPS_PER_ITERATION;
     let threads = rayon::current_num_threads().max(1);
     let waves = s.chains.div_ceil(threads).max(1) as f64;
+    let seconds = best * (gradients / s.chains as u64) as f64 * waves;
     Ok(FreeSpectrumCost {
         model,
         dimension,
         flops_per_gradient: blocks as f64 * (d * d * d / 3.0 + d * d * d),
         seconds_per_gradient: best,
         gradients,
-        seconds: best * (gradients / s.chains as u64) as f64 * waves,
+        iterations: s.warmup + s.draws,
+        seconds,
+        minutes: seconds / 60.0,
         threads,
     })
 }

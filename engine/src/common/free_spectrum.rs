@@ -92,7 +92,11 @@ impl FreeSpectrum {
 
     /// The size of the largest block factored per gradient.
     pub fn largest_block(&self) -> usize {
-        self.blocks.iter().map(|(m, _)| m.nrows()).max().unwrap_or(0)
+        self.blocks
+            .iter()
+            .map(|(m, _)| m.nrows())
+            .max()
+            .unwrap_or(0)
     }
 
     /// The number of independent blocks (pulsars for CURN, one for a pattern).
