@@ -83,7 +83,7 @@ pub struct CommonArgs {
     free_spectrum_chains: usize,
     /// Refuse to sample a free spectrum whose estimated wall time (measured gradient cost times
     /// the expected number of gradients) exceeds this many minutes.
-    #[arg(long, default_value_t = 60.0)]
+    #[arg(long, default_value_t = 10.0)]
     free_spectrum_max_minutes: f64,
 }
 
