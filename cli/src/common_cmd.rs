@@ -3,10 +3,10 @@
 
 use anyhow::{Context, Result};
 use ptacorr::common::{
-    check_draws, comparison_name, draw_curn, fit_common, read_fitted_common, sample_free_spectrum,
-    write_free_spectrum, AmplitudePrior, CommonData, CommonModel, CommonSettings, DrawIndex,
-    DrawSettings, FitStatistic, FittedCommon, FreeSpectrumSettings, COMMON_ASSUMPTIONS,
-    FREE_SPECTRUM_ASSUMPTIONS,
+    check_draws, comparison_name, draw_curn, estimate_free_spectrum_cost, fit_common,
+    read_fitted_common, sample_free_spectrum, write_free_spectrum, AmplitudePrior, CommonData,
+    CommonModel, CommonSettings, DrawIndex, DrawSettings, FitStatistic, FittedCommon,
+    FreeSpectrumSettings, COMMON_ASSUMPTIONS, FREE_SPECTRUM_ASSUMPTIONS,
 };
 use ptacorr::output::OutputSet;
 use ptacorr::release::read_release;
@@ -38,11 +38,13 @@ pub struct CommonArgs {
     /// Prior range of the spectral index: LO,HI.
     #[arg(long, default_value = "0,7")]
     index_range: String,
-    /// Number of spectral-index nodes the rule starts from (odd; Simpson's rule; the spacing is
-    /// halved until the evidence changes by less than --index-tolerance).
+    /// Number of equally spaced spectral-index nodes the rule starts from (odd; locally adaptive
+    /// Simpson: only the intervals whose error estimate is above their share of
+    /// --index-tolerance are split, up to 1025 nodes).
     #[arg(long, default_value_t = 41)]
     index_points: usize,
-    /// Relative change of the varied-index evidence at which the gamma rule stops refining.
+    /// Relative error of the varied-index evidence the gamma rule aims for (each interval gets
+    /// its share in proportion to its width).
     #[arg(long, default_value_t = 1e-3)]
     index_tolerance: f64,
     /// The fixed spectral index.
@@ -79,6 +81,10 @@ pub struct CommonArgs {
     /// NUTS chains of the free spectrum (at least 2, for R-hat).
     #[arg(long, default_value_t = 4)]
     free_spectrum_chains: usize,
+    /// Refuse to sample a free spectrum whose estimated wall time (measured gradient cost times
+    /// the expected number of gradients) exceeds this many minutes.
+    #[arg(long, default_value_t = 10.0)]
+    free_spectrum_max_minutes: f64,
 }
 
 #[derive(Clone, Copy, clap::ValueEnum)]
@@ -153,6 +159,12 @@ impl CommonArgs {
             seed: self.seed,
         };
         s.check()?;
+        if !(self.free_spectrum_max_minutes.is_finite() && self.free_spectrum_max_minutes > 0.0) {
+            anyhow::bail!(
+                "invalid setting free-spectrum-max-minutes: must be a positive number of minutes, got {}",
+                self.free_spectrum_max_minutes
+            );
+        }
         Ok(Some(s))
     }
 
@@ -178,6 +190,35 @@ pub fn run(args: &CommonArgs) -> Result<()> {
     let rel = read_release(&args.release)
         .with_context(|| format!("reading release {}", args.release.display()))?;
     let data = CommonData::from_release(&rel, &rel.noise, settings.n_frequencies)?;
+    if let Some(fs) = &free_settings {
+        // The cost of every model first, so a run that would take hours stops before any
+        // sampling, with advice.
+        for &m in &fs.models {
+            let c = estimate_free_spectrum_cost(&data, m, fs)?;
+            eprintln!(
+                "free spectrum of {}: one gradient factors a {}x{} matrix ({:.2e} flop), measured {:.3} s; about {} gradients ({} chains x {} iterations x {} leapfrog steps, a typical tree; not a bound) on {} threads: about {:.1} min",
+                m.name(),
+                c.dimension,
+                c.dimension,
+                c.flops_per_gradient,
+                c.seconds_per_gradient,
+                c.gradients,
+                fs.sampler.chains,
+                c.iterations,
+                ptacorr::common::ASSUMED_STEPS_PER_ITERATION,
+                c.threads,
+                c.minutes
+            );
+            if c.minutes > args.free_spectrum_max_minutes {
+                anyhow::bail!(
+                    "invalid setting free-spectrum: the {} free spectrum would take about {:.0} min (more than --free-spectrum-max-minutes {}): its cost grows as (rank x 2K)^3 per gradient; use fewer --frequencies (the cost falls as K^3), fewer --free-spectrum-draws/--free-spectrum-warmup, the curn model alone, or raise --free-spectrum-max-minutes",
+                    m.name(),
+                    c.minutes,
+                    args.free_spectrum_max_minutes
+                );
+            }
+        }
+    }
     let fit = fit_common(&data, &settings)?;
     let draws = draw_curn(
         &data,

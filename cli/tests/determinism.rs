@@ -1,6 +1,6 @@
 //! Issue 9.8: every artefact of a fixed seed is byte-identical across runs and thread counts.
 //! One chain of commands (simulate, correlate, a simulated null, an injection campaign, noise
-//! estimation of two pulsars, the
+//! estimation of two pulsars, a common-process fit, the
 //! figure of each folder in SVG, PNG and PDF, and the report) runs twice, once with
 //! RAYON_NUM_THREADS=1 and once with 2, and every file written is compared byte for byte
 //! (the `.lock` file, empty, is the one file left out: it is the folder lock, not an output).
@@ -100,13 +100,25 @@ fn chain(root: &Path, threads: &str) {
         "--out",
         "noi",
     ]);
-    for dir in ["cor", "nul", "inj", "noi"] {
+    run(&[
+        "common",
+        "rel",
+        "--frequencies",
+        "5",
+        "--index-points",
+        "9",
+        "--draws",
+        "50",
+        "--out",
+        "com",
+    ]);
+    for dir in ["cor", "nul", "inj", "noi", "com"] {
         for format in ["svg", "png", "pdf"] {
             let out = format!("fig-{dir}-{format}");
             run(&["plot", dir, "--format", format, "--out", &out]);
         }
     }
-    run(&["report", "cor", "nul", "inj", "noi", "--out", "rep"]);
+    run(&["report", "cor", "nul", "inj", "noi", "com", "--out", "rep"]);
 }
 
 #[test]
@@ -120,8 +132,8 @@ fn every_artefact_is_byte_identical_across_runs_and_thread_counts() {
     assert_eq!(names(&ta), names(&tb), "the two runs wrote different files");
     let pdfs = ta.iter().filter(|(n, _)| n.ends_with(".pdf")).count();
     // correlate draws two figures (angular correlation, per-frequency), null and inject one,
-    // noise one per pulsar (two).
-    assert_eq!(pdfs, 6, "one PDF per figure");
+    // noise one per pulsar (two), common two (amplitude posterior, credible regions).
+    assert_eq!(pdfs, 8, "one PDF per figure");
     let differ: Vec<&str> = ta
         .iter()
         .zip(&tb)

@@ -86,6 +86,7 @@ enum Loaded {
     Null(Box<NullData>),
     Inject(Box<InjectData>),
     Noise(Box<figure::noise::NoiseData>),
+    Common(Box<figure::common::CommonData>),
 }
 
 struct Input {
@@ -102,6 +103,7 @@ impl Input {
             Loaded::Null(n) => &n.provenance,
             Loaded::Inject(i) => &i.provenance,
             Loaded::Noise(n) => &n.provenance,
+            Loaded::Common(c) => &c.summary.provenance,
         }
     }
 }
@@ -115,6 +117,9 @@ fn load_inputs(dirs: &[PathBuf]) -> Result<Vec<Input>, FigureError> {
                 FolderKind::Null => Loaded::Null(Box::new(NullData::load(dir)?)),
                 FolderKind::Inject => Loaded::Inject(Box::new(InjectData::load(dir)?)),
                 FolderKind::Noise => Loaded::Noise(Box::new(figure::noise::NoiseData::load(dir)?)),
+                FolderKind::Common => {
+                    Loaded::Common(Box::new(figure::common::CommonData::load(dir)?))
+                }
             };
             inputs.push((
                 kind,
@@ -360,6 +365,7 @@ fn compose(inputs: &[Input], figures: &[Vec<Drawn>]) -> Doc {
             Loaded::Null(d) => null_section(&mut b, &i.label, d),
             Loaded::Inject(d) => inject_section(&mut b, &i.label, d),
             Loaded::Noise(d) => noise_section(&mut b, &i.label, d),
+            Loaded::Common(d) => common_section(&mut b, &i.label, d),
         }
         for f in drawn {
             b.push(Block::Figure {
@@ -820,6 +826,119 @@ fn noise_section(b: &mut Vec<Block>, label: &str, d: &figure::noise::NoiseData) 
     }
 }
 
+/// Words for a comparison name of summary.json (`hd/curn`, `curn/noise`).
+fn comparison_words(c: &str) -> String {
+    fn word(m: &str) -> &str {
+        match m {
+            "hd" => "Hellings–Downs",
+            "curn" => "uncorrelated (CURN)",
+            "noise" => "noise only",
+            other => other,
+        }
+    }
+    match c.split_once('/') {
+        Some((a, b)) => format!("{} vs {}", word(a), word(b)),
+        None => c.to_string(),
+    }
+}
+
+fn common_section(b: &mut Vec<Block>, label: &str, d: &figure::common::CommonData) {
+    let s = &d.summary;
+    b.push(Block::Heading(3, format!("Common process: {label}")));
+    b.push(Block::Para(vec![t(format!(
+        "A red process common to all {} pulsars ({} frequencies, {} years), fitted under each correlation model with the exact likelihood of the reduced data. Priors: {}; {}. Each evidence and Bayes factor is given with its numerical (quadrature) error only; it does not include the uncertainty of the noise model.",
+        s.n_pulsars,
+        s.n_frequencies,
+        format::fixed(s.span_years, 2, Style::Text),
+        s.priors.log10_amplitude,
+        s.priors.spectral_index
+    ))]));
+    let mut rows = Vec::new();
+    for (index, list) in [
+        (
+            format!(
+                "fixed, γ = {}",
+                format::general(s.priors.fixed_spectral_index, 4, Style::Text)
+            ),
+            &s.bayes_factors_fixed_index,
+        ),
+        ("varied".to_string(), &s.bayes_factors_varied_index),
+    ] {
+        for r in list {
+            rows.push(vec![
+                Cell::Text(comparison_words(&r.comparison)),
+                Cell::Text(index.clone()),
+                num_fixed(r.ln_bayes_factor, 3),
+                num_general(r.ln_error, 2),
+                num_fixed(r.log10_bayes_factor, 3),
+            ]);
+        }
+    }
+    b.push(Block::Table(Table {
+        caption: format!(
+            "Bayes factors of the common process ({label}): ln BF, its numerical error (in ln, from the quadrature), and log10 BF. Each assumes the noise model (every pulsar's own noise fixed) and the priors; fixed-noise Bayes factors are approximations to ones that marginalise the pulsars' noise."
+        ),
+        header: vec![
+            ("comparison".into(), "comparison".into()),
+            ("spectral index".into(), "spectral index".into()),
+            ("ln BF".into(), "$\\ln \\mathrm{BF}$".into()),
+            ("numerical error".into(), "numerical error".into()),
+            ("log10 BF".into(), "$\\log_{10} \\mathrm{BF}$".into()),
+        ],
+        right: vec![false, false, true, true, true],
+        rows,
+    }));
+    let interval = |a: [f64; 2], dec: usize| {
+        Cell::Num(
+            format!(
+                "{} to {}",
+                format::fixed(a[0], dec, Style::Text),
+                format::fixed(a[1], dec, Style::Text)
+            ),
+            format!(
+                "${}$ to ${}$",
+                format::fixed(a[0], dec, Style::Latex),
+                format::fixed(a[1], dec, Style::Latex)
+            ),
+        )
+    };
+    let rows = s
+        .models
+        .iter()
+        .map(|(m, f)| {
+            vec![
+                Cell::Text(figure::common::label(m)),
+                num_fixed(f.fixed_index.log10_amplitude.median, 3),
+                interval(f.fixed_index.log10_amplitude.interval_68, 3),
+                num_sci(f.fixed_index.amplitude_upper_limit_95, 3),
+                num_fixed(f.varied_index.spectral_index.median, 2),
+                interval(f.varied_index.spectral_index.interval_68, 2),
+                num_int(f.varied_index.spectral_index_nodes as u64),
+            ]
+        })
+        .collect();
+    b.push(Block::Table(Table {
+        caption: format!(
+            "Posteriors per model ({label}): log10 A at the fixed index (median, central 68% interval, 95% upper limit on A) and the spectral index with the amplitude marginalised (median, central 68% interval), with the number of spectral-index nodes of the adaptive rule."
+        ),
+        header: vec![
+            ("model".into(), "model".into()),
+            ("log10 A median".into(), "$\\log_{10} A$ median".into()),
+            ("log10 A 68%".into(), "$\\log_{10} A$ 68\\%".into()),
+            ("A 95% upper limit".into(), "$A$ 95\\% upper limit".into()),
+            ("γ median".into(), "$\\gamma$ median".into()),
+            ("γ 68%".into(), "$\\gamma$ 68\\%".into()),
+            ("γ nodes".into(), "$\\gamma$ nodes".into()),
+        ],
+        right: vec![false, true, true, true, true, true, true],
+        rows,
+    }));
+    b.push(Block::Para(vec![t(format!(
+        "What these numbers assume ({label}): {}",
+        s.assumptions
+    ))]));
+}
+
 fn caveats(inputs: &[Input]) -> Vec<Vec<Span>> {
     let mut out = Vec::new();
     let mut noise: Vec<(String, String)> = Vec::new();
@@ -943,6 +1062,13 @@ fn caveats(inputs: &[Input]) -> Vec<Vec<Span>> {
                 )),
             ]);
         }
+    }
+    if inputs.iter().any(|i| i.kind == FolderKind::Common) {
+        out.push(vec![t(
+            "A Bayes factor assumes the noise model and the priors: another prior range in amplitude or spectral index changes it, by the ratio of the prior volumes where the likelihood is flat. \
+             The Bayes factors here hold every pulsar's own noise fixed at the noise model, so they are approximations to Bayes factors that marginalise it. \
+             The numerical error in the table is that of the quadrature alone. A Bayes factor is not a detection claim: a detection claim needs the collaboration's full analysis.",
+        )]);
     }
     out.push(vec![t(
         "This report summarises one analysis for a memo. A detection claim needs the collaboration's full analysis, including complete noise modelling of every pulsar, tests of other correlation patterns and of systematic effects, and internal review. The numbers here are not such a claim.",
@@ -1186,6 +1312,7 @@ fn tex_escape(s: &str) -> String {
             '^' => o.push_str("\\textasciicircum{}"),
             '²' => o.push_str("$^2$"),
             'σ' => o.push_str("$\\sigma$"),
+            'γ' => o.push_str("$\\gamma$"),
             '–' => o.push_str("--"),
             c => o.push(c),
         }

@@ -35,7 +35,7 @@ pub struct CommonDraw {
 }
 
 /// Whether the draws vary the spectral index.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, serde::Serialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum DrawIndex {
     /// Joint draws of (log10 A, gamma) from the varied-index posterior.
@@ -45,7 +45,7 @@ pub enum DrawIndex {
 }
 
 /// How the posterior draws of a run were made (recorded in summary.json).
-#[derive(Clone, Copy, Debug, serde::Serialize)]
+#[derive(Clone, Copy, Debug, PartialEq, serde::Serialize, serde::Deserialize)]
 pub struct DrawSettings {
     pub n_draws: usize,
     pub seed: u64,

@@ -308,7 +308,7 @@ pub fn simpson_weights(n: usize, h: f64) -> Vec<f64> {
 }
 
 /// Summary of a one-dimensional posterior.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, serde::Deserialize)]
 pub struct Interval1d {
     pub median: f64,
     /// The maximum of the posterior density on the evaluation grid.
@@ -408,9 +408,14 @@ pub struct VariedIndexFit {
     pub ln_amplitude_integral: Vec<f64>,
     /// ln L - ln L(0) on the table grid: `[gamma index][amplitude index]`.
     pub log_likelihood_table: Vec<Vec<f64>>,
+    /// The eigen form at each gamma node (ln L at any amplitude).
+    pub curves: Vec<AmplitudeCurve>,
     /// Marginal posteriors of log10 A (over gamma) and of gamma.
     pub log10_amplitude: Tabulated,
     pub spectral_index: Tabulated,
+    /// ln L - ln L(0) + ln pi(log10 A) at the edge of the 68.3% and 95% highest-density
+    /// credible regions of the joint posterior of (log10 A, gamma).
+    pub credible_levels: [f64; 2],
 }
 
 /// Everything fitted for one model.
@@ -443,84 +448,230 @@ pub struct CommonFit {
 const FINE_FIXED: usize = 4097;
 const FINE_VARIED: usize = 1025;
 
-/// Most gamma nodes the adaptive rule refines to (per model).
+/// Most gamma nodes the adaptive rule starts from (`--index-points`).
 pub const MAX_INDEX_NODES: usize = 257;
 
-/// ln of the composite Simpson rule over gamma of the amplitude integrals `ln_i` on equally
-/// spaced `gammas` (uniform prior in gamma on their range).
-fn ln_simpson_over_gamma(ln_i: &[f64], gammas: &[f64]) -> f64 {
-    let n = gammas.len();
-    let width = gammas[n - 1] - gammas[0];
-    let h = width / (n - 1) as f64;
-    let terms: Vec<f64> = simpson_weights(n, h)
-        .iter()
-        .zip(ln_i)
-        .map(|(w, l)| l + w.ln() - width.ln())
-        .collect();
-    log_sum_exp(&terms)
+/// Most gamma nodes the adaptive rule refines to (per model): room for quarter points on every
+/// starting interval and then some.
+pub const MAX_REFINED_INDEX_NODES: usize = 1025;
+
+/// Boole's rule on five equally spaced nodes over [a, b], as weights: (b - a)/90 (7, 32, 12,
+/// 32, 7). It is Simpson's rule on the five nodes plus its Richardson correction
+/// (S_2 - S_1)/15 (Abramowitz & Stegun 1964, 25.4.14; Burden & Faires 2011, Numerical Analysis,
+/// 9th ed., sec. 4.6).
+const BOOLE: [f64; 5] = [
+    7.0 / 90.0,
+    32.0 / 90.0,
+    12.0 / 90.0,
+    32.0 / 90.0,
+    7.0 / 90.0,
+];
+
+/// The adaptive rule in gamma and what it ends with.
+struct GammaRule {
+    /// Nodes in increasing gamma, with their eigen-form curves and amplitude integrals.
+    gammas: Vec<f64>,
+    curves: Vec<AmplitudeCurve>,
+    integrals: Vec<LogEvidence>,
+    /// Quadrature weight of each node (in units of gamma; the prior 1/width is not included).
+    weights: Vec<f64>,
+    /// Estimated relative error of the rule (in ln of the evidence).
+    error: f64,
 }
 
-/// The adaptive gamma rule of one model: composite Simpson on the settings' nodes, then the
-/// spacing halved (every new node a midpoint, one eigen form each) until the evidence changes
-/// by less than `index_tolerance` relative, or the nodes reach [`MAX_INDEX_NODES`]. Returns
-/// the curves, the nodes and the rule's error estimate: Richardson's |S_h/2 - S_h| / 15 of the
-/// value when converged (Simpson's error falls by 16 per halving of h for a smooth integrand;
-/// e.g. Press et al. 2007, Numerical Recipes, 3rd ed., sec. 4.2), the full difference when the
-/// node cap stopped it first.
-fn adaptive_gamma_nodes(
+/// The adaptive rule in gamma of one model: [`adaptive_simpson_log`] over ln I(gamma) (one
+/// eigen form and one amplitude integral per node; a round's new nodes in parallel, in a fixed
+/// order, so the result does not depend on the thread count), at most
+/// [`MAX_REFINED_INDEX_NODES`] nodes.
+fn adaptive_gamma_rule(
     data: &CommonData,
     model: CommonModel,
     s: &CommonSettings,
-) -> Result<(Vec<AmplitudeCurve>, Vec<f64>, f64)> {
-    let mut gammas = s.spectral_indices();
-    let mut curves: Vec<AmplitudeCurve> = gammas
-        .par_iter()
-        .map(|&g| data.amplitude_curve(model, g))
-        .collect::<Result<_>>()?;
-    let mut ln_i: Vec<f64> = curves
-        .par_iter()
-        .map(|c| amplitude_integral(c, s).ln_evidence)
-        .collect();
-    let mut prev = ln_simpson_over_gamma(&ln_i, &gammas);
-    loop {
-        let mids: Vec<f64> = gammas.windows(2).map(|w| 0.5 * (w[0] + w[1])).collect();
-        let new: Vec<AmplitudeCurve> = mids
-            .par_iter()
-            .map(|&g| data.amplitude_curve(model, g))
-            .collect::<Result<_>>()?;
-        let new_ln: Vec<f64> = new
-            .par_iter()
-            .map(|c| amplitude_integral(c, s).ln_evidence)
+) -> Result<GammaRule> {
+    let eval = |gs: &[f64]| -> Result<Vec<((AmplitudeCurve, LogEvidence), f64)>> {
+        gs.par_iter()
+            .map(|&g| {
+                let c = data.amplitude_curve(model, g)?;
+                let e = amplitude_integral(&c, s);
+                check_finite(
+                    e.ln_evidence,
+                    "an amplitude integral of the varied-index fit",
+                )?;
+                let l = e.ln_evidence;
+                Ok(((c, e), l))
+            })
+            .collect()
+    };
+    let rule = adaptive_simpson_log(
+        &s.spectral_indices(),
+        s.index_tolerance,
+        MAX_REFINED_INDEX_NODES,
+        eval,
+    )?;
+    let mut curves = Vec::with_capacity(rule.nodes.len());
+    let mut integrals = Vec::with_capacity(rule.nodes.len());
+    for (c, e) in rule.payload {
+        curves.push(c);
+        integrals.push(e);
+    }
+    Ok(GammaRule {
+        gammas: rule.nodes,
+        curves,
+        integrals,
+        weights: rule.weights,
+        error: rule.error,
+    })
+}
+
+/// The nodes, weights and error of [`adaptive_simpson_log`].
+pub struct AdaptiveRule<T> {
+    /// Nodes in increasing order.
+    pub nodes: Vec<f64>,
+    /// What the evaluator returned with each node's ln f.
+    pub payload: Vec<T>,
+    /// ln f at each node.
+    pub ln_values: Vec<f64>,
+    /// Quadrature weight of each node: int f ~ sum_i w_i f(x_i).
+    pub weights: Vec<f64>,
+    /// ln of the integral.
+    pub ln_integral: f64,
+    /// Estimated relative error of the integral.
+    pub error: f64,
+}
+
+/// Locally adaptive Simpson quadrature of a positive integrand given by its logarithm (Kuncir
+/// 1962, CACM 5, 347; Lyness 1969, JACM 16, 483; Burden & Faires 2011, Numerical Analysis, 9th
+/// ed., sec. 4.6), on the range of the equally spaced `start` nodes (an odd number, at least
+/// 3). `eval` returns (payload, ln f) for a batch of nodes (a round's new nodes at once, so it
+/// may evaluate them in parallel). The start nodes are cut into intervals of five nodes (of
+/// three when their count is not 1 mod 4: those first get their quarter points). On an interval
+/// [a, b] Simpson's rule on three nodes (S_1) and on five (S_2) give the error estimate
+/// |S_2 - S_1|/15; it is accepted when that is at most `tol` times its share (b - a)/W of the
+/// range times the current estimate of the whole integral, otherwise it is split at its
+/// midpoint and each half gets its quarter points. Only failing intervals are refined. The
+/// value is Boole's rule on every accepted interval; the error estimate the sum of
+/// |S_2 - S_1|/15 over them, or of the whole |S_2 - S_1| for intervals the node cap `max_nodes`
+/// left unconverged.
+pub fn adaptive_simpson_log<T, E>(
+    start: &[f64],
+    tol: f64,
+    max_nodes: usize,
+    mut eval: E,
+) -> Result<AdaptiveRule<T>>
+where
+    E: FnMut(&[f64]) -> Result<Vec<(T, f64)>>,
+{
+    let n0 = start.len();
+    debug_assert!(n0 >= 3 && !n0.is_multiple_of(2));
+    let width = start[n0 - 1] - start[0];
+    let mut xs: Vec<f64> = start.to_vec();
+    let mut payload: Vec<T> = Vec::new();
+    let mut ln_f: Vec<f64> = Vec::new();
+    for (p, l) in eval(start)? {
+        payload.push(p);
+        ln_f.push(l);
+    }
+    // Intervals waiting for their quarter points: node indices (a, midpoint, b).
+    let mut halves: Vec<[usize; 3]> = Vec::new();
+    // Intervals with all five nodes (a, a + h/4, midpoint, b - h/4, b).
+    let mut ready: Vec<[usize; 5]> = Vec::new();
+    if (n0 - 1).is_multiple_of(4) {
+        ready = (0..(n0 - 1) / 4)
+            .map(|p| [4 * p, 4 * p + 1, 4 * p + 2, 4 * p + 3, 4 * p + 4])
             .collect();
-        let n = gammas.len();
-        let mut g2 = Vec::with_capacity(2 * n - 1);
-        let mut c2 = Vec::with_capacity(2 * n - 1);
-        let mut l2 = Vec::with_capacity(2 * n - 1);
-        let mut new_curves = new.into_iter();
-        for j in 0..n {
-            g2.push(gammas[j]);
-            c2.push(curves[j].clone());
-            l2.push(ln_i[j]);
-            if j + 1 < n {
-                g2.push(mids[j]);
-                c2.push(new_curves.next().expect("one midpoint per interval"));
-                l2.push(new_ln[j]);
+    } else {
+        halves = (0..(n0 - 1) / 2)
+            .map(|p| [2 * p, 2 * p + 1, 2 * p + 2])
+            .collect();
+    }
+    let simpsons = |f: &dyn Fn(usize) -> f64, xs: &[f64], p: &[usize; 5]| {
+        let h = xs[p[4]] - xs[p[0]];
+        let s1 = h / 6.0 * (f(p[0]) + 4.0 * f(p[2]) + f(p[4]));
+        let s2 = h / 12.0 * (f(p[0]) + 4.0 * f(p[1]) + 2.0 * f(p[2]) + 4.0 * f(p[3]) + f(p[4]));
+        let boole = (0..5).map(|k| h * BOOLE[k] * f(p[k])).sum::<f64>();
+        (s1, s2, boole)
+    };
+    // Accepted intervals and whether the node cap stopped them before they converged.
+    let mut accepted: Vec<([usize; 5], bool)> = Vec::new();
+    loop {
+        if !halves.is_empty() {
+            let quarters: Vec<f64> = halves
+                .iter()
+                .flat_map(|&[a, m, b]| [0.5 * (xs[a] + xs[m]), 0.5 * (xs[m] + xs[b])])
+                .collect();
+            let first = xs.len();
+            let got = eval(&quarters)?;
+            xs.extend_from_slice(&quarters);
+            for (p, l) in got {
+                payload.push(p);
+                ln_f.push(l);
+            }
+            for (p, &[a, m, b]) in halves.iter().enumerate() {
+                ready.push([a, first + 2 * p, m, first + 2 * p + 1, b]);
+            }
+            halves.clear();
+        }
+        // Integrand values scaled by the largest so far (nothing overflows).
+        let peak = ln_f.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+        let f = |i: usize| (ln_f[i] - peak).exp();
+        let total: f64 = accepted
+            .iter()
+            .map(|(p, _)| p)
+            .chain(ready.iter())
+            .map(|p| simpsons(&f, &xs, p).2)
+            .sum();
+        let mut failed = Vec::new();
+        for p in ready.drain(..) {
+            let share = (xs[p[4]] - xs[p[0]]) / width;
+            let (s1, s2, _) = simpsons(&f, &xs, &p);
+            if (s2 - s1).abs() / 15.0 <= tol * share * total {
+                accepted.push((p, false));
+            } else {
+                failed.push(p);
             }
         }
-        gammas = g2;
-        curves = c2;
-        ln_i = l2;
-        let now = ln_simpson_over_gamma(&ln_i, &gammas);
-        check_finite(now, "the varied-index evidence")?;
-        let change = (now - prev).exp_m1().abs();
-        if change <= s.index_tolerance {
-            return Ok((curves, gammas, change / 15.0));
+        if failed.is_empty() {
+            break;
         }
-        if 2 * gammas.len() - 1 > MAX_INDEX_NODES {
-            return Ok((curves, gammas, change));
+        if xs.len() + 4 * failed.len() > max_nodes {
+            accepted.extend(failed.into_iter().map(|p| (p, true)));
+            break;
         }
-        prev = now;
+        halves = failed
+            .into_iter()
+            .flat_map(|p| [[p[0], p[1], p[2]], [p[2], p[3], p[4]]])
+            .collect();
     }
+    // Weights, value and error with the final scaling.
+    let peak = ln_f.iter().cloned().fold(f64::NEG_INFINITY, f64::max);
+    let f = |i: usize| (ln_f[i] - peak).exp();
+    let mut weights = vec![0.0; xs.len()];
+    let mut err = 0.0;
+    let mut total = 0.0;
+    for (p, capped) in &accepted {
+        let h = xs[p[4]] - xs[p[0]];
+        for k in 0..5 {
+            weights[p[k]] += h * BOOLE[k];
+        }
+        let (s1, s2, boole) = simpsons(&f, &xs, p);
+        total += boole;
+        err += (s2 - s1).abs() / if *capped { 1.0 } else { 15.0 };
+    }
+    // Nodes in increasing order.
+    let mut order: Vec<usize> = (0..xs.len()).collect();
+    order.sort_by(|&a, &b| xs[a].total_cmp(&xs[b]));
+    let mut slots: Vec<Option<T>> = payload.into_iter().map(Some).collect();
+    Ok(AdaptiveRule {
+        nodes: order.iter().map(|&i| xs[i]).collect(),
+        payload: order
+            .iter()
+            .map(|&i| slots[i].take().expect("each node once"))
+            .collect(),
+        ln_values: order.iter().map(|&i| ln_f[i]).collect(),
+        weights: order.iter().map(|&i| weights[i]).collect(),
+        ln_integral: peak + total.ln(),
+        error: err / total,
+    })
 }
 
 /// Fit every model of `settings` to `data`.
@@ -536,8 +687,8 @@ pub fn fit_common(data: &CommonData, settings: &CommonSettings) -> Result<Common
         .collect::<Result<_>>()?;
     for (&m, curve) in settings.models.iter().zip(&fixed_curves) {
         let fixed = fixed_index_fit(curve, settings)?;
-        let (curves, gammas, rule_err) = adaptive_gamma_nodes(data, m, settings)?;
-        let varied = varied_index_fit(&curves, &gammas, settings, rule_err)?;
+        let rule = adaptive_gamma_rule(data, m, settings)?;
+        let varied = varied_index_fit(rule, settings)?;
         fits.insert(
             m,
             ModelFit {
@@ -595,26 +746,27 @@ fn fixed_index_fit(curve: &AmplitudeCurve, s: &CommonSettings) -> Result<FixedIn
     })
 }
 
-fn varied_index_fit(
-    curves: &[AmplitudeCurve],
-    gammas: &[f64],
-    s: &CommonSettings,
-    rule_err: f64,
-) -> Result<VariedIndexFit> {
+fn varied_index_fit(rule: GammaRule, s: &CommonSettings) -> Result<VariedIndexFit> {
+    let GammaRule {
+        gammas,
+        curves,
+        integrals,
+        weights,
+        error: rule_err,
+    } = rule;
     let n = gammas.len();
-    let width = gammas[n - 1] - gammas[0];
-    let h = width / (n - 1) as f64;
-    let ints: Vec<LogEvidence> = curves.iter().map(|c| amplitude_integral(c, s)).collect();
-    let ln_i: Vec<f64> = ints.iter().map(|e| e.ln_evidence).collect();
+    let width = s.spectral_index_max - s.spectral_index_min;
+    let ln_i: Vec<f64> = integrals.iter().map(|e| e.ln_evidence).collect();
     let ln_gamma_prior = -width.ln();
-    let fine = ln_simpson_over_gamma(&ln_i, gammas);
-    // Amplitude-integral errors, weighted by each node's share of the evidence.
-    let amp_err: f64 = simpson_weights(n, h)
-        .iter()
-        .enumerate()
-        .map(|(j, w)| (ln_i[j] + w.ln() + ln_gamma_prior - fine).exp() * ints[j].error)
-        .sum();
+    let terms: Vec<f64> = (0..n)
+        .map(|j| ln_i[j] + weights[j].ln() + ln_gamma_prior)
+        .collect();
+    let fine = log_sum_exp(&terms);
     check_finite(fine, "the varied-index evidence")?;
+    // Amplitude-integral errors, weighted by each node's share of the evidence.
+    let amp_err: f64 = (0..n)
+        .map(|j| (terms[j] - fine).exp() * integrals[j].error)
+        .sum();
     let evidence = LogEvidence {
         ln_evidence: fine,
         error: rule_err + amp_err,
@@ -624,29 +776,68 @@ fn varied_index_fit(
         .iter()
         .map(|c| table.iter().map(|&u| c.at_log10(u)).collect())
         .collect();
-    let spectral_index = Tabulated::from_log_density(gammas.to_vec(), &ln_i)?;
-    // Marginal of log10 A: Simpson over gamma of each node's density on a fine grid.
+    let spectral_index = Tabulated::from_log_density(gammas.clone(), &ln_i)?;
+    // Marginal of log10 A: the gamma rule's weights over each node's density on a fine grid.
     let x = linspace(s.log10_amplitude_min, s.log10_amplitude_max, FINE_VARIED);
-    let w = simpson_weights(n, h);
     let per_gamma: Vec<Vec<f64>> = curves
         .par_iter()
         .map(|c| x.iter().map(|&u| c.at_log10(u) + s.ln_prior(u)).collect())
         .collect();
     let lp: Vec<f64> = (0..x.len())
         .map(|i| {
-            let terms: Vec<f64> = (0..n).map(|j| per_gamma[j][i] + w[j].ln()).collect();
+            let terms: Vec<f64> = (0..n).map(|j| per_gamma[j][i] + weights[j].ln()).collect();
             log_sum_exp(&terms)
         })
         .collect();
+    let credible_levels = joint_credible_levels(&per_gamma, &weights, &x);
     Ok(VariedIndexFit {
         evidence,
         gamma_rule_error: rule_err,
-        spectral_indices: gammas.to_vec(),
+        spectral_indices: gammas,
         ln_amplitude_integral: ln_i,
         log_likelihood_table,
         log10_amplitude: Tabulated::from_log_density(x, &lp)?,
         spectral_index,
+        credible_levels,
+        curves,
     })
+}
+
+/// The levels of ln L(log10 A, gamma) - ln L(0) + ln pi(log10 A) (the unnormalised joint
+/// posterior density without the constant gamma prior) that enclose 68.3% and 95% of the joint
+/// posterior: the highest-density credible regions (Box & Tiao 1973, Bayesian Inference in
+/// Statistical Analysis, sec. 2.8). Each point of the (gamma node) x (fine log10 A grid)
+/// carries the mass of its gamma weight times its log10 A spacing; the points are sorted by
+/// density and the level is the density at which the cumulative mass reaches the content.
+fn joint_credible_levels(per_gamma: &[Vec<f64>], weights: &[f64], x: &[f64]) -> [f64; 2] {
+    let peak = per_gamma
+        .iter()
+        .flatten()
+        .cloned()
+        .fold(f64::NEG_INFINITY, f64::max);
+    let du = (x[x.len() - 1] - x[0]) / (x.len() - 1) as f64;
+    let mut pts: Vec<(f64, f64)> = Vec::with_capacity(per_gamma.len() * x.len());
+    for (row, w) in per_gamma.iter().zip(weights) {
+        for (i, &lp) in row.iter().enumerate() {
+            // Trapezoid ends in log10 A.
+            let end = if i == 0 || i + 1 == x.len() { 0.5 } else { 1.0 };
+            pts.push((lp - peak, (lp - peak).exp() * w * du * end));
+        }
+    }
+    pts.sort_by(|a, b| b.0.total_cmp(&a.0));
+    let total: f64 = pts.iter().map(|p| p.1).sum();
+    let mut out = [f64::NEG_INFINITY; 2];
+    for (k, content) in [0.682_689_49, 0.95].into_iter().enumerate() {
+        let mut cum = 0.0;
+        for p in &pts {
+            cum += p.1;
+            if cum >= content * total {
+                out[k] = p.0 + peak;
+                break;
+            }
+        }
+    }
+    out
 }
 
 fn check_finite(v: f64, what: &str) -> Result<()> {
@@ -721,6 +912,71 @@ mod tests {
         let want = 700.0 + (s * (2.0 * std::f64::consts::PI).sqrt()).ln();
         assert!((ln_i - want).abs() < 1e-8, "{ln_i} vs {want}");
         assert!(err < 1e-8);
+    }
+
+    #[test]
+    fn local_adaptive_simpson_integrates_a_narrow_peak_with_few_nodes() {
+        // int_0^7 exp(-(g - 4.3)^2 / (2 s^2)) dg = s sqrt(2 pi) to double precision (the tails
+        // beyond the range are below 1e-300 of it): the Gaussian integral, a closed form. A
+        // peak 0.05 wide on a range of 7 is the loud-signal case of the gamma rule: the local
+        // rule refines only near the peak, so it needs fewer nodes than halving everywhere.
+        let s = 0.05;
+        let want = (s * (2.0 * std::f64::consts::PI).sqrt()).ln() + 900.0;
+        for (start, tol) in [(41usize, 1e-3), (41, 1e-6), (5, 1e-6), (43, 1e-6)] {
+            let xs = linspace(0.0, 7.0, start);
+            let mut evals = 0;
+            let rule = adaptive_simpson_log(&xs, tol, 4097, |gs: &[f64]| {
+                evals += gs.len();
+                Ok(gs
+                    .iter()
+                    .map(|&g| ((), -(g - 4.3).powi(2) / (2.0 * s * s) + 900.0))
+                    .collect())
+            })
+            .unwrap();
+            let rel = (rule.ln_integral - want).abs();
+            assert!(rel < tol, "start {start}, tol {tol}: error {rel:e}");
+            assert!(rule.error < tol && rule.error >= 0.0);
+            assert_eq!(evals, rule.nodes.len());
+            // Fewer nodes than the global rule (halve every spacing until the composite Simpson
+            // value changes by less than tol) needs for the same integral.
+            let mut n = start;
+            let simpson = |n: usize| {
+                let xs = linspace(0.0, 7.0, n);
+                let w = simpson_weights(n, 7.0 / (n - 1) as f64);
+                let v: f64 = xs
+                    .iter()
+                    .zip(&w)
+                    .map(|(g, w)| w * (-(g - 4.3).powi(2) / (2.0 * s * s)).exp())
+                    .sum();
+                v.ln() + 900.0
+            };
+            while ((simpson(2 * n - 1) - simpson(n)).exp_m1()).abs() > tol {
+                n = 2 * n - 1;
+            }
+            let global = 2 * n - 1;
+            assert!(
+                rule.nodes.len() < global,
+                "start {start}, tol {tol}: {} nodes, the global rule {global}",
+                rule.nodes.len()
+            );
+            assert!(rule.nodes.windows(2).all(|w| w[0] < w[1]));
+            // The weights integrate the same function: sum w_i f(x_i) is the integral.
+            let peak = rule
+                .ln_values
+                .iter()
+                .cloned()
+                .fold(f64::NEG_INFINITY, f64::max);
+            let sum: f64 = rule
+                .weights
+                .iter()
+                .zip(&rule.ln_values)
+                .map(|(w, l)| w * (l - peak).exp())
+                .sum();
+            assert!((peak + sum.ln() - rule.ln_integral).abs() < 1e-12);
+            // And a constant exactly (Boole's rule is exact for polynomials of degree 5).
+            let total: f64 = rule.weights.iter().sum();
+            assert!((total - 7.0).abs() < 1e-12, "{total}");
+        }
     }
 
     #[test]

@@ -102,6 +102,76 @@ impl FreeSpectrumSettings {
     }
 }
 
+/// Leapfrog steps per NUTS iteration assumed by [`estimate_free_spectrum_cost`]: a tree of
+/// depth 4 (2^4 - 1 steps), typical of a well-adapted NUTS run on a smooth posterior of a few
+/// dozen parameters (common practice, not a bound: the sampler may take up to
+/// 2^max_depth - 1).
+pub const ASSUMED_STEPS_PER_ITERATION: u64 = 15;
+
+/// What sampling the free spectrum of one model is expected to cost, before it starts.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+pub struct FreeSpectrumCost {
+    pub model: CommonModel,
+    /// Size of the largest matrix factored per gradient (2K per pulsar for CURN; r 2K for a
+    /// pattern of rank r).
+    pub dimension: usize,
+    /// Floating-point operations per gradient: a Cholesky factor (d^3/3) and the triangular
+    /// inverse that gives diag(Q^-1) (d^3) per block (Golub & Van Loan 2013, Matrix
+    /// Computations, 4th ed., secs. 3.1, 4.2).
+    pub flops_per_gradient: f64,
+    /// Measured wall time of one gradient on this machine (the best of three).
+    pub seconds_per_gradient: f64,
+    /// chains x (warm-up + draws) x [`ASSUMED_STEPS_PER_ITERATION`].
+    pub gradients: u64,
+    /// Iterations per chain (warm-up + draws).
+    pub iterations: u64,
+    /// Expected wall time with the chains spread over `threads` threads.
+    pub seconds: f64,
+    /// The same in minutes.
+    pub minutes: f64,
+    pub threads: usize,
+}
+
+/// Estimate the cost of sampling the free spectrum of `model`: build its likelihood, time one
+/// value-and-gradient at the middle of the prior (the best of three), and multiply by the
+/// expected number of gradients. Runs before any sampling, so a run that would take hours can
+/// be refused with advice (docs/common-process.md, "Sampling it").
+pub fn estimate_free_spectrum_cost(
+    data: &CommonData,
+    model: CommonModel,
+    settings: &FreeSpectrumSettings,
+) -> Result<FreeSpectrumCost> {
+    settings.check()?;
+    let like = FreeSpectrum::new(data, model)?;
+    let dimension = like.largest_block();
+    let blocks = like.n_blocks();
+    let mid = 0.5 * (settings.log10_power_min + settings.log10_power_max);
+    let point = vec![mid; data.k()];
+    let mut best = f64::INFINITY;
+    for _ in 0..3 {
+        let t = std::time::Instant::now();
+        like.log_likelihood(&point)?;
+        best = best.min(t.elapsed().as_secs_f64());
+    }
+    let d = dimension as f64;
+    let s = &settings.sampler;
+    let gradients = s.chains as u64 * (s.warmup + s.draws) * ASSUMED_STEPS_PER_ITERATION;
+    let threads = rayon::current_num_threads().max(1);
+    let waves = s.chains.div_ceil(threads).max(1) as f64;
+    let seconds = best * (gradients / s.chains as u64) as f64 * waves;
+    Ok(FreeSpectrumCost {
+        model,
+        dimension,
+        flops_per_gradient: blocks as f64 * (d * d * d / 3.0 + d * d * d),
+        seconds_per_gradient: best,
+        gradients,
+        iterations: s.warmup + s.draws,
+        seconds,
+        minutes: seconds / 60.0,
+        threads,
+    })
+}
+
 fn model_item(model: CommonModel) -> u64 {
     CommonModel::ALL
         .iter()

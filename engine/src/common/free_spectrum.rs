@@ -90,6 +90,20 @@ impl FreeSpectrum {
         Ok(FreeSpectrum { model, k, blocks })
     }
 
+    /// The size of the largest block factored per gradient.
+    pub fn largest_block(&self) -> usize {
+        self.blocks
+            .iter()
+            .map(|(m, _)| m.nrows())
+            .max()
+            .unwrap_or(0)
+    }
+
+    /// The number of independent blocks (pulsars for CURN, one for a pattern).
+    pub fn n_blocks(&self) -> usize {
+        self.blocks.len()
+    }
+
     /// ln L(rho) - ln L(0) and its gradient in log10 rho_j, j = 1..K (`log10_rho[j - 1]`).
     pub fn log_likelihood(&self, log10_rho: &[f64]) -> Result<(f64, Vec<f64>)> {
         if log10_rho.len() != self.k {

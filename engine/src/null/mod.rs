@@ -699,8 +699,7 @@ pub fn run_chunks(
                         finish(&mut pending)?;
                         let copy = t.clone();
                         let path = f.clone();
-                        let h =
-                            scope.spawn(move || write_atomic(&path, &checkpoint_csv(&copy)?));
+                        let h = scope.spawn(move || write_atomic(&path, &checkpoint_csv(&copy)?));
                         pending = Some((h, f));
                     }
                     t

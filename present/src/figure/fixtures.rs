@@ -341,3 +341,135 @@ pub(crate) fn write_inject(dir: &Path) {
     );
     seal(dir);
 }
+
+/// A `ptacorr common` folder of two models (curn, hd), written with the engine's own types:
+/// at the fixed index a Gaussian posterior of log10 A (mean -14, sd 0.05), and on the
+/// (gamma, log10 A) grid a correlated bivariate Gaussian (means -14 and 13/3, sds 0.05 and
+/// 0.3, correlation -0.6) whose highest-density regions are the ellipses
+/// Q = -2 ln(1 - content) of the chi-square with two degrees of freedom (the closed form of a
+/// bivariate normal's regions; e.g. Box & Tiao 1973, sec. 2.8). The hd posterior is the curn
+/// one shifted by +0.01 in log10 A. Sealed with a manifest.
+pub(crate) fn common_folder(dir: &Path) {
+    use ptacorr::common::{
+        BayesRow, CommonSummary, FixedRow, FixedSummary, GridRow, Interval1d, MarginalRow,
+        ModelSummary, Priors, VariedSummary,
+    };
+    let (mu_u, mu_g, su, sg, rho): (f64, f64, f64, f64, f64) = (-14.0, 13.0 / 3.0, 0.05, 0.3, -0.6);
+    // The uniform table plus a fine stretch over the bulk, as the engine writes them.
+    let mut us: Vec<f64> = (0..=240).map(|i| -18.0 + 6.0 * i as f64 / 240.0).collect();
+    us.extend((0..=120).map(|i| -14.3 + 0.6 * i as f64 / 120.0));
+    us.sort_by(f64::total_cmp);
+    us.dedup();
+    let gs: Vec<f64> = (0..=140).map(|j| 7.0 * j as f64 / 140.0).collect();
+    let ln_norm = -(std::f64::consts::TAU * su * sg * (1.0 - rho * rho).sqrt()).ln();
+    let q = |u: f64, g: f64, shift: f64| {
+        let (x, y) = ((u - mu_u - shift) / su, (g - mu_g) / sg);
+        (x * x - 2.0 * rho * x * y + y * y) / (1.0 - rho * rho)
+    };
+    let interval = |m: f64, s: f64| Interval1d {
+        median: m,
+        map: m,
+        interval_68: [m - s, m + s],
+        interval_95: [m - 1.96 * s, m + 1.96 * s],
+        upper_limit_95: m + 1.645 * s,
+    };
+    let mut models = std::collections::BTreeMap::new();
+    let (mut fixed, mut grid, mut marg) = (Vec::new(), Vec::new(), Vec::new());
+    for (name, shift) in [("curn", 0.0), ("hd", 0.01)] {
+        let levels = [0.682_689_49f64, 0.95].map(|c| ln_norm + 0.5 * 2.0 * (1.0 - c).ln());
+        models.insert(
+            name.to_string(),
+            ModelSummary {
+                fixed_index: FixedSummary {
+                    spectral_index: mu_g,
+                    ln_evidence: 100.0 + shift * 100.0,
+                    ln_evidence_error: 1e-10,
+                    log10_amplitude: interval(mu_u + shift, su),
+                    amplitude_upper_limit_95: 10f64.powf(mu_u + shift + 1.645 * su),
+                },
+                varied_index: VariedSummary {
+                    ln_evidence: 99.0 + shift * 100.0,
+                    ln_evidence_error: 2e-5,
+                    spectral_index_rule_error: 1.5e-5,
+                    spectral_index_nodes: gs.len(),
+                    log10_amplitude: interval(mu_u + shift, su),
+                    amplitude_upper_limit_95: 10f64.powf(mu_u + shift + 1.645 * su),
+                    spectral_index: interval(mu_g, sg),
+                    credible_region_log_posterior: levels,
+                },
+            },
+        );
+        for &u in &us {
+            let z = (u - mu_u - shift) / su;
+            fixed.push(FixedRow {
+                model: name.to_string(),
+                spectral_index: mu_g,
+                log10_amplitude: u,
+                log_likelihood_ratio: -0.5 * z * z,
+                density: (-0.5 * z * z).exp() / (su * std::f64::consts::TAU.sqrt()),
+                cdf: 0.5,
+            });
+            marg.push(MarginalRow {
+                model: name.to_string(),
+                parameter: "log10_amplitude".to_string(),
+                value: u,
+                density: 0.0,
+                cdf: 0.0,
+            });
+        }
+        for &g in &gs {
+            for &u in &us {
+                grid.push(GridRow {
+                    model: name.to_string(),
+                    spectral_index: g,
+                    log10_amplitude: u,
+                    log_likelihood_ratio: 0.0,
+                    log_posterior: ln_norm - 0.5 * q(u, g, shift),
+                });
+            }
+        }
+    }
+    let row = |c: &str, ln: f64| BayesRow {
+        comparison: c.to_string(),
+        ln_bayes_factor: ln,
+        ln_error: 2e-5,
+        log10_bayes_factor: ln / std::f64::consts::LN_10,
+    };
+    let summary = CommonSummary {
+        title: "Fictional release FR-1 (demo data)".to_string(),
+        n_pulsars: 12,
+        n_frequencies: 10,
+        span_years: 12.5,
+        frequencies_hz: (1..=10).map(|j| j as f64 * 2.5e-9).collect(),
+        priors: Priors {
+            log10_amplitude: "log10 A uniform on [-18, -12]".to_string(),
+            spectral_index: "gamma uniform on [0, 7]".to_string(),
+            fixed_spectral_index: mu_g,
+            amplitude_prior: "uniform-log10".to_string(),
+        },
+        models,
+        bayes_factors_fixed_index: vec![row("hd/curn", 1.0), row("curn/noise", 100.0)],
+        bayes_factors_varied_index: vec![row("hd/curn", 1.0), row("curn/noise", 99.0)],
+        draws: None,
+        assumptions: ptacorr::common::COMMON_ASSUMPTIONS.to_string(),
+        provenance: serde_json::from_value(provenance("c0ffee")).expect("provenance"),
+    };
+    let text = serde_json::to_string_pretty(&summary).expect("serialise summary");
+    std::fs::write(dir.join("summary.json"), text + "\n").unwrap();
+    let csv = |name: &str, bytes: ptacorr::Result<Vec<u8>>| {
+        std::fs::write(dir.join(name), bytes.expect("fixture table")).unwrap();
+    };
+    csv(
+        "posterior-fixed-index.csv",
+        ptacorr::output::csv_table(&fixed, "fixed"),
+    );
+    csv(
+        "posterior-grid.csv",
+        ptacorr::output::csv_table(&grid, "grid"),
+    );
+    csv(
+        "marginals.csv",
+        ptacorr::output::csv_table(&marg, "marginals"),
+    );
+    seal(dir);
+}

@@ -10,9 +10,9 @@ use serde::Serialize;
 
 use super::canvas::{
     draw_axes, draw_caption, draw_legend, linear_ticks, log_ticks, single_panel, LegendItem,
-    LineStyle, Marker, MarkerStyle, PanelLayout, Sample, Scale, Stroke, Svg, BLACK, BLUE, GREEN,
-    SKY, VERMILLION,
+    LineStyle, Marker, MarkerStyle, PanelLayout, Sample, Scale, Stroke, Svg,
 };
+use super::common::{colour, label};
 use super::{Drawn, FigureError, FigureOptions};
 
 pub(crate) const STEM: &str = "free-spectrum";
@@ -69,24 +69,6 @@ struct Sidecar<'a> {
     points: &'a [FreeSpectrumPoint],
     y_axis: [f64; 2],
     caption: String,
-}
-
-fn colour(model: &str) -> &'static str {
-    match model {
-        "curn" => BLACK,
-        "hd" => VERMILLION,
-        "monopole" => BLUE,
-        "dipole" => GREEN,
-        _ => SKY,
-    }
-}
-
-fn label(model: &str) -> String {
-    match model {
-        "curn" => "uncorrelated (CURN)".to_string(),
-        "hd" => "Hellings–Downs".to_string(),
-        other => other.to_string(),
-    }
 }
 
 pub(crate) fn draw(
@@ -231,15 +213,6 @@ pub(crate) fn draw(
         caption: caption.clone(),
     };
     Drawn::new(stem, title, caption, svg_text, &sidecar)
-}
-
-/// The title of a common folder (summary.json `title`), or the folder label.
-pub(crate) fn common_title(dir: &Path, fallback: &str) -> String {
-    std::fs::read_to_string(dir.join("summary.json"))
-        .ok()
-        .and_then(|t| serde_json::from_str::<serde_json::Value>(&t).ok())
-        .and_then(|v| v.get("title").and_then(|t| t.as_str()).map(str::to_string))
-        .unwrap_or_else(|| fallback.to_string())
 }
 
 #[cfg(test)]

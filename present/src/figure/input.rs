@@ -19,8 +19,6 @@ pub const NULL_JSON: &str = "null.json";
 pub const TRIALS_CSV: &str = "trials.csv";
 pub const RECOVERY_JSON: &str = "recovery.json";
 pub const RECOVERY_CSV: &str = "recovery.csv";
-/// The marginals of a `ptacorr common` folder (engine `common::write`): marks the folder kind.
-pub const COMMON_MARGINALS_CSV: &str = "marginals.csv";
 
 /// The kind of a ptacorr output folder, in the order the report presents them.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
@@ -33,6 +31,9 @@ pub enum FolderKind {
     Inject,
     /// `ptacorr noise`: estimates.csv, diagnostics.csv, provenance.json (figure/noise.rs).
     Noise,
+    /// `ptacorr common`: posterior-fixed-index.csv, summary.json, posterior-grid.csv,
+    /// marginals.csv (figure/common.rs). Its summary.json is not a correlate folder's.
+    Common,
 }
 
 impl FolderKind {
@@ -42,6 +43,7 @@ impl FolderKind {
             FolderKind::Null => "null",
             FolderKind::Inject => "inject",
             FolderKind::Noise => "noise",
+            FolderKind::Common => "common",
         }
     }
 
@@ -54,6 +56,12 @@ impl FolderKind {
                 ptacorr::noise_fit::ESTIMATES_FILE,
                 ptacorr::noise_fit::DIAGNOSTICS_FILE,
                 ptacorr::noise_fit::PROVENANCE_FILE,
+            ],
+            FolderKind::Common => &[
+                ptacorr::common::FIXED_INDEX_FILE,
+                ptacorr::common::COMMON_SUMMARY_FILE,
+                ptacorr::common::GRID_FILE,
+                ptacorr::common::MARGINALS_FILE,
             ],
         }
     }
@@ -70,22 +78,19 @@ pub fn detect_kinds(dir: &Path) -> Result<Vec<FolderKind>, FigureError> {
             reason: "it is not a readable directory".to_string(),
         });
     }
-    // A `ptacorr common` folder also holds a summary.json: say what it lacks, not that it
-    // lacks the correlate files.
-    let free = super::free_spectrum::FREE_SPECTRUM_CSV;
-    if dir.join(COMMON_MARGINALS_CSV).is_file() && !dir.join(free).is_file() {
-        return Err(FigureError::CommonWithoutFreeSpectrum {
-            dir: dir.to_path_buf(),
-            file: free,
-        });
-    }
     let mut kinds = Vec::new();
+    // A common folder's summary.json is its own, not a correlate folder's.
+    let common = dir.join(FolderKind::Common.files()[0]).is_file();
     for kind in [
         FolderKind::Correlate,
         FolderKind::Null,
         FolderKind::Inject,
         FolderKind::Noise,
+        FolderKind::Common,
     ] {
+        if common && kind == FolderKind::Correlate {
+            continue;
+        }
         let files = kind.files();
         if dir.join(files[0]).is_file() {
             for f in &files[1..] {
@@ -104,8 +109,9 @@ pub fn detect_kinds(dir: &Path) -> Result<Vec<FolderKind>, FigureError> {
         return Err(FigureError::UnknownFolder {
             dir: dir.to_path_buf(),
             reason: format!(
-                "none of {SUMMARY_JSON}, {NULL_JSON}, {RECOVERY_JSON} or {} is there",
-                ptacorr::noise_fit::ESTIMATES_FILE
+                "none of {SUMMARY_JSON}, {NULL_JSON}, {RECOVERY_JSON}, {} or {} is there",
+                ptacorr::noise_fit::ESTIMATES_FILE,
+                ptacorr::common::FIXED_INDEX_FILE
             ),
         });
     }

@@ -8,8 +8,10 @@
 //!   value and its p-value ([`null`]);
 //! - an inject folder (recovery.json, recovery.csv): recovered against injected amplitude
 //!   and the detection probability ([`recovery`]);
-//! - a common folder with a sampled free spectrum (free-spectrum.csv): the per-frequency
-//!   posteriors with the grid fit's power law ([`free_spectrum`]);
+//! - a common folder (posterior-fixed-index.csv, summary.json, posterior-grid.csv): the
+//!   posterior of log10 A at the fixed index for every correlation model and the joint
+//!   (log10 A, gamma) credible regions ([`common`]); with free-spectrum.csv also the
+//!   per-frequency posteriors with the grid fit's power law ([`free_spectrum`]);
 //! - a noise folder (estimates.csv, diagnostics.csv, chains/): one figure per pulsar with the
 //!   marginal posteriors of its noise hyperparameters ([`noise`]).
 //!
@@ -20,6 +22,7 @@
 
 mod angular;
 mod canvas;
+pub mod common;
 pub(crate) mod format;
 pub mod free_spectrum;
 mod input;
@@ -79,9 +82,6 @@ pub enum FigureError {
         file: &'static str,
         kind: &'static str,
     },
-    /// A `ptacorr common` folder without a free spectrum: nothing of it is drawn.
-    #[error("{dir}: a `ptacorr common` folder without {file}: `plot` and `report` draw `correlate`, `null`, `inject` and `noise` folders and the free spectrum of a `common` folder (`ptacorr common --free-spectrum MODELS` writes {file})")]
-    CommonWithoutFreeSpectrum { dir: PathBuf, file: &'static str },
     #[error("option `{option}`: {reason}")]
     InvalidOption {
         option: &'static str,
@@ -278,6 +278,9 @@ pub(crate) fn draw_kind(
         FolderKind::Noise => {
             noise::draw_all(&noise::NoiseData::load(dir)?, opts, stem_suffix, &source)?
         }
+        FolderKind::Common => {
+            common::draw_all(&common::CommonData::load(dir)?, opts, stem_suffix, &source)?
+        }
     })
 }
 
@@ -311,10 +314,6 @@ pub fn plot_folder(
     opts: &FigureOptions,
 ) -> Result<Vec<PathBuf>, FigureError> {
     check_options(opts)?;
-    // A `ptacorr common` folder with a sampled free spectrum: its one figure.
-    if dir.join(free_spectrum::FREE_SPECTRUM_CSV).is_file() {
-        return plot_free_spectrum(dir, format, out, opts);
-    }
     let kinds = detect_kinds(dir)?;
     let out_dir = out.unwrap_or(dir);
     std::fs::create_dir_all(out_dir).map_err(|source| FigureError::Write {
@@ -334,31 +333,6 @@ pub fn plot_folder(
         }
     }
     Ok(written)
-}
-
-/// The free-spectrum figure of a `ptacorr common` folder (manifest checked first).
-fn plot_free_spectrum(
-    dir: &Path,
-    format: FigureFormat,
-    out: Option<&Path>,
-    opts: &FigureOptions,
-) -> Result<Vec<PathBuf>, FigureError> {
-    ptacorr::output::check_manifest(dir)?;
-    let points = free_spectrum::read_free_spectrum(dir)?;
-    let source = folder_label(dir);
-    let title = free_spectrum::common_title(dir, &source);
-    let d = free_spectrum::draw(&points, &title, opts, free_spectrum::STEM, &source)?;
-    let out_dir = out.unwrap_or(dir);
-    std::fs::create_dir_all(out_dir).map_err(|source| FigureError::Write {
-        path: out_dir.to_path_buf(),
-        source,
-    })?;
-    let bytes = encode(&d, format, opts)?;
-    let fig = out_dir.join(format!("{}.{}", d.stem, format.extension()));
-    write_atomic(&fig, &bytes)?;
-    let side = out_dir.join(format!("{}.json", d.stem));
-    write_atomic(&side, d.sidecar.as_bytes())?;
-    Ok(vec![fig, side])
 }
 
 /// Encodes a drawn figure in `format`.
@@ -613,28 +587,6 @@ mod tests {
             plot_folder(&empty, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
         assert!(matches!(e, FigureError::UnknownFolder { .. }), "{e}");
         assert!(e.to_string().contains("empty"));
-        // A `common` folder without a free spectrum: the message names what it lacks and the
-        // folders `plot` draws, not the correlate folder's bins.csv.
-        let common = t.sub("common");
-        for f in [input::SUMMARY_JSON, input::COMMON_MARGINALS_CSV] {
-            std::fs::write(common.join(f), "").unwrap();
-        }
-        let e =
-            plot_folder(&common, FigureFormat::Svg, None, &FigureOptions::default()).unwrap_err();
-        let msg = e.to_string();
-        assert!(
-            matches!(e, FigureError::CommonWithoutFreeSpectrum { .. }),
-            "{msg}"
-        );
-        for part in [
-            "free-spectrum.csv",
-            "`correlate`",
-            "`noise`",
-            "--free-spectrum",
-        ] {
-            assert!(msg.contains(part), "{part} not in {msg}");
-        }
-        assert!(!msg.contains(input::BINS_CSV), "{msg}");
     }
 
     #[test]
