@@ -326,9 +326,17 @@ pub fn csv_columns<T: serde::de::DeserializeOwned>() -> &'static [&'static str] 
 /// [`Error::Input`] naming the file, the line and the column. Rows come with their line.
 pub fn read_csv<T: serde::de::DeserializeOwned>(path: &Path) -> Result<Vec<(usize, T)>> {
     let bytes = std::fs::read(path).map_err(|e| Error::io(path, e))?;
+    parse_csv(&bytes, path)
+}
+
+/// [`read_csv`] of bytes already read from `path` (named in the errors).
+pub fn parse_csv<T: serde::de::DeserializeOwned>(
+    bytes: &[u8],
+    path: &Path,
+) -> Result<Vec<(usize, T)>> {
     let mut rdr = csv::ReaderBuilder::new()
         .trim(csv::Trim::All)
-        .from_reader(bytes.as_slice());
+        .from_reader(bytes);
     let bad = |e: csv::Error, header: &csv::StringRecord| {
         let line = e.position().map(|p| p.line() as usize);
         match e.kind() {
@@ -930,7 +938,7 @@ mod tests {
 
     #[test]
     fn atomic_write_leaves_only_the_final_file() {
-        let dir = std::env::temp_dir().join(format!("ptacorr-output-{}", std::process::id()));
+        let dir = crate::testing::temp_dir("output");
         let path = dir.join("a.txt");
         write_atomic(&path, b"hello").unwrap();
         assert_eq!(std::fs::read(&path).unwrap(), b"hello");
@@ -943,9 +951,7 @@ mod tests {
     }
 
     fn scratch(name: &str) -> PathBuf {
-        let d = std::env::temp_dir().join(format!("ptacorr-set-{}-{name}", std::process::id()));
-        let _ = std::fs::remove_dir_all(&d);
-        d
+        crate::testing::temp_path(&format!("set-{name}"))
     }
 
     fn names(dir: &Path) -> Vec<String> {
@@ -1081,6 +1087,120 @@ mod tests {
     fn floats_round_trip() {
         for x in [1.0e-30, -0.1, 4.333333333333333, 12345.678] {
             assert_eq!(fmt_f64(x).parse::<f64>().unwrap(), x);
+        }
+    }
+
+    /// The inline code spans of a Markdown page with their white space removed (a span may
+    /// wrap over lines); fenced blocks are left out.
+    fn code_spans(page: &str) -> Vec<String> {
+        let text: String = page
+            .lines()
+            .filter(|l| !l.trim_start().starts_with("```"))
+            .collect::<Vec<_>>()
+            .join("\n");
+        text.split('`')
+            .skip(1)
+            .step_by(2)
+            .map(|s| s.split_whitespace().collect())
+            .collect()
+    }
+
+    /// The column lists the user documentation gives (README.md and docs/, the published
+    /// description of every table) are the row types' columns, which `csv_table` and the
+    /// writers of the csv crate take the header from: a column renamed, added or moved in a
+    /// row type without its documentation fails here. (No hand-written header constants: the
+    /// header of every table is its row type's.)
+    #[test]
+    fn documented_columns_are_the_row_types() {
+        fn columns<T: serde::de::DeserializeOwned>() -> String {
+            csv_columns::<T>().join(",")
+        }
+        use crate::{
+            analysis, bin_covariance, bins, common::write as common, hd_spread, inject, noise_fit,
+            null, per_frequency,
+        };
+        let root = Path::new(env!("CARGO_MANIFEST_DIR")).join("..");
+        for (page, file, cols) in [
+            ("README.md", "pairs.csv", columns::<analysis::PairRow>()),
+            ("README.md", "bins.csv", columns::<bins::Bin>()),
+            (
+                "README.md",
+                "per-frequency.csv",
+                columns::<per_frequency::PerFrequencyRow>(),
+            ),
+            (
+                "README.md",
+                "per-frequency-covariance.csv",
+                columns::<per_frequency::PerFrequencyCovarianceRow>(),
+            ),
+            (
+                "README.md",
+                "hd-spread.csv",
+                columns::<hd_spread::HdSpreadRow>(),
+            ),
+            (
+                "README.md",
+                "bins-covariance.csv",
+                columns::<bin_covariance::BinCovarianceRow>(),
+            ),
+            (
+                "README.md",
+                "posterior-fixed-index.csv",
+                columns::<common::FixedRow>(),
+            ),
+            (
+                "README.md",
+                "posterior-grid.csv",
+                columns::<common::GridRow>(),
+            ),
+            (
+                "README.md",
+                "marginals.csv",
+                columns::<common::MarginalRow>(),
+            ),
+            ("docs/null.md", "trials.csv", columns::<null::TrialRow>()),
+            (
+                "docs/injection.md",
+                "trials.csv",
+                columns::<null::TrialRow>(),
+            ),
+            (
+                "docs/injection.md",
+                "recovery.csv",
+                columns::<inject::RecoveryRow>(),
+            ),
+            (
+                "docs/injection.md",
+                "realizations.csv",
+                columns::<inject::Record>(),
+            ),
+            (
+                "docs/injection.md",
+                "coverage_plugin.csv",
+                columns::<inject::PluginRow>(),
+            ),
+            (
+                "docs/noise-estimation.md",
+                "estimates.csv",
+                columns::<noise_fit::Estimate>(),
+            ),
+            (
+                "docs/noise-estimation.md",
+                "diagnostics.csv",
+                columns::<noise_fit::DiagnosticsRow>(),
+            ),
+            (
+                "docs/noise-estimation.md",
+                "truth.csv",
+                columns::<noise_fit::truth::TruthValue>(),
+            ),
+        ] {
+            assert!(cols.contains(','), "{file}: no columns from its row type");
+            let text = std::fs::read_to_string(root.join(page)).unwrap();
+            assert!(
+                code_spans(&text).contains(&cols),
+                "{page} does not document the columns of {file}: `{cols}`"
+            );
         }
     }
 }

@@ -2,16 +2,15 @@
 //! false-alarm probability.
 
 use crate::error::{Error, Result};
-use crate::null::parse_trials;
+use crate::null::read_trials;
 use std::path::Path;
 
-/// The SNRs of a null folder's `trials.csv` (read by [`crate::null::parse_trials`]); at least
+/// The SNRs of a null folder's `trials.csv` (read by [`crate::null::read_trials`]); at least
 /// 10 trials.
 pub fn read_null_trials(dir: &Path) -> Result<Vec<f64>> {
     crate::output::check_manifest(dir)?;
     let path = dir.join("trials.csv");
-    let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
-    let out: Vec<f64> = parse_trials(&text, &path)?.iter().map(|t| t.snr).collect();
+    let out: Vec<f64> = read_trials(&path)?.iter().map(|t| t.snr).collect();
     if out.len() < 10 {
         return Err(Error::input(
             &path,

@@ -4,7 +4,7 @@
 //! seeds or settings are refused, and missing or duplicated shards are reported.
 
 use super::{
-    build_report, parse_trials, write_outputs, AnalyticNull, EigenvalueRow, NullReport, Trial,
+    build_report, read_trials, write_outputs, AnalyticNull, EigenvalueRow, NullReport, Trial,
     EIGENVALUES_FILE,
 };
 use crate::error::{Error, Result};
@@ -23,9 +23,7 @@ fn read_part(dir: &Path) -> Result<Part> {
     let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
     let report: NullReport = serde_json::from_str(&text)
         .map_err(|e| Error::input(&path, Some(e.line()), None, e.to_string()))?;
-    let tpath = dir.join("trials.csv");
-    let ttext = std::fs::read_to_string(&tpath).map_err(|e| Error::io(&tpath, e))?;
-    let trials = parse_trials(&ttext, &tpath)?;
+    let trials = read_trials(&dir.join("trials.csv"))?;
     let eigenvalues = if report.analytic.is_some() {
         let rows = crate::output::read_csv::<EigenvalueRow>(&dir.join(EIGENVALUES_FILE))?;
         Some(rows.into_iter().map(|(_, r)| r.eigenvalue).collect())

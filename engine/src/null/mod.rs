@@ -439,6 +439,27 @@ pub fn build_report(
     })
 }
 
+/// One row of `trials.csv`: a trial's global index, its S/N and its A^2 estimate. The one
+/// schema of the file: [`trials_csv`] takes its header from this type and writes its cells as
+/// [`crate::output::csv_table`] would (checked by a test), and [`parse_trials`] reads it with
+/// [`crate::output::read_csv`]'s parser.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+pub struct TrialRow {
+    pub trial: u64,
+    pub snr: f64,
+    pub amplitude2: f64,
+}
+
+impl From<&Trial> for TrialRow {
+    fn from(t: &Trial) -> Self {
+        TrialRow {
+            trial: t.index,
+            snr: t.snr,
+            amplitude2: t.amplitude2,
+        }
+    }
+}
+
 /// A header and one line per trial, the lines formatted in parallel in blocks and joined in
 /// order (the same bytes as one sequential loop: formatting a number does not depend on the
 /// thread; at 10^6 trials the sequential loop was a serial second of a run that scrambles in a
@@ -463,65 +484,69 @@ fn trial_lines(header: &str, trials: &[Trial], line: fn(&mut String, &Trial)) ->
     s
 }
 
-/// `trial,snr,amplitude2` (global trial index).
+/// `trials.csv`: the rows of [`TrialRow`] (the scramble's hot path, so the cells are written in
+/// place rather than through the csv writer; the bytes equal `csv_table` of the rows).
 pub fn trials_csv(trials: &[Trial]) -> String {
-    trial_lines("trial,snr,amplitude2\n", trials, |s, t| {
-        // `{:?}` is fmt_f64's round-trip form, written in place (no String per value).
-        let _ = writeln!(s, "{},{:?},{:?}", t.index, t.snr, t.amplitude2);
+    let header = format!("{}\n", crate::output::csv_columns::<TrialRow>().join(","));
+    trial_lines(&header, trials, |s, t| {
+        // Every field of the row, in its order (a field added to TrialRow fails to compile
+        // here); `{:?}` is fmt_f64's round-trip form, written in place (no String per value).
+        let TrialRow {
+            trial,
+            snr,
+            amplitude2,
+        } = TrialRow::from(t);
+        let _ = writeln!(s, "{trial},{snr:?},{amplitude2:?}");
     })
 }
 
-/// Parse a trials file (`trial,snr,amplitude2`, or the checkpoint form with a fourth column
-/// `attempts`): the one reader of trials files in the engine (null merging, resuming, and the
-/// injection threshold). SNR and amplitude2 must be finite.
-pub fn parse_trials(text: &str, path: &Path) -> Result<Vec<Trial>> {
-    let mut lines = text.lines().enumerate();
-    let header = lines.next().map(|(_, h)| h).unwrap_or("");
-    let with_attempts = match header {
-        "trial,snr,amplitude2" => false,
-        "trial,snr,amplitude2,attempts" => true,
-        _ => {
-            return Err(Error::input(
-                path,
-                Some(1),
-                None,
-                format!("expected header trial,snr,amplitude2, got {header:?}"),
-            ))
+impl From<TrialRow> for Trial {
+    fn from(r: TrialRow) -> Self {
+        Trial {
+            index: r.trial,
+            snr: r.snr,
+            amplitude2: r.amplitude2,
+            attempts: 1,
         }
-    };
-    let mut out = Vec::new();
-    for (i, line) in lines {
-        if line.is_empty() {
-            continue;
-        }
-        let f: Vec<&str> = line.split(',').collect();
-        let bad = |field: &str| Error::input(path, Some(i + 1), Some(field), "malformed value");
-        if f.len() != if with_attempts { 4 } else { 3 } {
-            return Err(Error::input(
-                path,
-                Some(i + 1),
-                None,
-                "wrong number of columns",
-            ));
-        }
-        let finite = |k: usize, field: &str| {
-            f[k].parse::<f64>()
-                .ok()
-                .filter(|v| v.is_finite())
-                .ok_or_else(|| Error::input(path, Some(i + 1), Some(field), "not a finite number"))
-        };
-        out.push(Trial {
-            index: f[0].parse().map_err(|_| bad("trial"))?,
-            snr: finite(1, "snr")?,
-            amplitude2: finite(2, "amplitude2")?,
-            attempts: if with_attempts {
-                f[3].parse().map_err(|_| bad("attempts"))?
-            } else {
-                1
-            },
-        });
     }
-    Ok(out)
+}
+
+/// The trials of the rows of a table read from `path`, each with a finite SNR and A^2
+/// (trials.csv and the checkpoints; a bad value names its line and column).
+fn finite_trials<R: Into<Trial>>(rows: Vec<(usize, R)>, path: &Path) -> Result<Vec<Trial>> {
+    rows.into_iter()
+        .map(|(line, r)| {
+            let t: Trial = r.into();
+            for (field, v) in [("snr", t.snr), ("amplitude2", t.amplitude2)] {
+                if !v.is_finite() {
+                    return Err(Error::input(
+                        path,
+                        Some(line),
+                        Some(field),
+                        "not a finite number",
+                    ));
+                }
+            }
+            Ok(t)
+        })
+        .collect()
+}
+
+/// Parse a `trials.csv` read from `path` with its row type [`TrialRow`] (through
+/// [`crate::output::parse_csv`]): the one reader of trials files (null merging, the injection
+/// threshold, the figures). SNR and amplitude2 must be finite. Checkpoint chunks, which add an
+/// `attempts` column, are read with their own row type.
+pub fn parse_trials(text: &str, path: &Path) -> Result<Vec<Trial>> {
+    finite_trials(
+        crate::output::parse_csv::<TrialRow>(text.as_bytes(), path)?,
+        path,
+    )
+}
+
+/// Read a null folder's `trials.csv` ([`parse_trials`]).
+pub fn read_trials(path: &Path) -> Result<Vec<Trial>> {
+    let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, e))?;
+    parse_trials(&text, path)
 }
 
 /// One row of a checkpoint chunk (`.partial/chunk-*.csv`): a trial with the draws it took.
@@ -532,6 +557,17 @@ struct CheckpointRow {
     snr: f64,
     amplitude2: f64,
     attempts: u64,
+}
+
+impl From<CheckpointRow> for Trial {
+    fn from(r: CheckpointRow) -> Self {
+        Trial {
+            index: r.trial,
+            snr: r.snr,
+            amplitude2: r.amplitude2,
+            attempts: r.attempts,
+        }
+    }
 }
 
 fn checkpoint_csv(trials: &[Trial]) -> Result<Vec<u8>> {
@@ -549,27 +585,7 @@ fn checkpoint_csv(trials: &[Trial]) -> Result<Vec<u8>> {
 
 /// Read a checkpoint chunk; SNR and amplitude2 must be finite (as in trials.csv).
 fn read_checkpoint(path: &Path) -> Result<Vec<Trial>> {
-    crate::output::read_csv::<CheckpointRow>(path)?
-        .into_iter()
-        .map(|(line, r)| {
-            for (field, v) in [("snr", r.snr), ("amplitude2", r.amplitude2)] {
-                if !v.is_finite() {
-                    return Err(Error::input(
-                        path,
-                        Some(line),
-                        Some(field),
-                        "not a finite number",
-                    ));
-                }
-            }
-            Ok(Trial {
-                index: r.trial,
-                snr: r.snr,
-                amplitude2: r.amplitude2,
-                attempts: r.attempts,
-            })
-        })
-        .collect()
+    finite_trials(crate::output::read_csv::<CheckpointRow>(path)?, path)
 }
 
 /// One row of the analytic null's eigenvalue file ([`EIGENVALUES_FILE`]).

@@ -451,3 +451,117 @@ fn null_noise_only_p_values_are_uniform() {
 fn null_noise_only_p_values_are_uniform_long() {
     noise_only_uniform(1000);
 }
+
+/// Reference: the csv crate's writer (through `output::csv_table`, the engine's one table
+/// writer) and Rust's own f64 parser for the round trip. The fast writer of trials.csv must
+/// produce the bytes `csv_table` writes for the same `TrialRow`s, across the parallel blocks of
+/// `trial_lines` (8192 rows each) and for floats whose shortest form is exponential, subnormal,
+/// negative zero or integral; the reader must give every bit back.
+#[test]
+fn trials_csv_is_the_csv_table_of_its_row_type_and_reads_back() {
+    let edge = [
+        0.0,
+        -0.0,
+        1.0,
+        -2.5,
+        1e-300,
+        f64::MIN_POSITIVE,
+        5e-324,
+        1e16,
+        1e300,
+        f64::MAX,
+        0.1 + 0.2,
+        std::f64::consts::PI,
+    ];
+    let trials: Vec<Trial> = (0..20_000u64)
+        .map(|i| {
+            // A fixed, varied set of finite floats (a golden-ratio sequence scaled by powers of
+            // ten), plus the edge cases above.
+            let u = (i as f64 * 0.618_033_988_749_895).fract();
+            let scale = 10f64.powi((i % 61) as i32 - 30);
+            Trial {
+                index: 7 + i,
+                snr: if i < edge.len() as u64 {
+                    edge[i as usize]
+                } else {
+                    (u - 0.5) * scale
+                },
+                amplitude2: if i < edge.len() as u64 {
+                    -edge[i as usize]
+                } else {
+                    u * 1e-30 * scale
+                },
+                attempts: 1,
+            }
+        })
+        .collect();
+    let fast = trials_csv(&trials);
+    let rows: Vec<TrialRow> = trials.iter().map(TrialRow::from).collect();
+    let table = crate::output::csv_table(&rows, "trials.csv").unwrap();
+    assert!(
+        fast.as_bytes() == table.as_slice(),
+        "trials_csv differs from csv_table"
+    );
+    let back = parse_trials(&fast, Path::new("trials.csv")).unwrap();
+    assert_eq!(back.len(), trials.len());
+    for (a, b) in back.iter().zip(&trials) {
+        assert_eq!(a.index, b.index);
+        assert_eq!(a.snr.to_bits(), b.snr.to_bits());
+        assert_eq!(a.amplitude2.to_bits(), b.amplitude2.to_bits());
+    }
+    // The header alone: no trials, no rows.
+    assert_eq!(trials_csv(&[]), "trial,snr,amplitude2\n");
+    assert!(parse_trials("trial,snr,amplitude2\n", Path::new("t.csv"))
+        .unwrap()
+        .is_empty());
+}
+
+/// The errors of a bad trials.csv name the file, the line and the column (house rule: every
+/// bad input is a typed error naming file, line and field).
+#[test]
+fn bad_trials_files_name_the_line_and_the_column() {
+    let path = Path::new("null/trials.csv");
+    let where_ = |text: &str| match parse_trials(text, path) {
+        Err(Error::Input {
+            path: p,
+            line,
+            field,
+            message,
+        }) => {
+            assert_eq!(p, path);
+            (line, field, message)
+        }
+        other => panic!("{text:?}: expected an input error, got {other:?}"),
+    };
+    let ok = "trial,snr,amplitude2\n0,1.5,2e-30\n";
+    assert_eq!(parse_trials(ok, path).unwrap().len(), 1);
+    for (text, line, field, message) in [
+        (
+            "trial,snr,amplitude2\n0,1.5,2e-30\n1,NaN,1.0\n",
+            3,
+            Some("snr"),
+            Some("not a finite number"),
+        ),
+        (
+            "trial,snr,amplitude2\n0,1.5,inf\n",
+            2,
+            Some("amplitude2"),
+            Some("not a finite number"),
+        ),
+        ("trial,snr,amplitude2\n0,x,1.0\n", 2, Some("snr"), None),
+        ("trial,snr,amplitude2\n-1,1.0,1.0\n", 2, Some("trial"), None),
+        ("trial,snr,amplitude2\n0,1.0\n", 2, None, None),
+        ("trial,snr\n0,1.0\n", 1, Some("amplitude2"), None),
+        ("", 1, Some("trial"), None),
+    ] {
+        let (l, f, m) = where_(text);
+        assert_eq!(l, Some(line), "{text:?}");
+        assert_eq!(f.as_deref(), field, "{text:?}");
+        if let Some(want) = message {
+            assert!(m.contains(want), "{text:?}: {m}");
+        }
+    }
+    // The files of shards concatenated repeat the header; it is skipped.
+    let cat = format!("{ok}trial,snr,amplitude2\n1,0.5,1e-31\n");
+    assert_eq!(parse_trials(&cat, path).unwrap().len(), 2);
+}
