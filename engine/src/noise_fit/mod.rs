@@ -508,20 +508,6 @@ pub fn noise_model(run: &NoiseRun) -> NoiseModel {
     }
 }
 
-/// CSV text of serialisable rows (header from the row type).
-fn csv_text<T: Serialize>(rows: &[T], what: &str) -> Result<String> {
-    let mut w = csv::Writer::from_writer(Vec::new());
-    for r in rows {
-        w.serialize(r).map_err(|e| Error::NonFinite {
-            what: format!("{what} ({e})"),
-        })?;
-    }
-    let bytes = w.into_inner().map_err(|e| Error::NonFinite {
-        what: format!("{what} ({e})"),
-    })?;
-    Ok(String::from_utf8(bytes).expect("csv is UTF-8"))
-}
-
 /// The file names of a noise folder.
 pub const NOISE_FILE: &str = "noise.toml";
 /// First line of a written `noise.toml`.
@@ -557,34 +543,57 @@ fn recorded_settings(prov: &NoiseProvenance) -> (ModelValues, SampleMode) {
     (values, mode)
 }
 
+/// The files of a noise folder before its chain tables: `noise.toml` (the model, under a first
+/// line that says how it was estimated), `estimates.csv`, `diagnostics.csv`, `priors.toml` and
+/// (when there are true values) `truth.csv`, the tables from their row types. The one writer of
+/// these files, for a run and for the merge of its shards, so both write the same bytes (and
+/// the same manifest order) for the same rows.
+struct Files<'a> {
+    model: &'a NoiseModel,
+    estimates: &'a [Estimate],
+    diagnostics: &'a [DiagnosticsRow],
+    priors_toml: &'a str,
+    truth: &'a [truth::TruthValue],
+}
+
+impl Files<'_> {
+    fn stage(&self, values: ModelValues, mode: SampleMode, set: &mut OutputSet) -> Result<()> {
+        // The csv crate's writer, shared with the correlate and common tables (its float form,
+        // shortest round trip, reads back bit for bit).
+        use crate::common::write::to_csv;
+        let noise_text = toml::to_string(self.model).map_err(|e| Error::NonFinite {
+            what: format!("noise.toml ({e})"),
+        })?;
+        set.write(
+            NOISE_FILE,
+            format!("{}{noise_text}", noise_header(values, mode)).as_bytes(),
+        )?;
+        set.write(ESTIMATES_FILE, &to_csv(self.estimates, ESTIMATES_FILE)?)?;
+        set.write(
+            DIAGNOSTICS_FILE,
+            &to_csv(self.diagnostics, DIAGNOSTICS_FILE)?,
+        )?;
+        set.write(PRIORS_FILE, self.priors_toml.as_bytes())?;
+        if !self.truth.is_empty() {
+            set.write(truth::TRUTH_FILE, &to_csv(self.truth, truth::TRUTH_FILE)?)?;
+        }
+        Ok(())
+    }
+}
+
 /// Stage a run's files in `set` (after all computation); the caller commits.
 pub fn write_run(run: &NoiseRun, set: &mut OutputSet) -> Result<()> {
     let (values, mode) = recorded_settings(&run.provenance);
-    let model = noise_model(run);
-    let noise_text = toml::to_string(&model).map_err(|e| Error::NonFinite {
-        what: format!("noise.toml ({e})"),
-    })?;
     let estimates: Vec<Estimate> = run.fits.iter().flat_map(|f| f.estimates()).collect();
     let diagnostics: Vec<DiagnosticsRow> = run.fits.iter().map(|f| f.diagnostics(mode)).collect();
-    set.write(
-        NOISE_FILE,
-        format!("{}{noise_text}", noise_header(values, mode)).as_bytes(),
-    )?;
-    set.write(
-        ESTIMATES_FILE,
-        csv_text(&estimates, ESTIMATES_FILE)?.as_bytes(),
-    )?;
-    set.write(
-        DIAGNOSTICS_FILE,
-        csv_text(&diagnostics, DIAGNOSTICS_FILE)?.as_bytes(),
-    )?;
-    set.write(PRIORS_FILE, run.priors_toml.as_bytes())?;
-    if !run.truth.is_empty() {
-        set.write(
-            truth::TRUTH_FILE,
-            csv_text(&run.truth, truth::TRUTH_FILE)?.as_bytes(),
-        )?;
+    Files {
+        model: &noise_model(run),
+        estimates: &estimates,
+        diagnostics: &diagnostics,
+        priors_toml: &run.priors_toml,
+        truth: &run.truth,
     }
+    .stage(values, mode, set)?;
     for f in &run.fits {
         if let Some(s) = &f.samples {
             set.write(
@@ -594,6 +603,14 @@ pub fn write_run(run: &NoiseRun, set: &mut OutputSet) -> Result<()> {
         }
     }
     set.write_json(PROVENANCE_FILE, &run.provenance)
+}
+
+/// The rows of a table of a noise folder, read with the type it is written with.
+fn rows_of<T: serde::de::DeserializeOwned>(path: &Path) -> Result<Vec<T>> {
+    Ok(crate::output::read_csv::<T>(path)?
+        .into_iter()
+        .map(|(_, r)| r)
+        .collect())
 }
 
 /// Merge the folders of the shards of one noise run into the set `out`: every shard present
@@ -640,48 +657,23 @@ pub fn merge_shards(dirs: &[&Path], out: &mut OutputSet) -> Result<()> {
     }
     let (values, mode) = recorded_settings(&first);
     let mut model = NoiseModel::default();
-    let mut estimates = String::new();
-    let mut diagnostics = String::new();
+    let mut estimates: Vec<Estimate> = Vec::new();
+    let mut diagnostics: Vec<DiagnosticsRow> = Vec::new();
+    let mut truth_rows: Vec<truth::TruthValue> = Vec::new();
     let mut chains: Vec<(String, Vec<u8>)> = Vec::new();
-    let mut truth_text = String::new();
-    for (k, (prov, d)) in shards.iter().enumerate() {
-        // truth.csv (simulated releases only): the header once, then every shard's rows.
+    for (prov, d) in &shards {
+        // truth.csv (simulated releases only; a shard whose pulsars have no true value has none).
         let path = d.join(truth::TRUTH_FILE);
         if path.is_file() {
-            let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
-            let mut lines = text.lines();
-            let header = lines.next().unwrap_or_default();
-            if truth_text.is_empty() {
-                truth_text.push_str(header);
-                truth_text.push('\n');
-            }
-            for l in lines {
-                truth_text.push_str(l);
-                truth_text.push('\n');
-            }
+            truth_rows.extend(rows_of::<truth::TruthValue>(&path)?);
         }
         let path = d.join(NOISE_FILE);
         let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
         let m = NoiseModel::parse(&text, &path)?;
         model.common = m.common;
         model.pulsars.extend(m.pulsars);
-        for (name, acc) in [
-            (ESTIMATES_FILE, &mut estimates),
-            (DIAGNOSTICS_FILE, &mut diagnostics),
-        ] {
-            let path = d.join(name);
-            let text = std::fs::read_to_string(&path).map_err(|e| Error::io(&path, e))?;
-            let mut lines = text.lines();
-            let header = lines.next().unwrap_or_default();
-            if k == 0 {
-                acc.push_str(header);
-                acc.push('\n');
-            }
-            for l in lines {
-                acc.push_str(l);
-                acc.push('\n');
-            }
-        }
+        estimates.extend(rows_of::<Estimate>(&d.join(ESTIMATES_FILE))?);
+        diagnostics.extend(rows_of::<DiagnosticsRow>(&d.join(DIAGNOSTICS_FILE))?);
         if mode != SampleMode::MapOnly {
             for label in &prov.pulsars {
                 let name = format!("{CHAINS_DIR}/{label}.csv");
@@ -704,19 +696,14 @@ pub fn merge_shards(dirs: &[&Path], out: &mut OutputSet) -> Result<()> {
         .iter()
         .flat_map(|(p, _)| p.fit_warnings.clone())
         .collect();
-    let noise_text = toml::to_string(&model).map_err(|e| Error::NonFinite {
-        what: format!("noise.toml ({e})"),
-    })?;
-    out.write(
-        NOISE_FILE,
-        format!("{}{noise_text}", noise_header(values, mode)).as_bytes(),
-    )?;
-    out.write(ESTIMATES_FILE, estimates.as_bytes())?;
-    out.write(DIAGNOSTICS_FILE, diagnostics.as_bytes())?;
-    out.write(PRIORS_FILE, priors.as_bytes())?;
-    if !truth_text.is_empty() {
-        out.write(truth::TRUTH_FILE, truth_text.as_bytes())?;
+    Files {
+        model: &model,
+        estimates: &estimates,
+        diagnostics: &diagnostics,
+        priors_toml: &priors,
+        truth: &truth_rows,
     }
+    .stage(values, mode, out)?;
     for (name, bytes) in &chains {
         out.write(name, bytes)?;
     }
