@@ -52,13 +52,6 @@ impl Outcome {
     }
 }
 
-/// Header of recovery.csv.
-pub const RECOVERY_HEADER: &str = "amplitude,amplitude2_injected,realizations,amplitude2_mean,amplitude2_std,amplitude2_sem,bias,bias_sem,snr_mean,snr_std,coverage68_weak,coverage95_weak,coverage68_full,coverage95_full,detection_probability";
-
-/// Header of realizations.csv.
-pub const REALIZATIONS_HEADER: &str =
-    "amplitude,realization,amplitude2,amplitude2_sigma_weak,amplitude2_sigma_full,snr";
-
 /// Read realizations.csv (as written by [`Outcome::write`]; the files of shards concatenated
 /// read too, [`crate::output::read_csv`] skips a repeated header).
 pub fn read_realizations(path: &Path) -> Result<Vec<Record>> {

@@ -33,7 +33,7 @@ mod threshold;
 pub use crate::shard::Shard;
 pub use amplitudes::parse_amplitudes;
 pub use campaign::{assumptions, run_campaign, Campaign, Record};
-pub use files::{read_realizations, RecoveryFile, REALIZATIONS_HEADER, RECOVERY_HEADER};
+pub use files::{read_realizations, RecoveryFile};
 pub use merge::merge_shards;
 pub use settings::{
     AutoPowerChoice, InjectSettings, Mode, DEFAULT_NULL_TRIALS, DEFAULT_REALIZATIONS,

@@ -209,10 +209,16 @@ fn outputs_have_the_documented_shape_and_shards_merge() {
     assert!(merge_shards(&[shard_dirs[0].clone(), shard_dirs[0].clone()]).is_err());
 
     let csv = std::fs::read_to_string(dir.join("whole/recovery.csv")).unwrap();
-    assert_eq!(csv.lines().next().unwrap(), RECOVERY_HEADER);
+    // The header is the row type's columns (their documented list: output.rs's
+    // documented_columns_are_the_row_types).
+    let columns = crate::output::csv_columns::<RecoveryRow>();
+    assert_eq!(csv.lines().next().unwrap(), columns.join(","));
     assert_eq!(csv.lines().count(), 3);
     let real = std::fs::read_to_string(dir.join("whole/realizations.csv")).unwrap();
-    assert_eq!(real.lines().next().unwrap(), REALIZATIONS_HEADER);
+    assert_eq!(
+        real.lines().next().unwrap(),
+        crate::output::csv_columns::<Record>().join(",")
+    );
     assert_eq!(real.lines().count(), 1 + 16);
     let j: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(dir.join("whole/recovery.json")).unwrap())
@@ -237,9 +243,8 @@ fn outputs_have_the_documented_shape_and_shards_merge() {
     assert_eq!(j["realizations"], 8);
     assert_eq!(j["false_alarm_probability"], 0.05);
     let row = j["rows"][1].as_object().unwrap();
-    let fields: Vec<&str> = RECOVERY_HEADER.split(',').collect();
-    assert_eq!(row.len(), fields.len());
-    for f in fields {
+    assert_eq!(row.len(), columns.len());
+    for &f in columns {
         assert!(row.contains_key(f), "row lacks {f}");
     }
     // the per-realization files of shards concatenate into the whole set
