@@ -10,9 +10,8 @@ use ptacorr::orf;
 use serde::Serialize;
 
 use super::canvas::{
-    draw_axes, draw_caption, draw_legend, fixed_ticks, linear_ticks, single_panel, superscript,
-    LegendItem, LineStyle, Marker, MarkerStyle, PanelLayout, Sample, Scale, Stroke, Svg, BLACK,
-    BLUE, GREEN, INK, MUTED, PAIR_GREY, VERMILLION,
+    fixed_ticks, linear_ticks, single_panel, superscript, LegendItem, LineStyle, Marker,
+    MarkerStyle, Sample, Scale, Stroke, BLACK, BLUE, GREEN, INK, MUTED, PAIR_GREY, VERMILLION,
 };
 use super::format::{self, Style};
 use super::input::{CorrelateData, SUMMARY_JSON};
@@ -374,15 +373,8 @@ pub(crate) fn draw(
 
     // Layout in points.
     let aspect = opts.width.aspect(0.64, 0.42);
-    let PanelLayout {
-        w,
-        h,
-        pad,
-        plot,
-        legend_w,
-        lines,
-        cap_y,
-    } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
+    let layout = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
+    let plot = layout.plot;
 
     let xs = Scale {
         lo: 0.0,
@@ -394,9 +386,7 @@ pub(crate) fn draw(
     let ys = Scale::y(&yt, &plot, false);
 
     let title = format!("Angular correlation: {}", s.title);
-    let mut svg = Svg::new(w, h, stem);
-    let clip = svg.clip(plot);
-    draw_axes(&mut svg, plot, &xs, &ys, &xt, &yt, &x_label, &y_label)?;
+    let (mut svg, clip) = layout.open(stem, (&xs, &ys), (&xt, &yt), (&x_label, &y_label))?;
     svg.open("zero", Some(&clip), "");
     svg.line(
         plot.x,
@@ -491,9 +481,7 @@ pub(crate) fn draw(
         );
     }
     svg.close();
-    draw_legend(&mut svg, &items, plot.x, pad, legend_w)?;
-    let cap_box = draw_caption(&mut svg, &lines, pad, cap_y)?;
-    let svg_text = svg.finish(&title);
+    let (svg_text, cap_box) = layout.close(svg, &items, &title)?;
 
     let sidecar = Sidecar {
         figure: STEM,
@@ -510,7 +498,7 @@ pub(crate) fn draw(
         pairs_in_file: data.pairs.len(),
         pairs_outside_axes: pairs_outside,
         caption: caption.clone(),
-        size_in: [w / 72.0, h / 72.0],
+        size_in: layout.size_in(),
         plot_box_pt: plot.as_array(),
         caption_box_pt: cap_box.as_array(),
     };

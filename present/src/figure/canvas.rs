@@ -1201,6 +1201,44 @@ pub(crate) fn single_panel(
     })
 }
 
+impl PanelLayout {
+    /// Open the figure: the canvas, the clip path of the plot (its id) and the axes, grid and
+    /// tick labels (`scales`, `ticks` and `labels` are x, then y). The opening every one-panel
+    /// figure shares, in the order that fixes the SVG's bytes.
+    pub(crate) fn open(
+        &self,
+        stem: &str,
+        scales: (&Scale, &Scale),
+        ticks: (&Ticks, &Ticks),
+        labels: (&str, &str),
+    ) -> Result<(Svg, String), FigureError> {
+        let mut svg = Svg::new(self.w, self.h, stem);
+        let clip = svg.clip(self.plot);
+        draw_axes(
+            &mut svg, self.plot, scales.0, scales.1, ticks.0, ticks.1, labels.0, labels.1,
+        )?;
+        Ok((svg, clip))
+    }
+
+    /// Close the figure: the legend strip above the plot, the caption below it, and the SVG
+    /// text under `title`, with the caption's box (pt).
+    pub(crate) fn close(
+        &self,
+        mut svg: Svg,
+        items: &[LegendItem],
+        title: &str,
+    ) -> Result<(String, Rect), FigureError> {
+        draw_legend(&mut svg, items, self.plot.x, self.pad, self.legend_w)?;
+        let caption_box = draw_caption(&mut svg, &self.lines, self.pad, self.cap_y)?;
+        Ok((svg.finish(title), caption_box))
+    }
+
+    /// The figure's size in inches (the sidecar's `size_in`).
+    pub(crate) fn size_in(&self) -> [f64; 2] {
+        [self.w / 72.0, self.h / 72.0]
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

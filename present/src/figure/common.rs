@@ -15,8 +15,8 @@ use ptacorr::common::{
 use serde::Serialize;
 
 use super::canvas::{
-    draw_axes, draw_caption, draw_legend, linear_ticks, single_panel, LegendItem, LineStyle,
-    PanelLayout, Sample, Scale, Stroke, Svg, BLACK, BLUE, GREEN, MUTED, SKY, VERMILLION,
+    linear_ticks, single_panel, LegendItem, LineStyle, Sample, Scale, Stroke, BLACK, BLUE, GREEN,
+    MUTED, SKY, VERMILLION,
 };
 use super::free_spectrum::{read_free_spectrum, FreeSpectrumPoint, FREE_SPECTRUM_CSV};
 use super::{ColumnWidth, Drawn, FigureError, FigureOptions};
@@ -231,35 +231,22 @@ pub(crate) fn draw_amplitude(
         data.summary.n_frequencies,
         data.summary.priors.log10_amplitude
     );
-    let PanelLayout {
-        w,
-        h,
-        pad,
-        plot,
-        legend_w,
-        lines,
-        cap_y,
-    } = single_panel(
+    let layout = single_panel(
         opts.width.inches(),
         &yt,
         &items,
         &caption,
         layout_aspect(opts),
     )?;
+    let plot = layout.plot;
     let xs = Scale::x(&xt, &plot, false);
     let ys = Scale::y(&yt, &plot, false);
     let title = format!("Posterior of the common amplitude: {title_of_data}");
-    let mut svg = Svg::new(w, h, stem);
-    let clip = svg.clip(plot);
-    draw_axes(
-        &mut svg,
-        plot,
-        &xs,
-        &ys,
-        &xt,
-        &yt,
-        "log₁₀ A",
-        "posterior density",
+    let (mut svg, clip) = layout.open(
+        stem,
+        (&xs, &ys),
+        (&xt, &yt),
+        ("log₁₀ A", "posterior density"),
     )?;
     for c in &curves {
         let col = colour(c.model);
@@ -282,9 +269,7 @@ pub(crate) fn draw_amplitude(
         );
         svg.close();
     }
-    draw_legend(&mut svg, &items, plot.x, pad, legend_w)?;
-    draw_caption(&mut svg, &lines, pad, cap_y)?;
-    let svg_text = svg.finish(&title);
+    let (svg_text, _) = layout.close(svg, &items, &title)?;
     let side = AmplitudeSidecar {
         figure: AMPLITUDE_STEM,
         source_folder: source.to_string(),
@@ -578,35 +563,22 @@ pub(crate) fn draw_contours(
         surf[0].gammas[0],
         surf[0].gammas[surf[0].gammas.len() - 1],
     );
-    let PanelLayout {
-        w,
-        h,
-        pad,
-        plot,
-        legend_w,
-        lines,
-        cap_y,
-    } = single_panel(
+    let layout = single_panel(
         opts.width.inches(),
         &yt,
         &items,
         &caption,
         layout_aspect(opts),
     )?;
+    let plot = layout.plot;
     let xs = Scale::x(&xt, &plot, false);
     let ys = Scale::y(&yt, &plot, false);
     let title = format!("Joint posterior of the common process: {title_of_data}");
-    let mut svg = Svg::new(w, h, stem);
-    let clip = svg.clip(plot);
-    draw_axes(
-        &mut svg,
-        plot,
-        &xs,
-        &ys,
-        &xt,
-        &yt,
-        "log₁₀ A",
-        "spectral index γ",
+    let (mut svg, clip) = layout.open(
+        stem,
+        (&xs, &ys),
+        (&xt, &yt),
+        ("log₁₀ A", "spectral index γ"),
     )?;
     svg.open("fixed-index", Some(&clip), "");
     svg.line(
@@ -640,9 +612,7 @@ pub(crate) fn draw_contours(
         }
         svg.close();
     }
-    draw_legend(&mut svg, &items, plot.x, pad, legend_w)?;
-    draw_caption(&mut svg, &lines, pad, cap_y)?;
-    let svg_text = svg.finish(&title);
+    let (svg_text, _) = layout.close(svg, &items, &title)?;
     let side = ContourSidecar {
         figure: CONTOUR_STEM,
         source_folder: source.to_string(),

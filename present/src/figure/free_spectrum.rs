@@ -9,8 +9,8 @@ use std::path::Path;
 use serde::Serialize;
 
 use super::canvas::{
-    draw_axes, draw_caption, draw_legend, linear_ticks, log_ticks, single_panel, LegendItem,
-    LineStyle, Marker, MarkerStyle, PanelLayout, Sample, Scale, Stroke, Svg,
+    linear_ticks, log_ticks, single_panel, LegendItem, LineStyle, Marker, MarkerStyle, Sample,
+    Scale, Stroke,
 };
 use super::common::{colour, label};
 use super::{Drawn, FigureError, FigureOptions};
@@ -134,21 +134,12 @@ pub(crate) fn draw(
             .unwrap_or(0)
     );
     let aspect = opts.width.aspect(0.72, 0.45);
-    let PanelLayout {
-        w,
-        h,
-        pad,
-        plot,
-        legend_w,
-        lines,
-        cap_y,
-    } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
+    let layout = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
+    let plot = layout.plot;
     let xs = Scale::x(&xt, &plot, true);
     let ys = Scale::y(&yt, &plot, false);
     let title = format!("Free spectrum: {title_of_data}");
-    let mut svg = Svg::new(w, h, stem);
-    let clip = svg.clip(plot);
-    draw_axes(&mut svg, plot, &xs, &ys, &xt, &yt, &x_label, &y_label)?;
+    let (mut svg, clip) = layout.open(stem, (&xs, &ys), (&xt, &yt), (&x_label, &y_label))?;
     let n_models = models.len() as f64;
     for (mi, m) in models.iter().enumerate() {
         let c = colour(m);
@@ -202,9 +193,7 @@ pub(crate) fn draw(
         }
         svg.close();
     }
-    draw_legend(&mut svg, &items, plot.x, pad, legend_w)?;
-    draw_caption(&mut svg, &lines, pad, cap_y)?;
-    let svg_text = svg.finish(&title);
+    let (svg_text, _) = layout.close(svg, &items, &title)?;
     let sidecar = Sidecar {
         figure: STEM,
         source_folder: source.to_string(),
@@ -254,8 +243,7 @@ mod tests {
         assert_eq!(a.svg, b.svg);
         assert_eq!(a.svg.matches("class=\"median\"").count(), 10);
         assert!(a.svg.matches("class=\"power-law\"").count() >= 2);
-        let dir = std::env::temp_dir().join(format!("ptacorr-fs-fig-{}", std::process::id()));
-        std::fs::create_dir_all(&dir).unwrap();
+        let dir = ptacorr::testing::temp_dir("fs-fig");
         std::fs::write(
             dir.join(FREE_SPECTRUM_CSV),
             "model,frequency_index,frequency_hz,median,lo_68,hi_68,lo_95,hi_95,rhat,ess_bulk,ess_tail,power_law_log10_rho\n\

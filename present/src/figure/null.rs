@@ -5,9 +5,8 @@
 use serde::Serialize;
 
 use super::canvas::{
-    draw_axes, draw_caption, draw_legend, linear_ticks, single_panel, text_width, Anchor,
-    LegendItem, LineStyle, PanelLayout, Sample, Scale, Stroke, Svg, BLACK, BLUE, FS_SMALL, SKY,
-    VERMILLION,
+    linear_ticks, single_panel, text_width, Anchor, LegendItem, LineStyle, Sample, Scale, Stroke,
+    BLACK, BLUE, FS_SMALL, SKY, VERMILLION,
 };
 use super::format::{self, Style};
 use super::input::NullData;
@@ -203,15 +202,8 @@ pub(crate) fn draw(
     }
 
     let aspect = opts.width.aspect(0.62, 0.40);
-    let PanelLayout {
-        w,
-        h,
-        pad,
-        plot,
-        legend_w,
-        lines,
-        cap_y,
-    } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
+    let layout = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
+    let plot = layout.plot;
     let xs = Scale::x(&xt, &plot, false);
     let ys = Scale::y(&yt, &plot, false);
 
@@ -219,9 +211,7 @@ pub(crate) fn draw(
         "Null distribution of the {} S/N",
         pattern_words(s.pattern.name())
     );
-    let mut svg = Svg::new(w, h, stem);
-    let clip = svg.clip(plot);
-    draw_axes(&mut svg, plot, &xs, &ys, &xt, &yt, &x_label, &y_label)?;
+    let (mut svg, clip) = layout.open(stem, (&xs, &ys), (&xt, &yt), (&x_label, &y_label))?;
     svg.histogram(&clip, (&xs, &ys), &hist.edges, &hist.density[..k], &|i| {
         hist.edges[i] >= obs
     });
@@ -260,9 +250,7 @@ pub(crate) fn draw(
         VERMILLION,
         "observed-label",
     )?;
-    draw_legend(&mut svg, &items, plot.x, pad, legend_w)?;
-    let cap_box = draw_caption(&mut svg, &lines, pad, cap_y)?;
-    let svg_text = svg.finish(&title);
+    let (svg_text, cap_box) = layout.close(svg, &items, &title)?;
 
     let sidecar = Sidecar {
         figure: STEM,
@@ -286,7 +274,7 @@ pub(crate) fn draw(
         x_axis: [xt.lo, xt.hi],
         y_axis: [yt.lo, yt.hi],
         caption: caption.clone(),
-        size_in: [w / 72.0, h / 72.0],
+        size_in: layout.size_in(),
         plot_box_pt: plot.as_array(),
         caption_box_pt: cap_box.as_array(),
     };

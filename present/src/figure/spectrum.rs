@@ -7,9 +7,8 @@
 use serde::Serialize;
 
 use super::canvas::{
-    draw_axes, draw_caption, draw_legend, linear_ticks, log_ticks, single_panel, superscript,
-    LegendItem, LineStyle, Marker, MarkerStyle, PanelLayout, Sample, Scale, Stroke, Svg, BLACK,
-    INK, MUTED, PAIR_GREY, VERMILLION,
+    linear_ticks, log_ticks, single_panel, superscript, LegendItem, LineStyle, Marker, MarkerStyle,
+    Sample, Scale, Stroke, BLACK, INK, MUTED, PAIR_GREY, VERMILLION,
 };
 use super::format::{self, Style};
 use super::input::{CorrelateData, SUMMARY_JSON};
@@ -137,21 +136,12 @@ pub(crate) fn draw(
     );
 
     let aspect = opts.width.aspect(0.64, 0.42);
-    let PanelLayout {
-        w,
-        h,
-        pad,
-        plot,
-        legend_w,
-        lines,
-        cap_y,
-    } = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
+    let layout = single_panel(opts.width.inches(), &yt, &items, &caption, aspect)?;
+    let plot = layout.plot;
     let xs = Scale::x(&xt, &plot, true);
     let ys = Scale::y(&yt, &plot, false);
     let title = format!("Per-frequency statistic: {}", s.title);
-    let mut svg = Svg::new(w, h, stem);
-    let clip = svg.clip(plot);
-    draw_axes(&mut svg, plot, &xs, &ys, &xt, &yt, &x_label, &y_label)?;
+    let (mut svg, clip) = layout.open(stem, (&xs, &ys), (&xt, &yt), (&x_label, &y_label))?;
     svg.open("lines", Some(&clip), "");
     svg.line(
         plot.x,
@@ -201,9 +191,7 @@ pub(crate) fn draw(
         svg.marker(x, ys.map(p.amplitude2), &POINT, "estimate");
     }
     svg.close();
-    draw_legend(&mut svg, &items, plot.x, pad, legend_w)?;
-    draw_caption(&mut svg, &lines, pad, cap_y)?;
-    let svg_text = svg.finish(&title);
+    let (svg_text, _) = layout.close(svg, &items, &title)?;
     let sidecar = Sidecar {
         figure: STEM,
         source_folder: source.to_string(),
