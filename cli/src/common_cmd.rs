@@ -30,28 +30,28 @@ pub struct CommonArgs {
     #[arg(long)]
     out: PathBuf,
     /// Number of analysis frequencies f_j = j / T_span.
-    #[arg(long, default_value_t = 14)]
+    #[arg(long, default_value_t = CommonSettings::default().n_frequencies)]
     frequencies: usize,
     /// Prior range of log10 A: LO,HI.
-    #[arg(long, default_value = "-18,-12", allow_hyphen_values = true)]
+    #[arg(long, default_value_t = range_text(CommonSettings::default().log10_amplitude_min, CommonSettings::default().log10_amplitude_max), allow_hyphen_values = true)]
     log10_amplitude_range: String,
     /// Prior range of the spectral index: LO,HI.
-    #[arg(long, default_value = "0,7")]
+    #[arg(long, default_value_t = range_text(CommonSettings::default().spectral_index_min, CommonSettings::default().spectral_index_max))]
     index_range: String,
     /// Number of equally spaced spectral-index nodes the rule starts from (odd; locally adaptive
     /// Simpson: only the intervals whose error estimate is above their share of
     /// --index-tolerance are split, up to 1025 nodes).
-    #[arg(long, default_value_t = 41)]
+    #[arg(long, default_value_t = CommonSettings::default().n_spectral_index)]
     index_points: usize,
     /// Relative error of the varied-index evidence the gamma rule aims for (each interval gets
     /// its share in proportion to its width).
-    #[arg(long, default_value_t = 1e-3)]
+    #[arg(long, default_value_t = CommonSettings::default().index_tolerance)]
     index_tolerance: f64,
     /// The fixed spectral index.
     #[arg(long, default_value_t = ptacorr::analysis::DEFAULT_SPECTRAL_INDEX)]
     fixed_index: f64,
     /// Number of log10 A points in the CSV tables.
-    #[arg(long, default_value_t = 121)]
+    #[arg(long, default_value_t = CommonSettings::default().n_table_amplitudes)]
     amplitude_points: usize,
     #[arg(long, value_enum, default_value = "uniform-log10")]
     amplitude_prior: PriorArg,
@@ -91,6 +91,11 @@ pub struct CommonArgs {
 pub enum DrawIndexArg {
     Varied,
     Fixed,
+}
+
+/// A range as the options write it, `LO,HI` (the engine's defaults shown as defaults).
+fn range_text(lo: f64, hi: f64) -> String {
+    format!("{lo},{hi}")
 }
 
 fn parse_range(s: &str, name: &str) -> Result<(f64, f64)> {
@@ -195,7 +200,7 @@ pub fn run(args: &CommonArgs) -> Result<()> {
         // sampling, with advice.
         for &m in &fs.models {
             let c = estimate_free_spectrum_cost(&data, m, fs)?;
-            eprintln!(
+            errln!(
                 "free spectrum of {}: one gradient factors a {}x{} matrix ({:.2e} flop), measured {:.3} s; about {} gradients ({} chains x {} iterations x {} leapfrog steps, a typical tree; not a bound) on {} threads: about {:.1} min",
                 m.name(),
                 c.dimension,

@@ -18,7 +18,7 @@ pub fn run(out: &Path, seed: u64) -> Result<()> {
     outln!(
         "simulated the demo array: {} pulsars, {} TOAs (seed {seed}) -> {}",
         pulsars.len(),
-        pulsars.iter().map(|p| p.n_toa()).sum::<usize>(),
+        ptacorr::release::total_toas(&pulsars),
         release_dir.display()
     );
     let settings = CorrelateSettings::default();

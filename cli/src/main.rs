@@ -281,11 +281,10 @@ fn run(cli: Cli) -> Result<()> {
             let layout = lay_out(&s, seed);
             let pulsars =
                 ptacorr::simulate::simulate_release(&layout, seed, &out, replace_release)?;
-            let n: usize = pulsars.iter().map(|p| p.n_toa()).sum();
             outln!(
                 "simulated {} pulsars, {} TOAs (seed {seed}) -> {}",
                 pulsars.len(),
-                n,
+                ptacorr::release::total_toas(&pulsars),
                 out.display()
             );
             Ok(())
@@ -428,12 +427,8 @@ pub(crate) fn print_summary(rel: &Release, c: &Correlation) {
             e.snr
         );
     }
-    let hd = c.estimates[&Pattern::Hd];
-    if hd.amplitude2 > 0.0 {
-        outln!(
-            "  hd amplitude A = {:.3e} (sqrt of A^2)",
-            hd.amplitude2.sqrt()
-        );
+    if let Some(a) = c.estimates[&Pattern::Hd].amplitude() {
+        outln!("  hd amplitude A = {a:.3e} (sqrt of A^2)");
     }
     outln!("  SNR is not a false-alarm probability: use `ptacorr null` for that.");
 }

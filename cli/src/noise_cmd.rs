@@ -29,13 +29,13 @@ pub struct NoiseArgs {
     #[arg(long)]
     priors: Option<PathBuf>,
     /// Seed of the starting points.
-    #[arg(long, default_value_t = 1)]
+    #[arg(long, default_value_t = NoiseSettings::default().seed)]
     seed: u64,
     /// Number of L-BFGS starting points per pulsar.
-    #[arg(long, default_value_t = 4)]
+    #[arg(long, default_value_t = MapSettings::default().starts)]
     starts: usize,
     /// Iteration limit of each L-BFGS run.
-    #[arg(long, default_value_t = 500)]
+    #[arg(long, default_value_t = MapSettings::default().max_iterations)]
     max_iterations: u64,
     /// This shard of the pulsars, I/N.
     #[arg(long)]

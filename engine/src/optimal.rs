@@ -143,6 +143,14 @@ pub struct OsEstimate {
     pub snr: f64,
 }
 
+impl OsEstimate {
+    /// The amplitude A = sqrt(A2_hat) of a positive estimate (a negative or zero A2_hat has
+    /// none).
+    pub fn amplitude(&self) -> Option<f64> {
+        (self.amplitude2 > 0.0).then(|| self.amplitude2.sqrt())
+    }
+}
+
 /// Fit one pattern's amplitude to the pair correlations (Anholm et al. 2009; Chamberlin et
 /// al. 2015): A2 = sum(G rho/s^2)/sum(G^2/s^2), sigma_0 = (sum G^2/s^2)^(-1/2).
 pub fn optimal_statistic(rho: &[f64], sigma: &[f64], g: &[f64]) -> OsEstimate {

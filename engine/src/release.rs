@@ -98,8 +98,13 @@ impl Release {
 
     /// Total number of TOAs.
     pub fn n_toa(&self) -> usize {
-        self.pulsars.iter().map(Pulsar::n_toa).sum()
+        total_toas(&self.pulsars)
     }
+}
+
+/// Total number of TOAs of `pulsars` (a release's, or those `simulate` wrote).
+pub fn total_toas(pulsars: &[Pulsar]) -> usize {
+    pulsars.iter().map(Pulsar::n_toa).sum()
 }
 
 #[derive(Deserialize)]

@@ -113,8 +113,7 @@ mod tests {
 
     #[test]
     fn truth_values_follow_the_parameter_names() {
-        let dir = std::env::temp_dir().join(format!("ptacorr-truth-{}", std::process::id()));
-        std::fs::create_dir_all(&dir).unwrap();
+        let dir = crate::testing::temp_dir("truth");
         std::fs::write(
             dir.join(RELEASE_TRUTH_FILE),
             "[truth]\ntitle = \"t\"\n\n[pulsar.P01]\nra_deg = 1.0\ndec_deg = 2.0\nn_toa = 10\n\n\

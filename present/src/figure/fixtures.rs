@@ -84,15 +84,6 @@ impl Rng {
     }
 }
 
-fn hd(cos_zeta: f64) -> f64 {
-    let x = (1.0 - cos_zeta) / 2.0;
-    if x <= 0.0 {
-        0.5
-    } else {
-        0.5 - x / 4.0 + 1.5 * x * x.ln()
-    }
-}
-
 fn provenance(hash: &str) -> Value {
     json!({
         "program": "ptacorr",
@@ -155,7 +146,7 @@ pub(crate) fn write_correlate(dir: &Path) {
                 .sum::<f64>()
                 .clamp(-1.0, 1.0);
             let angle = c.acos().to_degrees();
-            let g = hd(c);
+            let g = ptacorr::orf::hellings_downs(c);
             let sigma = 2.0e-30 * (1.0 + 0.5 * rng.uniform());
             let rho = CORRELATE_A2_HD * g + sigma * rng.normal();
             pairs.push_str(&format!(

@@ -288,8 +288,7 @@ mod tests {
 
     #[test]
     fn draws_three_panels_with_fitted_powers() {
-        let dir = std::env::temp_dir().join(format!("ptacorr-scaling-{}", std::process::id()));
-        std::fs::create_dir_all(&dir).unwrap();
+        let dir = ptacorr::testing::temp_dir("scaling");
         let csv = dir.join("scaling.csv");
         let mut text = String::from(
             "# test machine, load 1.0\n# measure cpu\naxis,value,task,time_s,fitted_power\n",
