@@ -235,12 +235,23 @@ pub fn run(args: &CommonArgs) -> Result<()> {
     let rel = read_release(&args.release)
         .with_context(|| format!("reading release {}", args.release.display()))?;
     let data = CommonData::from_release(&rel, &rel.noise, settings.n_frequencies)?;
+    // The joint fit's data and priors before any fitting, so a priors file that does not fit
+    // the release stops the run at once.
+    let joint_data = match &joint_settings {
+        Some((_, priors)) => Some(JointRedData::from_release(
+            &rel,
+            &rel.noise,
+            settings.n_frequencies,
+            priors,
+        )?),
+        None => None,
+    };
     if let Some(fs) = &free_settings {
         // The cost of every model first, so a run that would take hours stops before any
         // sampling, with advice.
         for &m in &fs.models {
             let c = estimate_free_spectrum_cost(&data, m, fs)?;
-            eprintln!(
+            errln!(
                 "free spectrum of {}: one gradient factors a {}x{} matrix ({:.2e} flop), measured {:.3} s; about {} gradients ({} chains x {} iterations x {} leapfrog steps, a typical tree; not a bound) on {} threads: about {:.1} min",
                 m.name(),
                 c.dimension,
@@ -272,9 +283,8 @@ pub fn run(args: &CommonArgs) -> Result<()> {
         draw_settings.n_draws,
         draw_settings.seed,
     )?;
-    let joint = match &joint_settings {
-        Some((js, priors)) => {
-            let jd = JointRedData::from_release(&rel, &rel.noise, settings.n_frequencies, priors)?;
+    let joint = match (&joint_settings, joint_data) {
+        (Some((js, _)), Some(jd)) => {
             let post = JointRedPosterior::new(
                 JointRedLikelihood::new(jd.clone()),
                 [settings.log10_amplitude_min, settings.log10_amplitude_max],
@@ -288,18 +298,13 @@ pub fn run(args: &CommonArgs) -> Result<()> {
                 js.sampler.chains,
                 js.sampler.warmup + js.sampler.draws
             );
-            let tj = Instant::now();
             let samples = sample_joint_red(&post, js, &|c| {
                 errln!("joint red-noise fit: chain {c} done");
             })?;
-            errln!(
-                "joint red-noise fit sampled in {:.1} s",
-                tj.elapsed().as_secs_f64()
-            );
             let summary = samples.summary(&jd, js, &post, Some(&fit));
             Some((summary, samples))
         }
-        None => None,
+        _ => None,
     };
     fit.write_with(
         &mut set,
