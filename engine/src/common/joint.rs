@@ -765,4 +765,45 @@ mod tests {
         assert!(sum.max_rhat < 1.01, "R-hat {}", sum.max_rhat);
         assert_eq!(s.table().unwrap().len(), 4000);
     }
+
+    /// The chain table of a joint fit names every pulsar's red columns, reads back with the
+    /// same parameters, and is refused where one pulsar's table is expected.
+    #[test]
+    fn the_joint_chain_table_reads_back_and_is_not_a_pulsar_table() {
+        let joint = JointRedData::new(data(), vec![prior(4), None, prior(2)]).unwrap();
+        let post = JointRedPosterior::new(
+            JointRedLikelihood::new(joint.clone()),
+            [-18.0, -12.0],
+            [0.0, 7.0],
+            AmplitudePrior::UniformLog10,
+        )
+        .unwrap();
+        let js = JointRedSettings {
+            sampler: SamplerSettings {
+                warmup: 20,
+                draws: 10,
+                chains: 2,
+                ..Default::default()
+            },
+            seed: 3,
+            priors: "(test)".into(),
+        };
+        let s = sample_joint_red(&post, &js, &|_| {}).unwrap();
+        let csv = s.table().unwrap().to_csv().unwrap();
+        let header = csv.lines().next().unwrap();
+        assert_eq!(
+            header,
+            "chain,draw,log_posterior,diverging,common.log10_amplitude,common.spectral_index,red_log10_amplitude.Q1,red_spectral_index.Q1,red_log10_amplitude.Q3,red_spectral_index.Q3"
+        );
+        let path = std::path::Path::new("joint-red-chains.csv");
+        let back = ChainTable::parse(csv.as_bytes(), path).unwrap();
+        assert_eq!(back.parameters, joint.parameters());
+        assert_eq!(back.len(), 20);
+        let red_only =
+            ChainTable::new(vec![Parameter::PulsarRedLog10Amplitude("Q1".into())]).unwrap();
+        let e = red_only
+            .check_pulsar(path, &[], &crate::noise::PulsarNoise::default())
+            .unwrap_err();
+        assert!(e.to_string().contains("red_log10_amplitude.Q1"), "{e}");
+    }
 }
