@@ -101,7 +101,11 @@ fn main() {
         .expect("ln L by TOA");
     let start = Instant::now();
     for _ in 0..repeat {
-        std::hint::black_box(by_toa.log_likelihood_and_gradient(&theta, &mut grad).unwrap());
+        std::hint::black_box(
+            by_toa
+                .log_likelihood_and_gradient(&theta, &mut grad)
+                .unwrap(),
+        );
     }
     let per_by_toa = start.elapsed().as_secs_f64() / repeat as f64;
     let (n, c) = lik.shape();

@@ -539,7 +539,11 @@ fn unconstrained_posterior_gradients_match_finite_differences() {
         }
     }
     // Three pulsars, two pairs each without held parameters, one with.
-    assert_eq!(ridge_pairs_seen, 3 * (2 + 1), "the ridge coordinates were checked");
+    assert_eq!(
+        ridge_pairs_seen,
+        3 * (2 + 1),
+        "the ridge coordinates were checked"
+    );
 }
 
 /// The fixed-white fast path (`ptacorr noise --fixed-white`) against the full likelihood at the

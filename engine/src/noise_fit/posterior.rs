@@ -28,8 +28,8 @@
 
 use crate::error::{Error, Result};
 use crate::likelihood::{FixedWhite, Hyper, PulsarLikelihood};
-use std::f64::consts::LN_10;
 use crate::priors::{matches, PulsarPrior};
+use std::f64::consts::LN_10;
 
 /// ln(1 + e^x) without overflow.
 fn softplus(x: f64) -> f64 {
@@ -137,15 +137,12 @@ impl RidgePair {
         let e_y2 = e_q * q_y2;
         // ln|J| = ln(V / (2 s^2 EFAC)) + ln u_y1 + ln q_y2, with
         // ln(s (1 - s)) = -softplus(-y) - softplus(y).
-        let log_j = u - (2.0 * self.s2).ln() - e.ln()
-            + (u_hi - u_lo).ln()
-            + w.ln()
+        let log_j = u - (2.0 * self.s2).ln() - e.ln() + (u_hi - u_lo).ln() + w.ln()
             - softplus(-y1)
             - softplus(y1)
             - softplus(-y2)
             - softplus(y2);
-        let log_j_y1 =
-            u_y1 - e_y1 / e + (qb_u - qa_u) / w * u_y1 + (1.0 - 2.0 * s1);
+        let log_j_y1 = u_y1 - e_y1 / e + (qb_u - qa_u) / w * u_y1 + (1.0 - 2.0 * s1);
         let log_j_y2 = -e_y2 / e + (1.0 - 2.0 * s2);
         RidgePoint {
             e,
@@ -241,11 +238,7 @@ impl<'a> Posterior<'a> {
     /// EFAC and log10 EQUAD are both free: what the full posterior is sampled in.
     pub fn with_white_ridge(mut self) -> Self {
         let params = self.lik.parameters();
-        let position = |kind: Hyper| {
-            self.free
-                .iter()
-                .position(|&i| params[i].kind == kind)
-        };
+        let position = |kind: Hyper| self.free.iter().position(|&i| params[i].kind == kind);
         let mut ridge = Vec::new();
         for b in 0..self.lik.backend_count() {
             if let (Some(e), Some(q)) = (position(Hyper::Efac(b)), position(Hyper::Log10Equad(b))) {
@@ -463,7 +456,10 @@ mod tests {
                 // Round trip to 1e-6 absolute: the inverse goes through ln and log10 of
                 // variances near 1e-13 s^2 (about 1e-9 relative rounding, amplified by the
                 // logit's slope of at most a few hundred at these points).
-                assert!((z1 - y1).abs() < 1e-6 && (z2 - y2).abs() < 1e-6, "{y1} {y2}: {z1} {z2}");
+                assert!(
+                    (z1 - y1).abs() < 1e-6 && (z2 - y2).abs() < 1e-6,
+                    "{y1} {y2}: {z1} {z2}"
+                );
             }
         }
     }
