@@ -4,7 +4,9 @@
 //!
 //!     cargo run --release -p ptacorr-engine --example noise_eval -- RELEASE LABEL [REPEAT] [K]
 //!
-//! Prints `ln_l`, `seconds_per_evaluation` (value and gradient), `flops` (counted), the
+//! Prints `ln_l`, `seconds_per_evaluation` (value and gradient), `flops` (counted; for TOAs
+//! grouped by equal uncertainty, `grouped true`, the grouped form's), the same three for the
+//! TOA-by-TOA form (`ln_l_by_toa`, `seconds_per_evaluation_by_toa`, `flops_by_toa`), the
 //! shape, and the value and time of the fixed-white evaluation at the same point. Red and DM processes use their `n_frequencies` (14 when absent, as the peer), or K
 //! frequencies when K is given (30 is what `ptacorr noise` fits by default).
 
@@ -89,8 +91,29 @@ fn main() {
         );
     }
     let per_fixed = start.elapsed().as_secs_f64() / reps_fixed as f64;
+    // The same evaluation TOA by TOA (what a release whose TOAs all have different
+    // uncertainties gets; likelihood.rs `Groups`), against its own flop count.
+    let by_toa = PulsarLikelihood::new(p, &comp, &grid)
+        .expect("likelihood")
+        .ungrouped();
+    let value_by_toa = by_toa
+        .log_likelihood_and_gradient(&theta, &mut grad)
+        .expect("ln L by TOA");
+    let start = Instant::now();
+    for _ in 0..repeat {
+        std::hint::black_box(
+            by_toa
+                .log_likelihood_and_gradient(&theta, &mut grad)
+                .unwrap(),
+        );
+    }
+    let per_by_toa = start.elapsed().as_secs_f64() / repeat as f64;
     let (n, c) = lik.shape();
     println!("ln_l {value:?}");
+    println!("grouped {}", lik.grouped());
+    println!("ln_l_by_toa {value_by_toa:?}");
+    println!("seconds_per_evaluation_by_toa {per_by_toa:?}");
+    println!("flops_by_toa {:?}", by_toa.flops());
     println!("seconds_per_evaluation {per:?}");
     println!("flops {:?}", lik.flops());
     println!("shape {n} {c}");

@@ -459,6 +459,32 @@ impl ScaledCholesky {
         out
     }
 
+    /// S^-1 itself, D^-1 L^-T L^-1 D^-1: the inverse of the triangular factor (LAPACK dtrtri,
+    /// dim^3 / 3 operations) and its rank-dim update (dim^3 / 3).
+    pub fn inverse(&self) -> Array2<f64> {
+        let n = self.dim();
+        if n == 0 {
+            return Array2::zeros((0, 0));
+        }
+        let mut inv = self.l.clone();
+        // As in `inverse_diagonal`: row-major L^-1 after dtrtri on the column-major L^T.
+        let (uplo, diag) = (b'U' as std::ffi::c_char, b'N' as std::ffi::c_char);
+        let ni = blas_int(n);
+        let mut info: std::ffi::c_int = 0;
+        // SAFETY: `inv` is a contiguous n x n array; dtrtri overwrites its triangle in place.
+        unsafe { dtrtri_(&uplo, &diag, &ni, inv.as_mut_ptr(), &ni, &mut info) };
+        if info != 0 {
+            return Array2::from_elem((n, n), f64::NAN);
+        }
+        let mut out = Array2::zeros((n, n));
+        syrk_tn(1.0, &inv, 0.0, &mut out);
+        mirror_upper(&mut out);
+        for ((i, j), v) in out.indexed_iter_mut() {
+            *v *= self.dinv[i] * self.dinv[j];
+        }
+        out
+    }
+
     /// L^-1 D^-1 b, so that b^T S^-1 c = (whiten b)^T (whiten c).
     pub fn whiten(&self, b: &Array2<f64>) -> Array2<f64> {
         let mut scaled = b.clone();

@@ -247,6 +247,19 @@ fn cases() -> Vec<Case> {
             fixed_common: Some(common),
         },
         Case {
+            // No ECORR: TOAs of one backend share one sigma in this simulation, so the
+            // likelihood takes its grouped form (likelihood.rs, `Groups`).
+            name: "red and DM without ECORR, design matrix",
+            comp: Components {
+                backends: white(true, [false, false]),
+                red: Some(6),
+                dm: Some(5),
+                common: None,
+            },
+            design: true,
+            fixed_common: None,
+        },
+        Case {
             name: "red and free common on different ladders, DM",
             comp: Components {
                 backends: white(true, [false, true]),
@@ -307,12 +320,26 @@ fn woodbury_likelihood_matches_the_dense_form() {
                 p.clone()
             };
             let lik = PulsarLikelihood::new(&p, &case.comp, &grid).unwrap();
+            // Without ECORR the simulation's one sigma per backend makes the grouped form
+            // (likelihood.rs, `Groups`); it and the TOA-by-TOA form both meet the dense one.
+            let no_ecorr = case.comp.backends.iter().all(|b| !b.log10_ecorr);
+            assert_eq!(lik.grouped(), no_ecorr, "{}", case.name);
+            let by_toa = PulsarLikelihood::new(&p, &case.comp, &grid)
+                .unwrap()
+                .ungrouped();
             let mut values = Vec::new();
             for _ in 0..2 {
                 let theta = random_point(&lik, &mut rng);
                 let got = lik.log_likelihood(&theta).unwrap();
                 let pt = point(&lik, &theta, 2, case.fixed_common);
                 let want = dense_log_likelihood(&p, &grid, &case.comp, &pt);
+                let got_by_toa = by_toa.log_likelihood(&theta).unwrap();
+                assert!(
+                    (got_by_toa - want).abs() <= 1e-10 * want.abs(),
+                    "{} {}: TOA by TOA ln L {got_by_toa} vs dense {want}",
+                    case.name,
+                    p.label
+                );
                 // 1e-10 relative: the dense inverse of a C with condition number ~1e5 here
                 // loses ~1e-11; the Woodbury form is more accurate than that.
                 assert!(
@@ -459,14 +486,29 @@ fn unconstrained_posterior_gradients_match_finite_differences() {
     )
     .unwrap();
     let mut rng = rand_chacha_rng(3);
+    let mut ridge_pairs_seen = 0;
     for p in &rel.pulsars {
         let prior = priors.pulsar(p).unwrap();
         let lik = PulsarLikelihood::new(p, &prior.components, &grid).unwrap();
         let theta = random_point(&lik, &mut rng);
-        for fixed in [vec![], vec![(0, theta[0]), (1, theta[1])]] {
-            let post = Posterior::with_fixed(&lik, &prior, &fixed).unwrap();
+        // The plain logistic coordinates, the ridge coordinates the full posterior is sampled
+        // in (EFAC and log10 EQUAD of each backend as one pair), and some parameters held.
+        let plain = |fixed: &[(usize, f64)]| Posterior::with_fixed(&lik, &prior, fixed).unwrap();
+        for post in [
+            plain(&[]),
+            plain(&[]).with_white_ridge(),
+            plain(&[(0, theta[0]), (1, theta[1])]),
+            plain(&[(0, theta[0]), (1, theta[1])]).with_white_ridge(),
+        ] {
+            ridge_pairs_seen += post.ridge_pairs();
             let values: Vec<f64> = post.free().iter().map(|&i| theta[i]).collect();
             let x = post.unconstrained(&values);
+            // Both backends have EFAC and EQUAD; holding KRK-L's leaves MRL-UHF's pair.
+            assert!(
+                [0, 1, 2].contains(&post.ridge_pairs()),
+                "{} ridge pairs",
+                post.ridge_pairs()
+            );
             type Eval<'p> = fn(&Posterior<'p>, &[f64], &mut [f64]) -> ptacorr::Result<f64>;
             let evals: [Eval; 2] = [
                 Posterior::log_density_and_gradient,
@@ -496,6 +538,12 @@ fn unconstrained_posterior_gradients_match_finite_differences() {
             }
         }
     }
+    // Three pulsars, two pairs each without held parameters, one with.
+    assert_eq!(
+        ridge_pairs_seen,
+        3 * (2 + 1),
+        "the ridge coordinates were checked"
+    );
 }
 
 /// The fixed-white fast path (`ptacorr noise --fixed-white`) against the full likelihood at the

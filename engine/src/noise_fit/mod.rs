@@ -292,7 +292,8 @@ pub fn fit_pulsar(
     let samples = match settings.mode {
         SampleMode::MapOnly => None,
         SampleMode::Full => Some(sample_pulsar(
-            &post,
+            // The same posterior in the coordinates NUTS crosses easily (posterior.rs).
+            &Posterior::new(&lik, prior)?.with_white_ridge(),
             &map.values,
             &settings.sampler,
             settings.max_draws_per_chain(),
