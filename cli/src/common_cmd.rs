@@ -195,7 +195,7 @@ pub fn run(args: &CommonArgs) -> Result<()> {
         // sampling, with advice.
         for &m in &fs.models {
             let c = estimate_free_spectrum_cost(&data, m, fs)?;
-            eprintln!(
+            errln!(
                 "free spectrum of {}: one gradient factors a {}x{} matrix ({:.2e} flop), measured {:.3} s; about {} gradients ({} chains x {} iterations x {} leapfrog steps, a typical tree; not a bound) on {} threads: about {:.1} min",
                 m.name(),
                 c.dimension,
