@@ -196,33 +196,38 @@ pub fn recorded_input_hash(file: &Path) -> Option<String> {
 /// for catching a mistyped MJD, our choice of numbers).
 pub const ISOLATED_TOA_GAP_DAYS: f64 = 365.25;
 
+/// The rows of the two earliest and the two latest MJDs (at least 2 values), found in one pass:
+/// the first two and the last two entries of a stable sort of the rows by MJD (`total_cmp`), so
+/// of tied MJDs the earliest row comes first and the latest row last.
+fn mjd_ends(mjd: &[f64]) -> ([usize; 2], [usize; 2]) {
+    let (mut lo, mut hi) = ([0usize, 1], [0usize, 1]);
+    if mjd[1].total_cmp(&mjd[0]).is_lt() {
+        lo = [1, 0];
+    } else {
+        hi = [1, 0];
+    }
+    for (i, &v) in mjd.iter().enumerate().skip(2) {
+        if v.total_cmp(&mjd[lo[0]]).is_lt() {
+            lo = [i, lo[0]];
+        } else if v.total_cmp(&mjd[lo[1]]).is_lt() {
+            lo[1] = i;
+        }
+        if v.total_cmp(&mjd[hi[0]]).is_ge() {
+            hi = [i, hi[0]];
+        } else if v.total_cmp(&mjd[hi[1]]).is_ge() {
+            hi[1] = i;
+        }
+    }
+    (lo, hi)
+}
+
 /// Warnings about one pulsar's residual table: an isolated first or last TOA, exact
 /// duplicate rows.
 pub fn residual_warnings(p: &Pulsar, path: &Path) -> Vec<String> {
     let mut out = Vec::new();
     let n = p.n_toa();
     if n >= 3 {
-        // The two earliest and the two latest MJDs in one pass (the ends of a stable sort by
-        // MJD: the first row of the earliest MJD, the last row of the latest).
-        let (mut lo, mut hi) = ([0usize, 1], [0usize, 1]);
-        if p.mjd[1].total_cmp(&p.mjd[0]).is_lt() {
-            lo = [1, 0];
-        } else {
-            hi = [1, 0];
-        }
-        for i in 2..n {
-            let v = p.mjd[i];
-            if v.total_cmp(&p.mjd[lo[0]]).is_lt() {
-                lo = [i, lo[0]];
-            } else if v.total_cmp(&p.mjd[lo[1]]).is_lt() {
-                lo[1] = i;
-            }
-            if v.total_cmp(&p.mjd[hi[0]]).is_ge() {
-                hi = [i, hi[0]];
-            } else if v.total_cmp(&p.mjd[hi[1]]).is_ge() {
-                hi[1] = i;
-            }
-        }
+        let (lo, hi) = mjd_ends(&p.mjd);
         let (t0, t1) = (p.mjd[lo[0]], p.mjd[lo[1]]);
         let (tn1, tn2) = (p.mjd[hi[0]], p.mjd[hi[1]]);
         let (first_gap, last_gap) = (t1 - t0, tn1 - tn2);
@@ -425,14 +430,19 @@ pub fn read_release_with(path: &Path, options: ReadOptions) -> Result<Release> {
         .into_iter()
         .flatten()
         .collect();
+    // Each path resolved once (not once per pair of pulsars).
+    let paths: Vec<std::path::PathBuf> = file
+        .pulsar
+        .iter()
+        .map(|e| dir.join(&e.get_ref().residuals))
+        .collect();
+    let canonical: Vec<Option<std::path::PathBuf>> =
+        paths.iter().map(|p| p.canonicalize().ok()).collect();
     for (i, a) in file.pulsar.iter().enumerate() {
-        for b in &file.pulsar[..i] {
-            let (pa, pb) = (
-                dir.join(&a.get_ref().residuals),
-                dir.join(&b.get_ref().residuals),
-            );
-            let same = pa == pb
-                || matches!((pa.canonicalize(), pb.canonicalize()), (Ok(x), Ok(y)) if x == y);
+        for (j, b) in file.pulsar[..i].iter().enumerate() {
+            let (pa, pb) = (&paths[i], &paths[j]);
+            let same =
+                pa == pb || matches!((&canonical[i], &canonical[j]), (Some(x), Some(y)) if x == y);
             if same {
                 warnings.push(format!(
                     "{}: pulsars {} and {} read the same residual file {}",
@@ -988,6 +998,31 @@ mod tests {
         let quoted = "mjd,residual_s,sigma_s,freq_mhz,backend\n55000.0,0,1e-6,1400,\"A\"\n";
         let p = parse_residuals(path, "P", quoted.as_bytes()).unwrap();
         assert_eq!(p.backends, ["A"]);
+    }
+
+    /// The one-pass ends against the standard library's stable sort (`slice::sort_by`, stable
+    /// by its documentation), on tables with many ties, with an earliest and a latest row that
+    /// are repeated, and at the shortest length.
+    #[test]
+    fn mjd_ends_are_those_of_a_stable_sort() {
+        let tables: Vec<Vec<f64>> = vec![
+            vec![3.0, 1.0],
+            vec![1.0, 1.0],
+            vec![5.0, 1.0, 5.0, 1.0, 3.0, 5.0, 1.0],
+            vec![2.0, 2.0, 2.0, 2.0],
+            (0..200).map(|i| ((i * 37) % 11) as f64).collect(),
+            (0..200).map(|i| ((i * 7919) % 101) as f64 * 0.5).collect(),
+        ];
+        for mjd in tables {
+            let mut order: Vec<usize> = (0..mjd.len()).collect();
+            order.sort_by(|&a, &b| mjd[a].total_cmp(&mjd[b]));
+            let n = mjd.len();
+            let (lo, hi) = mjd_ends(&mjd);
+            assert_eq!(lo[0], order[0], "{mjd:?}");
+            assert_eq!(mjd[lo[1]], mjd[order[1]], "{mjd:?}");
+            assert_eq!(hi[0], order[n - 1], "{mjd:?}");
+            assert_eq!(mjd[hi[1]], mjd[order[n - 2]], "{mjd:?}");
+        }
     }
 
     #[test]
