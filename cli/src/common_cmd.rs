@@ -2,13 +2,16 @@
 //! presentation only; every number comes from the engine's `common` module).
 
 use anyhow::{Context, Result};
+use ptacorr::common::sample_joint_red;
 use ptacorr::common::{
     check_draws, comparison_name, draw_curn, estimate_free_spectrum_cost, fit_common,
     read_fitted_common, sample_free_spectrum, write_free_spectrum, AmplitudePrior, CommonData,
     CommonModel, CommonSettings, DrawIndex, DrawSettings, FitStatistic, FittedCommon,
-    FreeSpectrumSettings, COMMON_ASSUMPTIONS, FREE_SPECTRUM_ASSUMPTIONS,
+    FreeSpectrumSettings, JointRedData, JointRedLikelihood, JointRedPosterior, JointRedSettings,
+    COMMON_ASSUMPTIONS, FREE_SPECTRUM_ASSUMPTIONS,
 };
 use ptacorr::output::OutputSet;
+use ptacorr::priors::PriorFile;
 use ptacorr::release::read_release;
 use ptacorr::sampler::SamplerSettings;
 use std::path::{Path, PathBuf};
@@ -85,6 +88,23 @@ pub struct CommonArgs {
     /// the expected number of gradients) exceeds this many minutes.
     #[arg(long, default_value_t = 10.0)]
     free_spectrum_max_minutes: f64,
+    /// Also sample the CURN common process jointly with every pulsar's own red noise
+    /// (2 + 2 N_red parameters, NUTS), and report it beside the fixed-noise answer.
+    #[arg(long)]
+    joint_red: bool,
+    /// Priors file (as for `ptacorr noise`) naming which pulsars get red noise in the joint
+    /// fit and its ranges; the built-in defaults give every pulsar red noise.
+    #[arg(long, requires = "joint_red")]
+    joint_red_priors: Option<PathBuf>,
+    /// Kept NUTS draws per chain of the joint fit.
+    #[arg(long, default_value_t = 500)]
+    joint_red_draws: u64,
+    /// NUTS warm-up iterations per chain of the joint fit.
+    #[arg(long, default_value_t = 500)]
+    joint_red_warmup: u64,
+    /// NUTS chains of the joint fit (at least 2, for R-hat).
+    #[arg(long, default_value_t = 4)]
+    joint_red_chains: usize,
 }
 
 #[derive(Clone, Copy, clap::ValueEnum)]
@@ -168,6 +188,30 @@ impl CommonArgs {
         Ok(Some(s))
     }
 
+    /// The joint red-noise settings and priors, or None without --joint-red (checked before
+    /// work: the priors file is read and checked here).
+    fn joint_settings(&self) -> Result<Option<(JointRedSettings, PriorFile)>> {
+        if !self.joint_red {
+            return Ok(None);
+        }
+        let priors = match &self.joint_red_priors {
+            Some(p) => PriorFile::read(p)?,
+            None => PriorFile::defaults(),
+        };
+        let s = JointRedSettings {
+            sampler: SamplerSettings {
+                draws: self.joint_red_draws,
+                warmup: self.joint_red_warmup,
+                chains: self.joint_red_chains,
+                ..Default::default()
+            },
+            seed: self.seed,
+            priors: priors.path.display().to_string(),
+        };
+        s.sampler.check()?;
+        Ok(Some((s, priors)))
+    }
+
     fn draw_settings(&self) -> DrawSettings {
         DrawSettings {
             n_draws: self.draws,
@@ -185,11 +229,23 @@ pub fn run(args: &CommonArgs) -> Result<()> {
     let settings = args.settings()?;
     let free_settings = args.free_spectrum_settings()?;
     let draw_settings = args.draw_settings();
+    let joint_settings = args.joint_settings()?;
     let t = Instant::now();
     let mut set = OutputSet::begin(&args.out, "common")?;
     let rel = read_release(&args.release)
         .with_context(|| format!("reading release {}", args.release.display()))?;
     let data = CommonData::from_release(&rel, &rel.noise, settings.n_frequencies)?;
+    // The joint fit's data and priors before any fitting, so a priors file that does not fit
+    // the release stops the run at once.
+    let joint_data = match &joint_settings {
+        Some((_, priors)) => Some(JointRedData::from_release(
+            &rel,
+            &rel.noise,
+            settings.n_frequencies,
+            priors,
+        )?),
+        None => None,
+    };
     if let Some(fs) = &free_settings {
         // The cost of every model first, so a run that would take hours stops before any
         // sampling, with advice.
@@ -227,7 +283,36 @@ pub fn run(args: &CommonArgs) -> Result<()> {
         draw_settings.n_draws,
         draw_settings.seed,
     )?;
-    fit.write(&mut set, &rel, &data, Some((&draw_settings, &draws)))?;
+    let joint = match (&joint_settings, joint_data) {
+        (Some((js, _)), Some(jd)) => {
+            let post = JointRedPosterior::new(
+                JointRedLikelihood::new(jd.clone()),
+                [settings.log10_amplitude_min, settings.log10_amplitude_max],
+                [settings.spectral_index_min, settings.spectral_index_max],
+                settings.amplitude_prior,
+            )?;
+            errln!(
+                "joint red-noise fit: {} parameters ({} pulsars with red noise), {} chains x {} iterations",
+                post.bounds.len(),
+                jd.n_red(),
+                js.sampler.chains,
+                js.sampler.warmup + js.sampler.draws
+            );
+            let samples = sample_joint_red(&post, js, &|c| {
+                errln!("joint red-noise fit: chain {c} done");
+            })?;
+            let summary = samples.summary(&jd, js, &post, Some(&fit));
+            Some((summary, samples))
+        }
+        _ => None,
+    };
+    fit.write_with(
+        &mut set,
+        &rel,
+        &data,
+        Some((&draw_settings, &draws)),
+        joint.as_ref().map(|(s, d)| (s, d)),
+    )?;
     let mut free = Vec::new();
     let mut free_files = Vec::new();
     if let Some(fs) = &free_settings {
@@ -288,6 +373,35 @@ pub fn run(args: &CommonArgs) -> Result<()> {
     if !free.is_empty() {
         outln!("  {FREE_SPECTRUM_ASSUMPTIONS}");
     }
+    if let Some((j, _)) = &joint {
+        outln!(
+            "  CURN with red noise marginalised ({} parameters): log10 A {:.3} [{:.3}, {:.3}], gamma {:.2} [{:.2}, {:.2}] (median [68%]); largest R-hat {:.3}, smallest bulk ESS {:.0}, {} divergences",
+            j.n_parameters,
+            j.log10_amplitude.median,
+            j.log10_amplitude.interval_68[0],
+            j.log10_amplitude.interval_68[1],
+            j.spectral_index.median,
+            j.spectral_index.interval_68[0],
+            j.spectral_index.interval_68[1],
+            j.max_rhat,
+            j.min_ess_bulk,
+            j.divergences
+        );
+        if let (Some(a), Some(da), Some(dg)) = (
+            &j.fixed_noise_log10_amplitude,
+            j.log10_amplitude_difference,
+            j.spectral_index_difference,
+        ) {
+            outln!(
+                "  CURN with red noise fixed: log10 A {:.3} [{:.3}, {:.3}]; joint minus fixed: log10 A {:+.3}, gamma {:+.2}",
+                a.median,
+                a.interval_68[0],
+                a.interval_68[1],
+                da,
+                dg
+            );
+        }
+    }
     errln!("fitted in {:.2} s", t.elapsed().as_secs_f64());
     outln!(
         "wrote {}/summary.json, posterior-fixed-index.csv, posterior-grid.csv, marginals.csv, \
@@ -296,6 +410,7 @@ pub fn run(args: &CommonArgs) -> Result<()> {
         free_files
             .iter()
             .map(|f| format!(", {f}"))
+            .chain(joint.as_ref().map(|(j, _)| format!(", {}", j.chain_table)))
             .collect::<String>()
     );
     Ok(())

@@ -157,6 +157,39 @@ fn every_command_refuses_bad_input_clearly() {
         &["frequencies"],
         Some(&out),
     );
+    // common --joint-red: an empty red-noise prior range, a pulsar not in the release.
+    let empty = base.join("joint-empty.toml");
+    std::fs::write(&empty, "[ranges]\nred.log10_amplitude = [-14.0, -14.0]\n").unwrap();
+    t.refuse(
+        "common joint-red empty range",
+        &[
+            "common",
+            &rel_s,
+            "--out",
+            &out_s,
+            "--joint-red",
+            "--joint-red-priors",
+            &s(&empty),
+        ],
+        &["joint-empty.toml", "ranges.red.log10_amplitude", "empty"],
+        Some(&out),
+    );
+    let stranger = base.join("joint-stranger.toml");
+    std::fs::write(&stranger, "[pulsar.P99]\nred = false\n").unwrap();
+    t.refuse(
+        "common joint-red unknown pulsar",
+        &[
+            "common",
+            &rel_s,
+            "--out",
+            &out_s,
+            "--joint-red",
+            "--joint-red-priors",
+            &s(&stranger),
+        ],
+        &["joint-stranger.toml", "pulsar.P99", "not in the release"],
+        Some(&out),
+    );
     t.refuse(
         "null shard 0",
         &[

@@ -1,6 +1,6 @@
 //! Issue 9.8: every artefact of a fixed seed is byte-identical across runs and thread counts.
 //! One chain of commands (simulate, correlate, a simulated null, an injection campaign, noise
-//! estimation of two pulsars, a common-process fit, the
+//! estimation of two pulsars, a common-process fit (and one with the joint red-noise fit), the
 //! figure of each folder in SVG, PNG and PDF, and the report) runs twice, once with
 //! RAYON_NUM_THREADS=1 and once with 2, and every file written is compared byte for byte
 //! (the `.lock` file, empty, is the one file left out: it is the folder lock, not an output).
@@ -111,6 +111,26 @@ fn chain(root: &Path, threads: &str) {
         "50",
         "--out",
         "com",
+    ]);
+    // The joint red-noise fit (NUTS chains in parallel): its draws must not depend on threads.
+    run(&[
+        "common",
+        "rel",
+        "--frequencies",
+        "5",
+        "--index-points",
+        "5",
+        "--draws",
+        "10",
+        "--joint-red",
+        "--joint-red-draws",
+        "30",
+        "--joint-red-warmup",
+        "30",
+        "--joint-red-chains",
+        "2",
+        "--out",
+        "cjr",
     ]);
     for dir in ["cor", "nul", "inj", "noi", "com"] {
         for format in ["svg", "png", "pdf"] {

@@ -55,6 +55,12 @@ pub enum Parameter {
     /// `common.log10_rho_J`: log10 of the free-spectrum power (s^2) at frequency J / T_span,
     /// J = 1..K (the free-spectrum chain tables of `ptacorr common`).
     CommonLog10Power(usize),
+    /// `red_log10_amplitude.LABEL`: the red-noise amplitude of pulsar LABEL in a table that
+    /// holds several pulsars (the joint fit of every pulsar's red noise with the common
+    /// process, `ptacorr common --joint-red`).
+    PulsarRedLog10Amplitude(String),
+    /// `red_spectral_index.LABEL`: the same for the spectral index.
+    PulsarRedSpectralIndex(String),
 }
 
 impl Parameter {
@@ -75,6 +81,15 @@ impl Parameter {
             ("efac", _) => backend(Parameter::Efac),
             ("equad_log10_s", _) => backend(Parameter::EquadLog10S),
             ("ecorr_log10_s", _) => backend(Parameter::EcorrLog10S),
+            ("red_log10_amplitude" | "red_spectral_index", _) => check_label(tail)
+                .map(|_| {
+                    if head == "red_log10_amplitude" {
+                        Parameter::PulsarRedLog10Amplitude(tail.to_string())
+                    } else {
+                        Parameter::PulsarRedSpectralIndex(tail.to_string())
+                    }
+                })
+                .map_err(|m| format!("pulsar of {}: {m}", quote(name))),
             ("red", "log10_amplitude") => Ok(Parameter::RedLog10Amplitude),
             ("red", "spectral_index") => Ok(Parameter::RedSpectralIndex),
             ("dm", "log10_amplitude") => Ok(Parameter::DmLog10Amplitude),
@@ -135,7 +150,9 @@ impl Parameter {
                     ));
                 }
             }
-            Parameter::RedLog10Amplitude | Parameter::DmLog10Amplitude => {
+            Parameter::RedLog10Amplitude
+            | Parameter::DmLog10Amplitude
+            | Parameter::PulsarRedLog10Amplitude(_) => {
                 check_power_law(v, 1.0).map_err(|(_, m)| m)?;
             }
             Parameter::CommonLog10Amplitude => {
@@ -149,7 +166,8 @@ impl Parameter {
             }
             Parameter::RedSpectralIndex
             | Parameter::DmSpectralIndex
-            | Parameter::CommonSpectralIndex => {
+            | Parameter::CommonSpectralIndex
+            | Parameter::PulsarRedSpectralIndex(_) => {
                 check_power_law(-14.0, v).map_err(|(_, m)| m)?;
             }
             Parameter::CommonLog10Power(_) => {
@@ -176,6 +194,8 @@ impl fmt::Display for Parameter {
             Parameter::CommonLog10Amplitude => f.write_str("common.log10_amplitude"),
             Parameter::CommonSpectralIndex => f.write_str("common.spectral_index"),
             Parameter::CommonLog10Power(j) => write!(f, "common.log10_rho_{j}"),
+            Parameter::PulsarRedLog10Amplitude(l) => write!(f, "red_log10_amplitude.{l}"),
+            Parameter::PulsarRedSpectralIndex(l) => write!(f, "red_spectral_index.{l}"),
         }
     }
 }
@@ -478,6 +498,17 @@ impl ChainTable {
                     "a per-pulsar chain table may not hold common-process parameters (give them in a common-process draw table)",
                 ));
             }
+            if matches!(
+                p,
+                Parameter::PulsarRedLog10Amplitude(_) | Parameter::PulsarRedSpectralIndex(_)
+            ) {
+                return Err(Error::input(
+                    path,
+                    Some(1),
+                    Some(&name),
+                    "a per-pulsar chain table holds red.log10_amplitude and red.spectral_index; this column belongs to a table of several pulsars (ptacorr common --joint-red)",
+                ));
+            }
             if let Some(b) = p.backend() {
                 if !backends.iter().any(|x| x == b) {
                     return Err(Error::input(
@@ -540,7 +571,9 @@ impl ChainTable {
                 Parameter::DmSpectralIndex => red_entry(&mut noise.dm).spectral_index = v,
                 Parameter::CommonLog10Amplitude
                 | Parameter::CommonSpectralIndex
-                | Parameter::CommonLog10Power(_) => {}
+                | Parameter::CommonLog10Power(_)
+                | Parameter::PulsarRedLog10Amplitude(_)
+                | Parameter::PulsarRedSpectralIndex(_) => {}
             }
         }
         noise

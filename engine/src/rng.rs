@@ -25,6 +25,8 @@ pub enum Purpose {
     CommonDraw = 21,
     /// Chains of the common free spectrum.
     FreeSpectrumChain = 22,
+    /// Chains of the joint fit of the pulsars' red noise with the common process.
+    JointRedChain = 23,
 }
 
 /// SplitMix64 finaliser (Steele, Lea & Flood 2014), used to spread seeds.

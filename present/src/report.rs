@@ -933,10 +933,70 @@ fn common_section(b: &mut Vec<Block>, label: &str, d: &figure::common::CommonDat
         right: vec![false, true, true, true, true, true, true],
         rows,
     }));
+    if let Some(j) = &s.joint_red {
+        joint_red_table(b, label, j, &interval);
+    }
     b.push(Block::Para(vec![t(format!(
         "What these numbers assume ({label}): {}",
         s.assumptions
     ))]));
+}
+
+/// The joint red-noise fit (`common --joint-red`) beside the fixed-noise CURN answer.
+fn joint_red_table(
+    b: &mut Vec<Block>,
+    label: &str,
+    j: &ptacorr::common::JointRedSummary,
+    interval: &dyn Fn([f64; 2], usize) -> Cell,
+) {
+    let mut rows = vec![vec![
+        Cell::Text("red noise sampled jointly".into()),
+        num_fixed(j.log10_amplitude.median, 3),
+        interval(j.log10_amplitude.interval_68, 3),
+        num_fixed(j.spectral_index.median, 2),
+        interval(j.spectral_index.interval_68, 2),
+    ]];
+    if let (Some(a), Some(g)) = (
+        &j.fixed_noise_log10_amplitude,
+        &j.fixed_noise_spectral_index,
+    ) {
+        rows.push(vec![
+            Cell::Text("red noise fixed (noise model)".into()),
+            num_fixed(a.median, 3),
+            interval(a.interval_68, 3),
+            num_fixed(g.median, 2),
+            interval(g.interval_68, 2),
+        ]);
+    }
+    if let (Some(da), Some(dg)) = (j.log10_amplitude_difference, j.spectral_index_difference) {
+        rows.push(vec![
+            Cell::Text("difference of medians (joint minus fixed)".into()),
+            num_fixed(da, 3),
+            Cell::Text(String::new()),
+            num_fixed(dg, 2),
+            Cell::Text(String::new()),
+        ]);
+    }
+    b.push(Block::Table(Table {
+        caption: format!(
+            "CURN common process with every pulsar's red noise marginalised jointly ({label}; {} parameters, {} pulsars with red noise, NUTS: largest R-hat {}, smallest bulk ESS {}, {} divergences) beside the answer with red noise fixed: median and central 68% interval of log10 A and of the spectral index, both with the other marginalised. {}",
+            j.n_parameters,
+            j.red_pulsars.len(),
+            format::fixed(j.max_rhat, 3, Style::Text),
+            format::fixed(j.min_ess_bulk, 0, Style::Text),
+            j.divergences,
+            j.assumptions
+        ),
+        header: vec![
+            ("red noise".into(), "red noise".into()),
+            ("log10 A median".into(), "$\\log_{10} A$ median".into()),
+            ("log10 A 68%".into(), "$\\log_{10} A$ 68\\%".into()),
+            ("γ median".into(), "$\\gamma$ median".into()),
+            ("γ 68%".into(), "$\\gamma$ 68\\%".into()),
+        ],
+        right: vec![false, true, true, true, true],
+        rows,
+    }));
 }
 
 fn caveats(inputs: &[Input]) -> Vec<Vec<Span>> {

@@ -143,8 +143,10 @@ impl FreeSpectrum {
     }
 }
 
-/// One block: value and gradient in log10 rho (K entries).
-fn block_value_and_gradient(
+/// One block: value and gradient in log10 rho (K entries; `e` holds the 2K prior standard
+/// deviations of one block, repeated per block). Shared with the joint red-noise fit
+/// (`joint.rs`), where the block is one pulsar.
+pub(crate) fn block_value_and_gradient(
     m0: &Array2<f64>,
     t0: &Array1<f64>,
     e: &[f64],
@@ -238,7 +240,7 @@ impl FreeSpectrumPosterior {
     }
 }
 
-fn logistic(y: f64) -> f64 {
+pub(crate) fn logistic(y: f64) -> f64 {
     if y >= 0.0 {
         1.0 / (1.0 + (-y).exp())
     } else {
@@ -248,7 +250,7 @@ fn logistic(y: f64) -> f64 {
 }
 
 /// ln(1 + e^y) without overflow.
-fn softplus(y: f64) -> f64 {
+pub(crate) fn softplus(y: f64) -> f64 {
     if y > 30.0 {
         y + (-y).exp()
     } else {

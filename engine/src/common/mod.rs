@@ -7,6 +7,7 @@ pub mod draws;
 pub mod evidence;
 pub mod free_sampling;
 pub mod free_spectrum;
+pub mod joint;
 pub mod likelihood;
 pub mod write;
 
@@ -14,5 +15,6 @@ pub use draws::*;
 pub use evidence::*;
 pub use free_sampling::*;
 pub use free_spectrum::*;
+pub use joint::*;
 pub use likelihood::*;
 pub use write::*;

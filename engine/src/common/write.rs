@@ -90,6 +90,10 @@ pub struct CommonSummary {
     pub draws: Option<DrawSettings>,
     pub assumptions: String,
     pub provenance: Provenance,
+    /// The joint fit of every pulsar's red noise with CURN (`--joint-red`) beside the
+    /// fixed-noise answer; absent (and not written) without that option.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub joint_red: Option<super::joint::JointRedSummary>,
 }
 
 /// The file names of a common folder.
@@ -184,6 +188,22 @@ impl CommonFit {
         data: &CommonData,
         draws: Option<(&DrawSettings, &[CommonDraw])>,
     ) -> Result<()> {
+        self.write_with(set, release, data, draws, None)
+    }
+
+    /// [`CommonFit::write`] with the joint red-noise fit in summary.json and its chain table
+    /// (`joint-red-chains.csv`).
+    pub fn write_with(
+        &self,
+        set: &mut OutputSet,
+        release: &Release,
+        data: &CommonData,
+        draws: Option<(&DrawSettings, &[CommonDraw])>,
+        joint: Option<(
+            &super::joint::JointRedSummary,
+            &super::joint::JointRedSamples,
+        )>,
+    ) -> Result<()> {
         let s = &self.settings;
         let ul = |u: f64| 10f64.powf(u);
         let ln_gamma_prior = -(s.spectral_index_max - s.spectral_index_min).ln();
@@ -253,6 +273,7 @@ impl CommonFit {
             draws: draws.map(|(d, _)| *d),
             assumptions: COMMON_ASSUMPTIONS.to_string(),
             provenance: Provenance::new(release, s),
+            joint_red: joint.map(|(j, _)| j.clone()),
         };
 
         let mut fixed_rows = Vec::new();
@@ -318,6 +339,9 @@ impl CommonFit {
         set.write(MARGINALS_FILE, &marg_csv)?;
         if let Some(d) = draws_csv {
             set.write("common-draws.csv", &d)?;
+        }
+        if let Some((j, samples)) = joint {
+            set.write(&j.chain_table, samples.table()?.to_csv()?.as_bytes())?;
         }
         Ok(())
     }

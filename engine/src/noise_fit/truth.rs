@@ -41,7 +41,9 @@ fn true_value(noise: &PulsarNoise, name: &str) -> Option<f64> {
         Parameter::DmSpectralIndex => noise.dm.map(|r| r.spectral_index),
         Parameter::CommonLog10Amplitude
         | Parameter::CommonSpectralIndex
-        | Parameter::CommonLog10Power(_) => None,
+        | Parameter::CommonLog10Power(_)
+        | Parameter::PulsarRedLog10Amplitude(_)
+        | Parameter::PulsarRedSpectralIndex(_) => None,
     }
 }
 

@@ -858,6 +858,76 @@ mod tests {
         assert!(tex.contains("$\\ln \\mathrm{BF}$"));
     }
 
+    /// With a joint red-noise fit in summary.json, the common section shows it beside the
+    /// fixed-noise answer and their difference (the numbers of the fixture, printed as given).
+    #[test]
+    fn report_shows_the_joint_red_noise_fit_beside_the_fixed_noise_answer() {
+        use ptacorr::common::{
+            CommonSummary, Interval1d, JointParameter, JointRedSettings, JointRedSummary,
+        };
+        let t = TempDir::new("common-joint-report");
+        let dir = t.sub("com");
+        common_folder(&dir);
+        let path = dir.join("summary.json");
+        let mut summary: CommonSummary =
+            serde_json::from_str(&std::fs::read_to_string(&path).unwrap()).unwrap();
+        let par = |m: f64, w: f64| JointParameter {
+            median: m,
+            interval_68: [m - w, m + w],
+            interval_95: [m - 2.0 * w, m + 2.0 * w],
+            rhat: 1.002,
+            ess_bulk: 900.0,
+            ess_tail: 800.0,
+        };
+        let fixed = |m: f64, w: f64| Interval1d {
+            median: m,
+            map: m,
+            interval_68: [m - w, m + w],
+            interval_95: [m - 2.0 * w, m + 2.0 * w],
+            upper_limit_95: m + 1.6 * w,
+        };
+        summary.joint_red = Some(JointRedSummary {
+            settings: JointRedSettings {
+                sampler: ptacorr::sampler::SamplerSettings::default(),
+                seed: 1,
+                priors: "(built-in priors)".into(),
+            },
+            n_parameters: 26,
+            red_pulsars: (1..=12).map(|i| format!("P{i:02}")).collect(),
+            priors: "uniform".into(),
+            chain_table: "joint-red-chains.csv".into(),
+            log10_amplitude: par(-13.95, 0.04),
+            spectral_index: par(4.2, 0.1),
+            fixed_noise_log10_amplitude: Some(fixed(-14.0, 0.05)),
+            fixed_noise_spectral_index: Some(fixed(4.333, 0.3)),
+            log10_amplitude_difference: Some(0.05),
+            spectral_index_difference: Some(-0.133),
+            max_rhat: 1.02,
+            min_ess_bulk: 150.0,
+            min_ess_tail: 200.0,
+            divergences: 0,
+            converged: false,
+            assumptions: ptacorr::common::JOINT_RED_ASSUMPTIONS.into(),
+        });
+        std::fs::write(
+            &path,
+            serde_json::to_string_pretty(&summary).unwrap() + "\n",
+        )
+        .unwrap();
+        seal(&dir);
+        let md = crate::report::build_report(std::slice::from_ref(&dir), &t.sub("r")).unwrap();
+        let text = std::fs::read_to_string(md).unwrap();
+        for want in [
+            "every pulsar's red noise marginalised jointly (com; 26 parameters, 12 pulsars with red noise",
+            "| red noise sampled jointly | -13.950 | -13.990 to -13.910 | 4.20 | 4.10 to 4.30 |",
+            "| red noise fixed (noise model) | -14.000 | -14.050 to -13.950 | 4.33 | 4.03 to 4.63 |",
+            "| difference of medians (joint minus fixed) | 0.050 |  | -0.13 |  |",
+            "A detection claim needs the collaboration's full analysis",
+        ] {
+            assert!(text.contains(want), "missing {want:?} in\n{text}");
+        }
+    }
+
     /// A circle x^2 + y^2 = r^2 traced from z = -(x^2 + y^2) at level -r^2 on a fine grid: one
     /// closed polyline whose points lie on the circle to the grid's interpolation error (the
     /// chord error of linear interpolation, below h^2 = 1e-3 here; a circle is the textbook

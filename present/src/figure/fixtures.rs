@@ -453,6 +453,7 @@ pub(crate) fn common_folder(dir: &Path) {
         draws: None,
         assumptions: ptacorr::common::COMMON_ASSUMPTIONS.to_string(),
         provenance: serde_json::from_value(provenance("c0ffee")).expect("provenance"),
+        joint_red: None,
     };
     let text = serde_json::to_string_pretty(&summary).expect("serialise summary");
     std::fs::write(dir.join("summary.json"), text + "\n").unwrap();
