@@ -248,6 +248,7 @@ impl AnalysisArgs {
 }
 
 fn main() -> ExitCode {
+    ptacorr::linalg::keep_freed_memory();
     let cli = Cli::parse();
     ptacorr::release::set_default_read_options(ptacorr::release::ReadOptions {
         allow_outside_paths: cli.allow_outside_paths,

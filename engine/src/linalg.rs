@@ -224,6 +224,52 @@ pub fn single_threaded_blas() {
     ONCE.call_once(|| unsafe { openblas_set_num_threads(1) });
 }
 
+/// A zeroed `rows x cols` matrix for a large work array (the joint covariance: 63 MB at
+/// 100 pulsars and K = 14). On Linux its memory is offered to the kernel as transparent huge
+/// pages (`madvise(MADV_HUGEPAGE)`, Linux `madvise(2)`) before it is first written, so that
+/// filling it takes one page fault per 2 MB instead of one per 4 kB; in a virtual machine a page
+/// fault is costly, and the 4 kB faults of that one matrix were a fifth of `correlate`'s CPU time
+/// at 100 x 2,400 (docs/performance.md). The values are the same zeros either way.
+pub fn zeros_large(rows: usize, cols: usize) -> Array2<f64> {
+    let v = vec![0.0f64; rows * cols];
+    #[cfg(target_os = "linux")]
+    {
+        const HUGE: usize = 2 << 20;
+        let bytes = std::mem::size_of_val(v.as_slice());
+        if bytes >= 2 * HUGE {
+            let begin = v.as_ptr() as usize;
+            let start = begin.div_ceil(HUGE) * HUGE;
+            let end = (begin + bytes) / HUGE * HUGE;
+            if end > start {
+                // SAFETY: [start, end) lies inside the allocation of `v`, which this function
+                // owns; MADV_HUGEPAGE is advice on how to back it and changes no contents. A
+                // failure (a kernel without transparent huge pages) leaves 4 kB pages.
+                unsafe {
+                    libc::madvise(start as *mut libc::c_void, end - start, libc::MADV_HUGEPAGE);
+                }
+            }
+        }
+    }
+    Array2::from_shape_vec((rows, cols), v).expect("rows x cols values")
+}
+
+/// Let the process keep the memory it frees for its next allocations (glibc `mallopt`:
+/// `M_MMAP_THRESHOLD` at its largest, 32 MB, and a 1 GB `M_TRIM_THRESHOLD`; glibc manual,
+/// "Malloc Tunable Parameters"). By default glibc maps every block above a threshold afresh
+/// and returns it on free, so each pulsar's work arrays (the whitened basis: 5 to 10 MB at
+/// 10,000 TOAs) came as new pages, each page faulted in and zeroed by the kernel: about 40 % of
+/// the page faults of `correlate` at 100 x 10,000 (docs/performance.md). Blocks above 32 MB
+/// (the joint covariance) are still mapped ([`zeros_large`]). Called once by the command-line
+/// program at start; a library caller keeps its own allocator settings. No value changes.
+pub fn keep_freed_memory() {
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    // SAFETY: mallopt only sets allocator parameters; called before other threads start.
+    unsafe {
+        libc::mallopt(libc::M_MMAP_THRESHOLD, 32 << 20);
+        libc::mallopt(libc::M_TRIM_THRESHOLD, 1 << 30);
+    }
+}
+
 /// Set OpenBLAS's thread count (for measurements such as `examples/peak_gemm.rs`; the engine
 /// itself uses [`single_threaded_blas`]).
 pub fn set_blas_threads(n: usize) {

@@ -214,17 +214,29 @@ pub fn joint_covariance(
     let m = check_inputs(z, g, dc)?;
     let n = z.len();
     let bl = noise_blocks(z, dc);
-    let mut c = Array2::<f64>::zeros((n * m, n * m));
-    for a in 0..n {
-        for b in 0..n {
-            let mut blk = z[a].dot(&z[b]) * (a2 * g[[a, b]]);
-            if a == b {
-                blk += &bl[a];
-            }
-            c.slice_mut(s![a * m..(a + 1) * m, b * m..(b + 1) * m])
-                .assign(&blk);
-        }
+    let nm = n * m;
+    let mut c = crate::linalg::zeros_large(nm, nm);
+    if nm == 0 {
+        return Ok(c);
     }
+    // Block rows in parallel (each block is the same product as a serial loop would compute,
+    // so the bytes do not depend on the thread count).
+    use rayon::prelude::*;
+    c.as_slice_mut()
+        .expect("standard layout")
+        .par_chunks_mut(m * nm)
+        .enumerate()
+        .for_each(|(a, rows)| {
+            let mut rows =
+                ndarray::ArrayViewMut2::from_shape((m, nm), rows).expect("one block row of C");
+            for b in 0..n {
+                let mut blk = z[a].dot(&z[b]) * (a2 * g[[a, b]]);
+                if a == b {
+                    blk += &bl[a];
+                }
+                rows.slice_mut(s![.., b * m..(b + 1) * m]).assign(&blk);
+            }
+        });
     Ok(c)
 }
 

@@ -201,21 +201,46 @@ pub fn recorded_input_hash(file: &Path) -> Option<String> {
 /// for catching a mistyped MJD, our choice of numbers).
 pub const ISOLATED_TOA_GAP_DAYS: f64 = 365.25;
 
+/// The rows of the two earliest and the two latest MJDs (at least 2 values), found in one pass:
+/// the first two and the last two entries of a stable sort of the rows by MJD (`total_cmp`), so
+/// of tied MJDs the earliest row comes first and the latest row last.
+fn mjd_ends(mjd: &[f64]) -> ([usize; 2], [usize; 2]) {
+    let (mut lo, mut hi) = ([0usize, 1], [0usize, 1]);
+    if mjd[1].total_cmp(&mjd[0]).is_lt() {
+        lo = [1, 0];
+    } else {
+        hi = [1, 0];
+    }
+    for (i, &v) in mjd.iter().enumerate().skip(2) {
+        if v.total_cmp(&mjd[lo[0]]).is_lt() {
+            lo = [i, lo[0]];
+        } else if v.total_cmp(&mjd[lo[1]]).is_lt() {
+            lo[1] = i;
+        }
+        if v.total_cmp(&mjd[hi[0]]).is_ge() {
+            hi = [i, hi[0]];
+        } else if v.total_cmp(&mjd[hi[1]]).is_ge() {
+            hi[1] = i;
+        }
+    }
+    (lo, hi)
+}
+
 /// Warnings about one pulsar's residual table: an isolated first or last TOA, exact
 /// duplicate rows.
 pub fn residual_warnings(p: &Pulsar, path: &Path) -> Vec<String> {
     let mut out = Vec::new();
     let n = p.n_toa();
     if n >= 3 {
-        let mut order: Vec<usize> = (0..n).collect();
-        order.sort_by(|&a, &b| p.mjd[a].total_cmp(&p.mjd[b]));
-        let t = |k: usize| p.mjd[order[k]];
-        let (first_gap, last_gap) = (t(1) - t(0), t(n - 1) - t(n - 2));
-        let rest_first = t(n - 1) - t(1);
-        let rest_last = t(n - 2) - t(0);
+        let (lo, hi) = mjd_ends(&p.mjd);
+        let (t0, t1) = (p.mjd[lo[0]], p.mjd[lo[1]]);
+        let (tn1, tn2) = (p.mjd[hi[0]], p.mjd[hi[1]]);
+        let (first_gap, last_gap) = (t1 - t0, tn1 - tn2);
+        let rest_first = tn1 - t1;
+        let rest_last = tn2 - t0;
         for (gap, rest, k, end) in [
-            (first_gap, rest_first, order[0], "first"),
-            (last_gap, rest_last, order[n - 1], "last"),
+            (first_gap, rest_first, lo[0], "first"),
+            (last_gap, rest_last, hi[0], "last"),
         ] {
             if gap > ISOLATED_TOA_GAP_DAYS && gap > 0.5 * rest {
                 out.push(format!(
@@ -400,21 +425,29 @@ pub fn read_release_with(path: &Path, options: ReadOptions) -> Result<Release> {
             pulsars.push(p);
         }
     }
-    let mut warnings = Vec::new();
-    for (spanned, p) in file.pulsar.iter().zip(&pulsars) {
-        warnings.extend(residual_warnings(
-            p,
-            &dir.join(&spanned.get_ref().residuals),
-        ));
-    }
+    // Pulsars in parallel, their warnings kept in the order of release.toml.
+    let mut warnings: Vec<String> = file
+        .pulsar
+        .par_iter()
+        .zip(&pulsars)
+        .map(|(spanned, p)| residual_warnings(p, &dir.join(&spanned.get_ref().residuals)))
+        .collect::<Vec<_>>()
+        .into_iter()
+        .flatten()
+        .collect();
+    // Each path resolved once (not once per pair of pulsars).
+    let paths: Vec<std::path::PathBuf> = file
+        .pulsar
+        .iter()
+        .map(|e| dir.join(&e.get_ref().residuals))
+        .collect();
+    let canonical: Vec<Option<std::path::PathBuf>> =
+        paths.iter().map(|p| p.canonicalize().ok()).collect();
     for (i, a) in file.pulsar.iter().enumerate() {
-        for b in &file.pulsar[..i] {
-            let (pa, pb) = (
-                dir.join(&a.get_ref().residuals),
-                dir.join(&b.get_ref().residuals),
-            );
-            let same = pa == pb
-                || matches!((pa.canonicalize(), pb.canonicalize()), (Ok(x), Ok(y)) if x == y);
+        for (j, b) in file.pulsar[..i].iter().enumerate() {
+            let (pa, pb) = (&paths[i], &paths[j]);
+            let same =
+                pa == pb || matches!((&canonical[i], &canonical[j]), (Some(x), Some(y)) if x == y);
             if same {
                 warnings.push(format!(
                     "{}: pulsars {} and {} read the same residual file {}",
@@ -574,17 +607,17 @@ fn parse_residuals(path: &Path, label: &str, bytes: &[u8]) -> Result<Pulsar> {
 /// and returns the same values (blank lines skipped, fields trimmed of ASCII white space,
 /// numbers through the same `str::parse::<f64>`); at the first thing it does not handle, or
 /// any bad value, it returns None and the `csv` reader parses the file again and names the
-/// line and field.
+/// line and field. The table is checked to be UTF-8 once, as a whole (any field with a
+/// byte outside UTF-8 failed to parse before, too), not field by field.
 fn parse_residuals_plain(label: &str, bytes: &[u8]) -> Option<Pulsar> {
     if bytes.contains(&b'"') {
         return None;
     }
-    let mut lines = bytes
-        .split(|&b| b == b'\n')
-        .map(|l| l.strip_suffix(b"\r").unwrap_or(l));
+    let text = std::str::from_utf8(bytes).ok()?;
+    let mut lines = text.split('\n').map(|l| l.strip_suffix('\r').unwrap_or(l));
     let header = lines.next()?;
-    let mut fields = [&b""[..]; 5];
-    if split5(header, &mut fields)? != RESIDUAL_COLUMNS.map(str::as_bytes) {
+    let mut fields = [""; 5];
+    if split5(header, &mut fields)? != RESIDUAL_COLUMNS {
         return None;
     }
     let cap = bytes.len() / 48;
@@ -601,13 +634,7 @@ fn parse_residuals_plain(label: &str, bytes: &[u8]) -> Option<Pulsar> {
         backends: Vec::new(),
         design: None,
     };
-    let num = |f: &[u8]| -> Option<f64> {
-        std::str::from_utf8(f)
-            .ok()?
-            .parse::<f64>()
-            .ok()
-            .filter(|v| v.is_finite())
-    };
+    let num = |f: &str| -> Option<f64> { f.parse::<f64>().ok().filter(|v| v.is_finite()) };
     for line in lines {
         if line.is_empty() {
             continue;
@@ -617,7 +644,10 @@ fn parse_residuals_plain(label: &str, bytes: &[u8]) -> Option<Pulsar> {
         if !(s > 0.0 && fr > 0.0 && (0.0..1.0e6).contains(&mjd)) {
             return None;
         }
-        let b = std::str::from_utf8(f[4]).ok().filter(|b| !b.is_empty())?;
+        let b = f[4];
+        if b.is_empty() {
+            return None;
+        }
         let bi = match p.backends.iter().position(|x| x == b) {
             Some(i) => i,
             None => {
@@ -636,19 +666,29 @@ fn parse_residuals_plain(label: &str, bytes: &[u8]) -> Option<Pulsar> {
 
 /// Split one line into exactly five comma-separated fields trimmed of ASCII white space (as
 /// the `csv` reader with `Trim::All` does); None for another count or a stray `\r`.
-fn split5<'a>(line: &'a [u8], out: &mut [&'a [u8]; 5]) -> Option<[&'a [u8]; 5]> {
-    if line.contains(&b'\r') {
-        return None;
-    }
+fn split5<'a>(line: &'a str, out: &mut [&'a str; 5]) -> Option<[&'a str; 5]> {
+    // One scan of the bytes (a search per comma cost more than the short fields); slicing a
+    // str at an ASCII comma is always at a character boundary.
     let mut k = 0;
-    for field in line.split(|&b| b == b',') {
-        if k == 5 {
+    let mut start = 0;
+    for (i, &c) in line.as_bytes().iter().enumerate() {
+        if c == b'\r' {
             return None;
         }
-        out[k] = field.trim_ascii();
-        k += 1;
+        if c == b',' {
+            if k == 4 {
+                return None;
+            }
+            out[k] = line[start..i].trim_ascii();
+            k += 1;
+            start = i + 1;
+        }
     }
-    (k == 5).then_some(*out)
+    if k != 4 {
+        return None;
+    }
+    out[4] = line[start..].trim_ascii();
+    Some(*out)
 }
 
 /// The `csv` reader of residual tables: the reference parse, and the one that names the line
@@ -963,6 +1003,31 @@ mod tests {
         let quoted = "mjd,residual_s,sigma_s,freq_mhz,backend\n55000.0,0,1e-6,1400,\"A\"\n";
         let p = parse_residuals(path, "P", quoted.as_bytes()).unwrap();
         assert_eq!(p.backends, ["A"]);
+    }
+
+    /// The one-pass ends against the standard library's stable sort (`slice::sort_by`, stable
+    /// by its documentation), on tables with many ties, with an earliest and a latest row that
+    /// are repeated, and at the shortest length.
+    #[test]
+    fn mjd_ends_are_those_of_a_stable_sort() {
+        let tables: Vec<Vec<f64>> = vec![
+            vec![3.0, 1.0],
+            vec![1.0, 1.0],
+            vec![5.0, 1.0, 5.0, 1.0, 3.0, 5.0, 1.0],
+            vec![2.0, 2.0, 2.0, 2.0],
+            (0..200).map(|i| ((i * 37) % 11) as f64).collect(),
+            (0..200).map(|i| ((i * 7919) % 101) as f64 * 0.5).collect(),
+        ];
+        for mjd in tables {
+            let mut order: Vec<usize> = (0..mjd.len()).collect();
+            order.sort_by(|&a, &b| mjd[a].total_cmp(&mjd[b]));
+            let n = mjd.len();
+            let (lo, hi) = mjd_ends(&mjd);
+            assert_eq!(lo[0], order[0], "{mjd:?}");
+            assert_eq!(mjd[lo[1]], mjd[order[1]], "{mjd:?}");
+            assert_eq!(hi[0], order[n - 1], "{mjd:?}");
+            assert_eq!(mjd[hi[1]], mjd[order[n - 2]], "{mjd:?}");
+        }
     }
 
     #[test]
