@@ -8,7 +8,7 @@ use ptacorr::common::{
     read_fitted_common, sample_free_spectrum, write_free_spectrum, AmplitudePrior, CommonData,
     CommonModel, CommonSettings, DrawIndex, DrawSettings, FitStatistic, FittedCommon,
     FreeSpectrumSettings, JointRedData, JointRedLikelihood, JointRedPosterior, JointRedSettings,
-    COMMON_ASSUMPTIONS, FREE_SPECTRUM_ASSUMPTIONS,
+    COMMON_ASSUMPTIONS, DEFAULT_MAX_MINUTES, FREE_SPECTRUM_ASSUMPTIONS,
 };
 use ptacorr::output::OutputSet;
 use ptacorr::priors::PriorFile;
@@ -19,10 +19,28 @@ use std::time::Instant;
 
 #[derive(Clone, Copy, clap::ValueEnum)]
 pub enum PriorArg {
-    /// Uniform in log10 A (default; for Bayes factors).
+    /// Uniform in log10 A (for Bayes factors).
     UniformLog10,
     /// Uniform in A (for upper limits).
     UniformAmplitude,
+}
+
+impl From<AmplitudePrior> for PriorArg {
+    fn from(p: AmplitudePrior) -> Self {
+        match p {
+            AmplitudePrior::UniformLog10 => PriorArg::UniformLog10,
+            AmplitudePrior::UniformAmplitude => PriorArg::UniformAmplitude,
+        }
+    }
+}
+
+impl From<DrawIndex> for DrawIndexArg {
+    fn from(d: DrawIndex) -> Self {
+        match d {
+            DrawIndex::Varied => DrawIndexArg::Varied,
+            DrawIndex::Fixed => DrawIndexArg::Fixed,
+        }
+    }
 }
 
 #[derive(clap::Args)]
@@ -56,16 +74,16 @@ pub struct CommonArgs {
     /// Number of log10 A points in the CSV tables.
     #[arg(long, default_value_t = CommonSettings::default().n_table_amplitudes)]
     amplitude_points: usize,
-    #[arg(long, value_enum, default_value = "uniform-log10")]
+    #[arg(long, value_enum, default_value_t = CommonSettings::default().amplitude_prior.into())]
     amplitude_prior: PriorArg,
     /// Number of posterior draws of the CURN common process in common-draws.csv.
-    #[arg(long, default_value_t = 1000)]
+    #[arg(long, default_value_t = DrawSettings::default().n_draws)]
     draws: usize,
     /// Draw (log10 A, gamma) from the varied-index posterior, or log10 A at the fixed index.
-    #[arg(long, value_enum, default_value = "varied")]
+    #[arg(long, value_enum, default_value_t = DrawSettings::default().index.into())]
     draw_index: DrawIndexArg,
     /// Seed of the posterior draws (draw i depends on (seed, i) alone).
-    #[arg(long, default_value_t = 2026, allow_negative_numbers = true, value_parser = crate::seed_arg)]
+    #[arg(long, default_value_t = DrawSettings::default().seed, allow_negative_numbers = true, value_parser = crate::seed_arg)]
     seed: u64,
     /// Also sample the free spectrum (independent power at each frequency) of these models with
     /// NUTS, e.g. `curn,hd` (none by default; a correlated model costs one (2KN)^3 / 3
@@ -73,20 +91,20 @@ pub struct CommonArgs {
     #[arg(long, value_delimiter = ',')]
     free_spectrum: Vec<String>,
     /// Prior range of log10 rho_j (s^2) of the free spectrum: LO,HI.
-    #[arg(long, default_value = "-20,-8", allow_hyphen_values = true)]
+    #[arg(long, default_value_t = range_text(FreeSpectrumSettings::default().log10_power_min, FreeSpectrumSettings::default().log10_power_max), allow_hyphen_values = true)]
     log10_power_range: String,
     /// Kept NUTS draws per chain of the free spectrum.
-    #[arg(long, default_value_t = 500)]
+    #[arg(long, default_value_t = FreeSpectrumSettings::default().sampler.draws)]
     free_spectrum_draws: u64,
     /// NUTS warm-up iterations per chain of the free spectrum.
-    #[arg(long, default_value_t = 500)]
+    #[arg(long, default_value_t = FreeSpectrumSettings::default().sampler.warmup)]
     free_spectrum_warmup: u64,
     /// NUTS chains of the free spectrum (at least 2, for R-hat).
-    #[arg(long, default_value_t = 4)]
+    #[arg(long, default_value_t = FreeSpectrumSettings::default().sampler.chains)]
     free_spectrum_chains: usize,
     /// Refuse to sample a free spectrum whose estimated wall time (measured gradient cost times
     /// the expected number of gradients) exceeds this many minutes.
-    #[arg(long, default_value_t = 10.0)]
+    #[arg(long, default_value_t = DEFAULT_MAX_MINUTES)]
     free_spectrum_max_minutes: f64,
     /// Also sample the CURN common process jointly with every pulsar's own red noise
     /// (2 + 2 N_red parameters, NUTS), and report it beside the fixed-noise answer.
@@ -97,13 +115,13 @@ pub struct CommonArgs {
     #[arg(long, requires = "joint_red")]
     joint_red_priors: Option<PathBuf>,
     /// Kept NUTS draws per chain of the joint fit.
-    #[arg(long, default_value_t = 500)]
+    #[arg(long, default_value_t = SamplerSettings::default().draws)]
     joint_red_draws: u64,
     /// NUTS warm-up iterations per chain of the joint fit.
-    #[arg(long, default_value_t = 500)]
+    #[arg(long, default_value_t = SamplerSettings::default().warmup)]
     joint_red_warmup: u64,
     /// NUTS chains of the joint fit (at least 2, for R-hat).
-    #[arg(long, default_value_t = 4)]
+    #[arg(long, default_value_t = SamplerSettings::default().chains)]
     joint_red_chains: usize,
 }
 

@@ -52,12 +52,27 @@ pub struct DrawSettings {
     pub index: DrawIndex,
 }
 
+impl Default for DrawSettings {
+    /// 1,000 joint (log10 A, gamma) draws seeded by 2026: enough for the OS to marginalise over
+    /// the common process with a Monte Carlo error well under its own spread (our choice).
+    fn default() -> Self {
+        DrawSettings {
+            n_draws: 1000,
+            seed: 2026,
+            index: DrawIndex::Varied,
+        }
+    }
+}
+
 /// Check the number of draws before any work.
 pub fn check_draws(n: usize) -> Result<()> {
     if n == 0 || n > MAX_DRAWS {
         return Err(Error::setting(
             "draws",
-            format!("must be in 1..={MAX_DRAWS}, got {n} (default 1000)"),
+            format!(
+                "must be in 1..={MAX_DRAWS}, got {n} (default {})",
+                DrawSettings::default().n_draws
+            ),
         ));
     }
     Ok(())

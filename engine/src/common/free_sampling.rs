@@ -8,6 +8,7 @@
 //! position of the model in [`CommonModel::ALL`], so the draws depend on (seed, model, chain)
 //! alone, not on the thread count or on which other models are sampled.
 
+use super::draws::DrawSettings;
 use super::evidence::CommonFit;
 use super::free_spectrum::{FreeSpectrum, FreeSpectrumPosterior};
 use super::likelihood::{CommonData, CommonModel};
@@ -77,6 +78,25 @@ pub struct FreeSpectrumSettings {
     pub sampler: SamplerSettings,
     pub seed: u64,
 }
+
+impl Default for FreeSpectrumSettings {
+    /// No model; log10 rho_j uniform over [-20, -8] (s^2), wide enough to hold both a white
+    /// floor and any plausible background at the lowest frequency (our choice); the sampler's
+    /// own defaults; the common seed 2026.
+    fn default() -> Self {
+        FreeSpectrumSettings {
+            models: Vec::new(),
+            log10_power_min: -20.0,
+            log10_power_max: -8.0,
+            sampler: SamplerSettings::default(),
+            seed: DrawSettings::default().seed,
+        }
+    }
+}
+
+/// Refuse a free spectrum whose estimated wall time exceeds this many minutes, unless told
+/// otherwise (our choice: a command run interactively should not silently take an hour).
+pub const DEFAULT_MAX_MINUTES: f64 = 10.0;
 
 impl FreeSpectrumSettings {
     /// Check every setting before any work.
