@@ -7,11 +7,15 @@
 //! Prints `ln_l`, `seconds_per_evaluation` (value and gradient), `flops` (counted; for TOAs
 //! grouped by equal uncertainty, `grouped true`, the grouped form's), the same three for the
 //! TOA-by-TOA form (`ln_l_by_toa`, `seconds_per_evaluation_by_toa`, `flops_by_toa`), the
-//! shape, and the value and time of the fixed-white evaluation at the same point. Red and DM processes use their `n_frequencies` (14 when absent, as the peer), or K
+//! shape, and the value and time of the fixed-white evaluation at the same point. With distinct
+//! uncertainties (TOAs not grouped) the timed evaluation uses the interpolated white-weighted
+//! Gram over the default prior ranges (`interpolated true`, engine/src/white_gram.rs; its setup
+//! time `setup_seconds`, nodes per piece `nodes`), and `by_toa` is the exact form. Red and DM processes use their `n_frequencies` (14 when absent, as the peer), or K
 //! frequencies when K is given (30 is what `ptacorr noise` fits by default).
 
-use ptacorr::likelihood::{BackendTerms, Components, Hyper, PulsarLikelihood};
+use ptacorr::likelihood::{BackendTerms, Components, Hyper, PulsarLikelihood, WhiteGramStatus};
 use ptacorr::linalg::single_threaded_blas;
+use ptacorr::priors::{DEFAULT_EFAC, DEFAULT_LOG10_WHITE_S};
 use ptacorr::reduce::FrequencyGrid;
 use ptacorr::release::read_release;
 use std::time::Instant;
@@ -51,7 +55,36 @@ fn main() {
         common: None,
     };
     let grid = FrequencyGrid::for_release(&rel, 1).expect("grid");
-    let lik = PulsarLikelihood::new(p, &comp, &grid).expect("likelihood");
+    let mut lik = PulsarLikelihood::new(p, &comp, &grid).expect("likelihood");
+    let bounds: Vec<[f64; 2]> = lik
+        .parameters()
+        .iter()
+        .map(|h| match h.kind {
+            Hyper::Efac(_) => DEFAULT_EFAC,
+            Hyper::Log10Equad(_) => DEFAULT_LOG10_WHITE_S,
+            _ => [f64::NEG_INFINITY, f64::INFINITY],
+        })
+        .collect();
+    let start = Instant::now();
+    let status = lik.interpolate_white(&bounds, &Default::default());
+    let setup = start.elapsed().as_secs_f64();
+    if let WhiteGramStatus::Used(r) = &status {
+        println!("setup_seconds {setup:?}");
+        println!(
+            "nodes {}",
+            r.iter()
+                .map(|g| format!("{}x{}", g.pieces, g.nodes))
+                .collect::<Vec<_>>()
+                .join(",")
+        );
+        println!(
+            "check_error {:?}",
+            r.iter().map(|g| g.max_error).collect::<Vec<_>>()
+        );
+    }
+    if let WhiteGramStatus::Failed(note) = &status {
+        println!("note {note}");
+    }
     let theta: Vec<f64> = lik
         .parameters()
         .iter()
@@ -111,6 +144,7 @@ fn main() {
     let (n, c) = lik.shape();
     println!("ln_l {value:?}");
     println!("grouped {}", lik.grouped());
+    println!("interpolated {}", lik.white_interpolated());
     println!("ln_l_by_toa {value_by_toa:?}");
     println!("seconds_per_evaluation_by_toa {per_by_toa:?}");
     println!("flops_by_toa {:?}", by_toa.flops());

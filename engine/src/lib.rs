@@ -48,6 +48,7 @@ pub mod sky;
 pub mod spectrum;
 #[doc(hidden)]
 pub mod testing;
+pub mod white_gram;
 pub mod whiten;
 
 pub use error::{Error, Result};

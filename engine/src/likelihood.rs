@@ -29,6 +29,7 @@ use crate::noise::{PulsarNoise, RedProcess, WhiteNoise};
 use crate::reduce::{basis_columns, ecorr_beta, FrequencyGrid};
 use crate::release::Pulsar;
 use crate::spectrum::{power_law_phi, PowerLaw};
+use crate::white_gram::{add_packed, trace_product, BackendGram, GramReport, GramSettings};
 use ndarray::linalg::general_mat_vec_mul;
 use ndarray::{s, Array1, Array2, ArrayView1, ArrayViewMut1, Axis};
 use std::cell::RefCell;
@@ -132,6 +133,8 @@ struct Work {
     v: Array2<f64>,
     /// T^T N^-1 T (both triangles).
     gram: Array2<f64>,
+    /// Per backend, H and dH/dtau of the interpolated Gram (packed; [`BackendGram`]).
+    gram_h: Vec<f64>,
 }
 
 impl Work {
@@ -304,6 +307,21 @@ pub struct PulsarLikelihood {
     params: Vec<Hyperparameter>,
     /// TOAs grouped by (backend, sigma), when that is exact and cheaper ([`Groups`]).
     groups: Option<Groups>,
+    /// Per backend, the interpolated white-weighted Gram ([`crate::white_gram`]), when set up
+    /// by [`PulsarLikelihood::interpolate_white`].
+    white_gram: Option<Vec<BackendGram>>,
+}
+
+/// Whether [`PulsarLikelihood::interpolate_white`] set up the interpolated evaluation.
+#[derive(Clone, Debug, PartialEq)]
+pub enum WhiteGramStatus {
+    /// Used, with each backend's report (nodes, pieces, the error found by the check).
+    Used(Vec<GramReport>),
+    /// Not needed or not applicable: the TOAs are grouped (exact and cheaper), or a backend has
+    /// ECORR (its epochs couple TOAs).
+    NotApplicable,
+    /// The check at setup failed: evaluations stay exact (TOA by TOA); the note says why.
+    Failed(String),
 }
 
 /// TOAs of equal white-noise variance: N^-1 is d_g^-1 on group g's TOAs, d_g =
@@ -518,7 +536,70 @@ impl PulsarLikelihood {
             common_index,
             params,
             groups,
+            white_gram: None,
         })
+    }
+
+    /// Evaluate with the interpolated per-backend Gram of [`crate::white_gram`] whenever the
+    /// white noise lies inside `bounds` (the prior ranges, in the order of [`Self::parameters`];
+    /// outside them an evaluation is exact). Applies to pulsars without ECORR whose TOAs are not
+    /// grouped ([`Groups`]: equal uncertainties are exact and cheaper). When the check at setup
+    /// fails, nothing changes and the status carries the note.
+    pub fn interpolate_white(
+        &mut self,
+        bounds: &[[f64; 2]],
+        settings: &GramSettings,
+    ) -> WhiteGramStatus {
+        if self.groups.is_some() || !self.epochs.is_empty() || bounds.len() != self.params.len() {
+            return WhiteGramStatus::NotApplicable;
+        }
+        let mut grams = Vec::with_capacity(self.backends.len());
+        let mut reports = Vec::with_capacity(self.backends.len());
+        for (b, wi) in self.white_index.iter().enumerate() {
+            let e_range = wi.efac.map_or([1.0, 1.0], |i| bounds[i]);
+            let q2_range = wi.equad.map_or([0.0, 0.0], |i| {
+                [
+                    10f64.powf(2.0 * bounds[i][0]),
+                    10f64.powf(2.0 * bounds[i][1]),
+                ]
+            });
+            // t = EQUAD^2 / EFAC^2 over the prior rectangle.
+            let t_range = [
+                q2_range[0] / (e_range[1] * e_range[1]),
+                q2_range[1] / (e_range[0] * e_range[0]),
+            ];
+            let rows: Vec<usize> = (0..self.backend.len())
+                .filter(|&i| self.backend[i] == b)
+                .collect();
+            if rows.is_empty() {
+                return WhiteGramStatus::NotApplicable;
+            }
+            match BackendGram::build(&self.t, &self.sigma, rows, t_range, settings) {
+                Ok((g, r)) => {
+                    grams.push(g);
+                    reports.push(r);
+                }
+                Err(note) => {
+                    return WhiteGramStatus::Failed(format!(
+                        "pulsar {} backend {}: {note}; its likelihood is evaluated TOA by TOA",
+                        self.label, self.backends[b]
+                    ))
+                }
+            }
+        }
+        self.white_gram = Some(grams);
+        WhiteGramStatus::Used(reports)
+    }
+
+    /// Whether evaluations use the interpolated white-weighted Gram.
+    pub fn white_interpolated(&self) -> bool {
+        self.white_gram.is_some()
+    }
+
+    /// The same likelihood without the interpolated Gram (for checks against the exact form).
+    pub fn exact_white(mut self) -> Self {
+        self.white_gram = None;
+        self
     }
 
     /// The hyperparameters, in the order of the parameter vector.
@@ -584,6 +665,16 @@ impl PulsarLikelihood {
         let (nf, cf) = (n as f64, c as f64);
         if let Some(g) = &self.groups {
             return g.count.len() as f64 * (5.0 * cf * cf + 4.0 * cf) + cf.powi(3);
+        }
+        if let Some(grams) = &self.white_gram {
+            // Per backend: the series and its derivative (4 flops per coefficient entry), S's
+            // share (2 per entry), two trace products (4 per entry); two products with T
+            // (4 n c); the dense steps on S (c^3 / 3 factor, 2 c^3 / 3 for S^-1).
+            let per: f64 = grams
+                .iter()
+                .map(|g| (4 * g.nodes_per_evaluation() + 6) as f64 * g.packed_len() as f64)
+                .sum();
+            return per + 4.0 * nf * cf + cf.powi(3);
         }
         let ne = self.epochs.len();
         let ecorr = if ne > 0 { 5.0 * nf * cf } else { 0.0 };
@@ -905,7 +996,17 @@ impl PulsarLikelihood {
         if let Some(g) = &self.groups {
             return self.evaluate_grouped(theta, grad, g);
         }
-        with_work(|w| self.evaluate_in(theta, grad, w))
+        with_work(|w| {
+            if let Some(grams) = &self.white_gram {
+                // None: the white noise lies outside the interpolated range.
+                let mut grad = grad;
+                if let Some(v) = self.evaluate_interpolated(theta, grad.as_deref_mut(), grams, w)? {
+                    return Ok(v);
+                }
+                return self.evaluate_in(theta, grad, w);
+            }
+            self.evaluate_in(theta, grad, w)
+        })
     }
 
     /// Whether evaluations use grouped TOAs ([`Groups`]).
@@ -1017,6 +1118,162 @@ impl PulsarLikelihood {
             return Err(non_finite(&format!("gradient in {}", self.params[k].name)));
         }
         Ok(lnl)
+    }
+
+    /// ln L (and its gradient) with T^T N^-1 T from the interpolated per-backend Grams
+    /// ([`crate::white_gram`]): with N_i = a_b (s_i + t_b), a_b = EFAC^2 and
+    /// t_b = EQUAD^2 / EFAC^2, T^T N^-1 T = sum_b H_b(tau_b) / (a_b u_b), u_b = s_min + t_b.
+    /// Everything else is exact and O(n c): T^T N^-1 r, r - T a, r^T P r, ln det N. The
+    /// white-noise gradient needs, per backend, sum_i (P r)_i^2 and sum_i P_ii, each also
+    /// weighted by s_i; with P_ii = N_i^-1 - (N^-1 T S^-1 T^T N^-1)_ii (the Woodbury form of
+    /// P's diagonal, Press et al. 2007, sec. 2.7.3), the sums of the second term are
+    /// tr(S^-1 K0) and tr(S^-1 K1) with K0 = sum_i T_i T_i^T / N_i^2 = (H - H') / (a^2 u^2) and
+    /// K1 = sum_i s_i T_i T_i^T / N_i^2 = (s_min H + t H') / (a^2 u^2) (H' = dH/dtau; from
+    /// G(t) = H / u, dG/dt = (H' - H) / u^2). Ok(None) when a backend's t lies outside the
+    /// interpolated range.
+    fn evaluate_interpolated(
+        &self,
+        theta: &[f64],
+        grad: Option<&mut [f64]>,
+        grams: &[BackendGram],
+        w: &mut Work,
+    ) -> Result<Option<f64>> {
+        let non_finite = |what: &str| Error::NonFinite {
+            what: format!("the likelihood of pulsar {} ({what})", self.label),
+        };
+        let (n, cols) = self.t.dim();
+        let nb = self.backends.len();
+        let mut efac = vec![1.0; nb];
+        let mut equad2 = vec![0.0; nb];
+        for (b, wi) in self.white_index.iter().enumerate() {
+            if let Some(i) = wi.efac {
+                efac[b] = theta[i];
+            }
+            if let Some(i) = wi.equad {
+                equad2[b] = 10f64.powf(2.0 * theta[i]);
+            }
+        }
+        let len = grams.first().map_or(0, |g| g.packed_len());
+        w.size(n, cols, 0);
+        w.gram_h.resize(2 * nb * len, 0.0);
+        let mut tval = vec![0.0; nb];
+        for (b, g) in grams.iter().enumerate() {
+            let a = efac[b] * efac[b];
+            tval[b] = equad2[b] / a;
+            if !(a.is_finite() && a > 0.0 && tval[b].is_finite()) {
+                return Ok(None);
+            }
+            let (h, dh) = w.gram_h[2 * b * len..(2 * b + 2) * len].split_at_mut(len);
+            if !g.eval(tval[b], h, dh) {
+                return Ok(None);
+            }
+        }
+        let mut log_det_n = 0.0;
+        for i in 0..n {
+            let b = self.backend[i];
+            let di = (efac[b] * self.sigma[i]).powi(2) + equad2[b];
+            if !(di.is_finite() && di > 0.0) {
+                return Err(non_finite("white-noise variance not positive"));
+            }
+            w.d[i] = di;
+            w.wr[i] = self.residual[i] / di;
+            log_det_n += di.ln();
+        }
+        let mut tnr = Array1::<f64>::zeros(cols);
+        general_mat_vec_mul(
+            1.0,
+            &self.t.t(),
+            &ArrayView1::from(&w.wr[..]),
+            0.0,
+            &mut tnr,
+        );
+        let mut s = Array2::<f64>::zeros((cols, cols));
+        for (b, g) in grams.iter().enumerate() {
+            let u = g.s_min + tval[b];
+            add_packed(
+                1.0 / (efac[b] * efac[b] * u),
+                &w.gram_h[2 * b * len..(2 * b + 1) * len],
+                &mut s,
+            );
+        }
+        mirror_upper(&mut s);
+        let (phi, binv, red_share, common_share) = self.prior_variances(theta)?;
+        for c in self.n_m..cols {
+            s[[c, c]] += binv[c];
+        }
+        let chol = ScaledCholesky::from_owned(s, || {
+            format!("S = B^-1 + T^T N^-1 T of pulsar {}", self.label)
+        })?;
+        let a = chol.solve_vec(tnr.as_slice().expect("contiguous"));
+        // r - T a, and r^T P r = |r - T a|^2_N^-1 + a^T B^-1 a (no cancellation).
+        w.e.copy_from_slice(&self.residual);
+        general_mat_vec_mul(
+            -1.0,
+            &self.t,
+            &a,
+            1.0,
+            &mut ArrayViewMut1::from(&mut w.e[..]),
+        );
+        let chi2 = w.e.iter().zip(&w.d).map(|(e, d)| e * e / d).sum::<f64>()
+            + (self.n_m..cols).map(|c| binv[c] * a[c] * a[c]).sum::<f64>();
+        let log_det_b: f64 = phi[self.n_m..].iter().map(|p| p.ln()).sum();
+        let lnl = -0.5 * (chi2 + log_det_n + log_det_b + chol.log_det())
+            - 0.5 * (n - self.n_m) as f64 * (2.0 * PI).ln();
+        if !lnl.is_finite() {
+            return Err(non_finite("ln L"));
+        }
+        let Some(grad) = grad else {
+            return Ok(Some(lnl));
+        };
+        if grad.len() != self.params.len() {
+            return Err(Error::setting(
+                "gradient",
+                "gradient buffer has the wrong length",
+            ));
+        }
+        grad.iter_mut().for_each(|g| *g = 0.0);
+        // Per backend: sum (P r)_i^2, sum s_i (P r)_i^2, sum N_i^-1, sum s_i N_i^-1.
+        let mut sums = vec![[0.0f64; 4]; nb];
+        for i in 0..n {
+            let (d, s2) = (w.d[i], self.sigma[i] * self.sigma[i]);
+            let pr = w.e[i] / d;
+            let acc = &mut sums[self.backend[i]];
+            acc[0] += pr * pr;
+            acc[1] += s2 * pr * pr;
+            acc[2] += 1.0 / d;
+            acc[3] += s2 / d;
+        }
+        let s_inv = chol.inverse();
+        for (b, g) in grams.iter().enumerate() {
+            let wi = self.white_index[b];
+            if wi.efac.is_none() && wi.equad.is_none() {
+                continue;
+            }
+            let h = &w.gram_h[2 * b * len..(2 * b + 1) * len];
+            let dh = &w.gram_h[(2 * b + 1) * len..(2 * b + 2) * len];
+            let (tr_h, tr_dh) = (trace_product(&s_inv, h), trace_product(&s_inv, dh));
+            let a2 = efac[b].powi(4);
+            let u = g.s_min + tval[b];
+            let tr_k0 = (tr_h - tr_dh) / (a2 * u * u);
+            let tr_k1 = (g.s_min * tr_h + tval[b] * tr_dh) / (a2 * u * u);
+            let [q0, q1, d0, d1] = sums[b];
+            // 1/2 sum_i dN_i [(P r)_i^2 - P_ii], dN_i = 2 EFAC s_i or 2 ln 10 EQUAD^2.
+            if let Some(i) = wi.efac {
+                grad[i] += efac[b] * (q1 - d1 + tr_k1);
+            }
+            if let Some(i) = wi.equad {
+                grad[i] += LN_10 * equad2[b] * (q0 - d0 + tr_k0);
+            }
+        }
+        let mut h = vec![0.0; cols];
+        for c in self.n_m..cols {
+            h[c] = 0.5 * (a[c] * a[c] * binv[c] - 1.0 + s_inv[[c, c]] * binv[c]);
+        }
+        self.power_law_gradient(&h, &red_share, &common_share, grad);
+        if let Some(k) = grad.iter().position(|g| !g.is_finite()) {
+            return Err(non_finite(&format!("gradient in {}", self.params[k].name)));
+        }
+        Ok(Some(lnl))
     }
 
     fn evaluate_in(&self, theta: &[f64], grad: Option<&mut [f64]>, w: &mut Work) -> Result<f64> {

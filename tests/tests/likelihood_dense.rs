@@ -607,3 +607,202 @@ fn fixed_white_likelihood_matches_the_full_one() {
         }
     }
 }
+
+/// The interpolated white-weighted Gram (engine/src/white_gram.rs) with distinct TOA
+/// uncertainties (0.2 dex scatter, so the TOAs are not grouped): ln L against the dense form
+/// at 1e-10 relative (as above), the gradient against five-point central differences
+/// (Abramowitz & Stegun 1964, 25.3.6) at 1e-6 relative (as above), and against the exact
+/// TOA-by-TOA evaluation. Cases without ECORR (the interpolation's domain), with EQUAD free
+/// (interpolated in t) and without it (one t: the exact Gram kept).
+#[test]
+fn interpolated_white_gram_matches_dense_and_finite_differences() {
+    let scatter = SCENARIO.replace(
+        "sigma_us = [0.3, 1.5]",
+        "sigma_us = [0.3, 1.5]\nsigma_scatter_dex = 0.2",
+    );
+    let dir = temp_dir("likelihood-dense-interpolated");
+    let rel = simulate_release(&scatter, &dir, 7);
+    let _ = std::fs::remove_dir_all(&dir);
+    let grid = FrequencyGrid::for_release(&rel, 1).unwrap();
+    let mut rng = rand_chacha_rng(11);
+    let backends = |equad: bool| {
+        vec![
+            BackendTerms {
+                efac: true,
+                log10_equad: equad,
+                log10_ecorr: false,
+            };
+            2
+        ]
+    };
+    let comps = [
+        ("white only", backends(true), None, None, false),
+        (
+            "red and DM, design matrix",
+            backends(true),
+            Some(6),
+            Some(5),
+            true,
+        ),
+        ("EFAC only, red", backends(false), Some(4), None, false),
+    ];
+    let mut interpolated = 0;
+    for (name, b, red, dm, design) in comps {
+        let comp = Components {
+            backends: b,
+            red,
+            dm,
+            common: None,
+        };
+        for p in &rel.pulsars {
+            let p = if design {
+                with_design(p, &grid)
+            } else {
+                p.clone()
+            };
+            let mut lik = PulsarLikelihood::new(&p, &comp, &grid).unwrap();
+            assert!(
+                !lik.grouped(),
+                "{name}: scattered uncertainties are not grouped"
+            );
+            // The default prior ranges (priors.rs): EFAC [0.01, 10], log10 EQUAD [-9, -5]; the
+            // power-law ranges do not enter.
+            let bounds: Vec<[f64; 2]> = lik
+                .parameters()
+                .iter()
+                .map(|h| match h.kind {
+                    Hyper::Efac(_) => [0.01, 10.0],
+                    Hyper::Log10Equad(_) => [-9.0, -5.0],
+                    _ => [-20.0, 7.0],
+                })
+                .collect();
+            let status = lik.interpolate_white(&bounds, &Default::default());
+            assert!(
+                matches!(status, ptacorr::likelihood::WhiteGramStatus::Used(_)),
+                "{name} {}: {status:?}",
+                p.label
+            );
+            assert!(lik.white_interpolated());
+            interpolated += 1;
+            let exact = PulsarLikelihood::new(&p, &comp, &grid).unwrap();
+            for _ in 0..2 {
+                let theta = random_point(&lik, &mut rng);
+                let got = lik.log_likelihood(&theta).unwrap();
+                let want = dense_log_likelihood(&p, &grid, &comp, &point(&lik, &theta, 2, None));
+                assert!(
+                    (got - want).abs() <= 1e-10 * want.abs(),
+                    "{name} {}: interpolated ln L {got} vs dense {want}",
+                    p.label
+                );
+                let mut grad = vec![0.0; lik.dim()];
+                let mut grad_exact = vec![0.0; lik.dim()];
+                lik.log_likelihood_and_gradient(&theta, &mut grad).unwrap();
+                exact
+                    .log_likelihood_and_gradient(&theta, &mut grad_exact)
+                    .unwrap();
+                let scale = grad.iter().fold(0.0f64, |m, g| m.max(g.abs()));
+                for k in 0..lik.dim() {
+                    let h = 1e-3;
+                    let at = |dx: f64| {
+                        let mut x = theta.clone();
+                        x[k] += dx;
+                        lik.log_likelihood(&x).unwrap()
+                    };
+                    let fd = (at(-2.0 * h) - 8.0 * at(-h) + 8.0 * at(h) - at(2.0 * h)) / (12.0 * h);
+                    let tol = 1e-6 * grad[k].abs().max(1e-3 * scale);
+                    let name_k = &lik.parameters()[k].name;
+                    assert!(
+                        (grad[k] - fd).abs() <= tol,
+                        "{name} {} d/d {name_k}: analytic {} vs finite difference {fd}",
+                        p.label,
+                        grad[k]
+                    );
+                    assert!(
+                        (grad[k] - grad_exact[k]).abs() <= tol,
+                        "{name} {} d/d {name_k}: interpolated {} vs TOA by TOA {}",
+                        p.label,
+                        grad[k],
+                        grad_exact[k]
+                    );
+                }
+            }
+            // Outside the interpolated range (EFAC below its prior): the exact evaluation.
+            let mut theta = random_point(&lik, &mut rng);
+            for (k, h) in lik.parameters().iter().enumerate() {
+                if matches!(h.kind, Hyper::Efac(_)) {
+                    theta[k] = 0.005;
+                }
+            }
+            if comp.backends[0].log10_equad {
+                let (a, b) = (
+                    lik.log_likelihood(&theta).unwrap(),
+                    exact.log_likelihood(&theta).unwrap(),
+                );
+                // The same arithmetic; 1e-13 relative since BLAS may round differently for
+                // buffers at other alignments (two likelihood objects).
+                assert!(
+                    (a - b).abs() <= 1e-13 * b.abs(),
+                    "{name}: outside the range the evaluation is exact: {a} vs {b}"
+                );
+            }
+        }
+    }
+    assert_eq!(interpolated, 3 * rel.pulsars.len());
+}
+
+/// An interpolant that misses its check at setup (too few Chebyshev nodes allowed) is not
+/// used: the status says why, and the evaluation is the exact one (to 1e-13 relative: the same
+/// arithmetic, rounded differently only where BLAS sees buffers at other alignments).
+#[test]
+fn interpolated_white_gram_falls_back_when_its_check_fails() {
+    let scatter = SCENARIO.replace(
+        "sigma_us = [0.3, 1.5]",
+        "sigma_us = [0.3, 1.5]\nsigma_scatter_dex = 0.3",
+    );
+    let dir = temp_dir("likelihood-dense-fallback");
+    let rel = simulate_release(&scatter, &dir, 8);
+    let _ = std::fs::remove_dir_all(&dir);
+    let grid = FrequencyGrid::for_release(&rel, 1).unwrap();
+    let comp = Components {
+        backends: vec![
+            BackendTerms {
+                efac: true,
+                log10_equad: true,
+                log10_ecorr: false,
+            };
+            2
+        ],
+        red: Some(5),
+        ..Default::default()
+    };
+    let p = &rel.pulsars[0];
+    let mut lik = PulsarLikelihood::new(p, &comp, &grid).unwrap();
+    let bounds: Vec<[f64; 2]> = lik
+        .parameters()
+        .iter()
+        .map(|h| match h.kind {
+            Hyper::Efac(_) => [0.01, 10.0],
+            Hyper::Log10Equad(_) => [-9.0, -5.0],
+            _ => [-20.0, 7.0],
+        })
+        .collect();
+    let settings = ptacorr::white_gram::GramSettings {
+        max_nodes: 3,
+        ..Default::default()
+    };
+    match lik.interpolate_white(&bounds, &settings) {
+        ptacorr::likelihood::WhiteGramStatus::Failed(note) => {
+            assert!(note.contains("missed its check"), "{note}");
+            assert!(note.contains("TOA by TOA"), "{note}");
+        }
+        other => panic!("expected a failed check, got {other:?}"),
+    }
+    assert!(!lik.white_interpolated());
+    let exact = PulsarLikelihood::new(p, &comp, &grid).unwrap();
+    let theta = random_point(&lik, &mut rand_chacha_rng(12));
+    let (a, b) = (
+        lik.log_likelihood(&theta).unwrap(),
+        exact.log_likelihood(&theta).unwrap(),
+    );
+    assert!((a - b).abs() <= 1e-13 * b.abs(), "{a} vs {b}");
+}

@@ -11,7 +11,7 @@ pub mod sample;
 pub mod truth;
 
 use crate::error::{Error, Result};
-use crate::likelihood::{CommonTerm, PulsarLikelihood};
+use crate::likelihood::{CommonTerm, PulsarLikelihood, WhiteGramStatus};
 use crate::noise::{NoiseModel, PulsarNoise, RedProcess};
 use crate::output::{check_manifest, OutputSet};
 use crate::priors::{PriorFile, PulsarPrior};
@@ -19,6 +19,7 @@ use crate::reduce::FrequencyGrid;
 use crate::release::{Pulsar, Release};
 use crate::sampler::SamplerSettings;
 use crate::shard::Shard;
+use crate::white_gram::GramSettings;
 use map::{maximum_a_posteriori, MapResult, MapSettings};
 use posterior::Posterior;
 use rayon::prelude::*;
@@ -111,6 +112,9 @@ pub struct PulsarFit {
     pub noise: PulsarNoise,
     /// Posterior draws (absent without sampling).
     pub samples: Option<PulsarSamples>,
+    /// Notes on how the likelihood was evaluated (the interpolated white-noise Gram missed its
+    /// check, so the exact evaluation was used).
+    pub notes: Vec<String>,
 }
 
 /// One row of `diagnostics.csv`.
@@ -215,7 +219,7 @@ impl PulsarFit {
 
     /// Warnings about this pulsar's fit (MAP not converged, chains not converged, divergences).
     pub fn warnings(&self) -> Vec<String> {
-        let mut w = Vec::new();
+        let mut w = self.notes.clone();
         if !self.map.converged {
             w.push(format!(
                 "pulsar {}: the MAP search did not converge ({} of {} starts agree)",
@@ -285,7 +289,16 @@ pub fn fit_pulsar(
     index: u64,
     chain_done: &(dyn Fn(usize) + Sync),
 ) -> Result<PulsarFit> {
-    let lik = PulsarLikelihood::new(p, &prior.components, grid)?;
+    let mut lik = PulsarLikelihood::new(p, &prior.components, grid)?;
+    // Distinct TOA uncertainties: T^T N^-1 T from the checked interpolant in EQUAD^2 / EFAC^2
+    // over the prior range (white_gram.rs); a failed check leaves the exact evaluation, noted.
+    let mut notes = Vec::new();
+    if let WhiteGramStatus::Failed(note) =
+        lik.interpolate_white(&prior.bounds, &GramSettings::default())
+    {
+        notes.push(note);
+    }
+    let lik = lik;
     let post = Posterior::new(&lik, prior)?;
     let map = maximum_a_posteriori(&post, &settings.map, settings.seed, index)?;
     let theta_map = post.theta(&post.unconstrained(&map.values));
@@ -336,6 +349,7 @@ pub fn fit_pulsar(
         noise,
         map,
         samples,
+        notes,
     })
 }
 
