@@ -29,7 +29,9 @@ use crate::noise::{PulsarNoise, RedProcess, WhiteNoise};
 use crate::reduce::{basis_columns, ecorr_beta, FrequencyGrid};
 use crate::release::Pulsar;
 use crate::spectrum::{power_law_phi, PowerLaw};
-use crate::white_gram::{add_packed, trace_product, BackendGram, GramReport, GramSettings};
+use crate::white_gram::{
+    add_packed, packed_entry, quadratic_form, trace_product, BackendGram, GramReport, GramSettings,
+};
 use ndarray::linalg::general_mat_vec_mul;
 use ndarray::{s, Array1, Array2, ArrayView1, ArrayViewMut1, Axis};
 use std::cell::RefCell;
@@ -553,6 +555,17 @@ impl PulsarLikelihood {
         if self.groups.is_some() || !self.epochs.is_empty() || bounds.len() != self.params.len() {
             return WhiteGramStatus::NotApplicable;
         }
+        // The interpolated family is the Gram of X = [T | r | 1 | sigma]: its blocks are
+        // T^T W T, T^T W r, r^T W r, sum w_i and sum w_i s_i (W = diag(w_i); [`BackendGram`]),
+        // every product with N^-1 an evaluation needs.
+        let (n, cols) = self.t.dim();
+        let mut x = Array2::<f64>::zeros((n, cols + 3));
+        x.slice_mut(s![.., ..cols]).assign(&self.t);
+        for i in 0..n {
+            x[[i, cols]] = self.residual[i];
+            x[[i, cols + 1]] = 1.0;
+            x[[i, cols + 2]] = self.sigma[i];
+        }
         let mut grams = Vec::with_capacity(self.backends.len());
         let mut reports = Vec::with_capacity(self.backends.len());
         for (b, wi) in self.white_index.iter().enumerate() {
@@ -574,7 +587,7 @@ impl PulsarLikelihood {
             if rows.is_empty() {
                 return WhiteGramStatus::NotApplicable;
             }
-            match BackendGram::build(&self.t, &self.sigma, rows, t_range, settings) {
+            match BackendGram::build(&x, &self.sigma, rows, t_range, settings) {
                 Ok((g, r)) => {
                     grams.push(g);
                     reports.push(r);
@@ -667,14 +680,15 @@ impl PulsarLikelihood {
             return g.count.len() as f64 * (5.0 * cf * cf + 4.0 * cf) + cf.powi(3);
         }
         if let Some(grams) = &self.white_gram {
-            // Per backend: the series and its derivative (4 flops per coefficient entry), S's
-            // share (2 per entry), two trace products (4 per entry); two products with T
-            // (4 n c); the dense steps on S (c^3 / 3 factor, 2 c^3 / 3 for S^-1).
+            // Per backend: the series and its derivative (4 flops per coefficient entry of the
+            // (c + 3)-square Gram), S's share, two trace products and two quadratic forms
+            // (2 each per entry); ln det N (2 per TOA); the dense steps on S (c^3 / 3 factor,
+            // 2 c^3 / 3 for S^-1).
             let per: f64 = grams
                 .iter()
-                .map(|g| (4 * g.nodes_per_evaluation() + 6) as f64 * g.packed_len() as f64)
+                .map(|g| (4 * g.nodes_per_evaluation() + 10) as f64 * g.packed_len() as f64)
                 .sum();
-            return per + 4.0 * nf * cf + cf.powi(3);
+            return per + 2.0 * nf + cf.powi(3);
         }
         let ne = self.epochs.len();
         let ecorr = if ne > 0 { 5.0 * nf * cf } else { 0.0 };
@@ -1120,17 +1134,19 @@ impl PulsarLikelihood {
         Ok(lnl)
     }
 
-    /// ln L (and its gradient) with T^T N^-1 T from the interpolated per-backend Grams
-    /// ([`crate::white_gram`]): with N_i = a_b (s_i + t_b), a_b = EFAC^2 and
-    /// t_b = EQUAD^2 / EFAC^2, T^T N^-1 T = sum_b H_b(tau_b) / (a_b u_b), u_b = s_min + t_b.
-    /// Everything else is exact and O(n c): T^T N^-1 r, r - T a, r^T P r, ln det N. The
-    /// white-noise gradient needs, per backend, sum_i (P r)_i^2 and sum_i P_ii, each also
-    /// weighted by s_i; with P_ii = N_i^-1 - (N^-1 T S^-1 T^T N^-1)_ii (the Woodbury form of
-    /// P's diagonal, Press et al. 2007, sec. 2.7.3), the sums of the second term are
-    /// tr(S^-1 K0) and tr(S^-1 K1) with K0 = sum_i T_i T_i^T / N_i^2 = (H - H') / (a^2 u^2) and
-    /// K1 = sum_i s_i T_i T_i^T / N_i^2 = (s_min H + t H') / (a^2 u^2) (H' = dH/dtau; from
-    /// G(t) = H / u, dG/dt = (H' - H) / u^2). Ok(None) when a backend's t lies outside the
-    /// interpolated range.
+    /// ln L (and its gradient) from the interpolated per-backend Grams ([`crate::white_gram`])
+    /// of X = [T | r | 1 | sigma]: with N_i = a_b (s_i + t_b), a_b = EFAC^2,
+    /// t_b = EQUAD^2 / EFAC^2 and u_b = s_min + t_b, every sum over TOAs of an evaluation is a
+    /// block of sum_b H_b(tau_b) / (a_b u_b) (T^T N^-1 T, T^T N^-1 r, r^T N^-1 r, sum N_i^-1,
+    /// sum s_i N_i^-1) or of K0 = sum_i X_i X_i^T / N_i^2 = (H - H') / (a^2 u^2) and
+    /// K1 = sum_i s_i X_i X_i^T / N_i^2 = (s_min H + t H') / (a^2 u^2) (H' = dH/dtau; from
+    /// G(t) = H / u, dG/dt = (H' - H) / u^2), so an evaluation never touches T; ln det N
+    /// alone is summed over the TOAs. As in the grouped form, r^T P r = r^T N^-1 r -
+    /// (T^T N^-1 r)^T S^-1 (T^T N^-1 r) (Woodbury). The white-noise gradient needs, per backend,
+    /// sum_i (P r)_i^2 = z^T K0 z with z = (-a, 1, 0, 0) (P r = N^-1 (r - T a)), the same with
+    /// K1, and sum_i P_ii = sum_i N_i^-1 - tr(S^-1 K0_TT) (the Woodbury form of P's diagonal,
+    /// Press et al. 2007, sec. 2.7.3), again with K1. Ok(None) when a backend's t lies outside
+    /// the interpolated range.
     fn evaluate_interpolated(
         &self,
         theta: &[f64],
@@ -1142,6 +1158,7 @@ impl PulsarLikelihood {
             what: format!("the likelihood of pulsar {} ({what})", self.label),
         };
         let (n, cols) = self.t.dim();
+        let dim = cols + 3;
         let nb = self.backends.len();
         let mut efac = vec![1.0; nb];
         let mut equad2 = vec![0.0; nb];
@@ -1154,7 +1171,6 @@ impl PulsarLikelihood {
             }
         }
         let len = grams.first().map_or(0, |g| g.packed_len());
-        w.size(n, cols, 0);
         w.gram_h.resize(2 * nb * len, 0.0);
         let mut tval = vec![0.0; nb];
         for (b, g) in grams.iter().enumerate() {
@@ -1168,33 +1184,39 @@ impl PulsarLikelihood {
                 return Ok(None);
             }
         }
+        let gram_h = &w.gram_h;
+        let h_of = |b: usize| &gram_h[2 * b * len..(2 * b + 1) * len];
+        let dh_of = |b: usize| &gram_h[(2 * b + 1) * len..(2 * b + 2) * len];
+        // ln det N = sum_b [n_b ln a_b + sum_i ln(s_i + t_b)]; the logarithm of products of
+        // four ratios (s_i + t) / u, each in [1, s_max / s_min], so one log per four TOAs.
         let mut log_det_n = 0.0;
-        for i in 0..n {
-            let b = self.backend[i];
-            let di = (efac[b] * self.sigma[i]).powi(2) + equad2[b];
-            if !(di.is_finite() && di > 0.0) {
-                return Err(non_finite("white-noise variance not positive"));
-            }
-            w.d[i] = di;
-            w.wr[i] = self.residual[i] / di;
-            log_det_n += di.ln();
-        }
-        let mut tnr = Array1::<f64>::zeros(cols);
-        general_mat_vec_mul(
-            1.0,
-            &self.t.t(),
-            &ArrayView1::from(&w.wr[..]),
-            0.0,
-            &mut tnr,
-        );
-        let mut s = Array2::<f64>::zeros((cols, cols));
         for (b, g) in grams.iter().enumerate() {
             let u = g.s_min + tval[b];
-            add_packed(
-                1.0 / (efac[b] * efac[b] * u),
-                &w.gram_h[2 * b * len..(2 * b + 1) * len],
-                &mut s,
-            );
+            let inv_u = 1.0 / u;
+            let mut sum = 0.0;
+            for chunk in g.s.chunks(4) {
+                sum += chunk
+                    .iter()
+                    .map(|si| (si + tval[b]) * inv_u)
+                    .product::<f64>()
+                    .ln();
+            }
+            log_det_n += g.s.len() as f64 * (efac[b] * efac[b] * u).ln() + sum;
+        }
+        if !log_det_n.is_finite() {
+            return Err(non_finite("white-noise variance not positive"));
+        }
+        let mut s = Array2::<f64>::zeros((cols, cols));
+        let mut tnr = Array1::<f64>::zeros(cols);
+        let mut rnr = 0.0;
+        for (b, g) in grams.iter().enumerate() {
+            let f = 1.0 / (efac[b] * efac[b] * (g.s_min + tval[b]));
+            let h = h_of(b);
+            add_packed(f, h, dim, &mut s);
+            for (j, v) in tnr.iter_mut().enumerate() {
+                *v += f * packed_entry(h, dim, j, cols);
+            }
+            rnr += f * packed_entry(h, dim, cols, cols);
         }
         mirror_upper(&mut s);
         let (phi, binv, red_share, common_share) = self.prior_variances(theta)?;
@@ -1205,17 +1227,7 @@ impl PulsarLikelihood {
             format!("S = B^-1 + T^T N^-1 T of pulsar {}", self.label)
         })?;
         let a = chol.solve_vec(tnr.as_slice().expect("contiguous"));
-        // r - T a, and r^T P r = |r - T a|^2_N^-1 + a^T B^-1 a (no cancellation).
-        w.e.copy_from_slice(&self.residual);
-        general_mat_vec_mul(
-            -1.0,
-            &self.t,
-            &a,
-            1.0,
-            &mut ArrayViewMut1::from(&mut w.e[..]),
-        );
-        let chi2 = w.e.iter().zip(&w.d).map(|(e, d)| e * e / d).sum::<f64>()
-            + (self.n_m..cols).map(|c| binv[c] * a[c] * a[c]).sum::<f64>();
+        let chi2 = rnr - a.dot(&tnr);
         let log_det_b: f64 = phi[self.n_m..].iter().map(|p| p.ln()).sum();
         let lnl = -0.5 * (chi2 + log_det_n + log_det_b + chol.log_det())
             - 0.5 * (n - self.n_m) as f64 * (2.0 * PI).ln();
@@ -1232,31 +1244,32 @@ impl PulsarLikelihood {
             ));
         }
         grad.iter_mut().for_each(|g| *g = 0.0);
-        // Per backend: sum (P r)_i^2, sum s_i (P r)_i^2, sum N_i^-1, sum s_i N_i^-1.
-        let mut sums = vec![[0.0f64; 4]; nb];
-        for i in 0..n {
-            let (d, s2) = (w.d[i], self.sigma[i] * self.sigma[i]);
-            let pr = w.e[i] / d;
-            let acc = &mut sums[self.backend[i]];
-            acc[0] += pr * pr;
-            acc[1] += s2 * pr * pr;
-            acc[2] += 1.0 / d;
-            acc[3] += s2 / d;
-        }
         let s_inv = chol.inverse();
+        let mut z = vec![0.0; dim];
+        z.iter_mut().zip(a.iter()).for_each(|(z, a)| *z = -a);
+        z[cols] = 1.0;
         for (b, g) in grams.iter().enumerate() {
             let wi = self.white_index[b];
             if wi.efac.is_none() && wi.equad.is_none() {
                 continue;
             }
-            let h = &w.gram_h[2 * b * len..(2 * b + 1) * len];
-            let dh = &w.gram_h[(2 * b + 1) * len..(2 * b + 2) * len];
-            let (tr_h, tr_dh) = (trace_product(&s_inv, h), trace_product(&s_inv, dh));
-            let a2 = efac[b].powi(4);
-            let u = g.s_min + tval[b];
-            let tr_k0 = (tr_h - tr_dh) / (a2 * u * u);
-            let tr_k1 = (g.s_min * tr_h + tval[b] * tr_dh) / (a2 * u * u);
-            let [q0, q1, d0, d1] = sums[b];
+            let (h, dh) = (h_of(b), dh_of(b));
+            let (t, u, a2) = (tval[b], g.s_min + tval[b], efac[b] * efac[b]);
+            let f = 1.0 / (a2 * u);
+            let f2 = f * f;
+            // sum N_i^-1, sum s_i N_i^-1.
+            let d0 = f * packed_entry(h, dim, cols + 1, cols + 1);
+            let d1 = f * packed_entry(h, dim, cols + 2, cols + 2);
+            // sum (P r)_i^2 and sum s_i (P r)_i^2.
+            let (qh, qdh) = (quadratic_form(h, &z), quadratic_form(dh, &z));
+            let q0 = f2 * (qh - qdh);
+            let q1 = f2 * (g.s_min * qh + t * qdh);
+            let (tr_h, tr_dh) = (
+                trace_product(&s_inv, h, dim),
+                trace_product(&s_inv, dh, dim),
+            );
+            let tr_k0 = f2 * (tr_h - tr_dh);
+            let tr_k1 = f2 * (g.s_min * tr_h + t * tr_dh);
             // 1/2 sum_i dN_i [(P r)_i^2 - P_ii], dN_i = 2 EFAC s_i or 2 ln 10 EQUAD^2.
             if let Some(i) = wi.efac {
                 grad[i] += efac[b] * (q1 - d1 + tr_k1);

@@ -62,9 +62,9 @@ pub const CHECK_TOLERANCE: f64 = 1e-12;
 /// the n ~ 30 used here, times 2 / l for the piece's width.
 pub const CHECK_TOLERANCE_DERIVATIVE: f64 = 1e-9;
 /// Widest piece in tau (natural log units). Narrower pieces need fewer nodes each (the
-/// per-evaluation cost) and more pieces (the setup cost); at width 3 the bound asks for
-/// about 25 nodes at [`TOLERANCE`].
-pub const MAX_PIECE_WIDTH: f64 = 3.0;
+/// per-evaluation cost) and more pieces (the setup cost); at width 1.5 the bound asks for
+/// 17 nodes at [`TOLERANCE`] (24 at width 3).
+pub const MAX_PIECE_WIDTH: f64 = 1.5;
 /// Most nodes per piece; when the bound asks for more, this many are used and the check decides.
 pub const MAX_NODES: usize = 64;
 
@@ -106,35 +106,64 @@ fn pack_upper(m: &Array2<f64>, out: &mut [f64]) {
     }
 }
 
-/// Add alpha times a packed upper triangle into the upper triangle of `m`.
-pub fn add_packed(alpha: f64, packed: &[f64], m: &mut Array2<f64>) {
+/// Position of row j's diagonal entry in the packed upper triangle of a dim x dim matrix.
+fn row_start(j: usize, dim: usize) -> usize {
+    j * dim - j * j.saturating_sub(1) / 2
+}
+
+/// Entry (j, k) of a packed upper triangle of a dim x dim symmetric matrix.
+pub fn packed_entry(packed: &[f64], dim: usize, j: usize, k: usize) -> f64 {
+    let (j, k) = if j <= k { (j, k) } else { (k, j) };
+    packed[row_start(j, dim) + k - j]
+}
+
+/// Add alpha times the leading c x c block (c = `m`'s size) of a packed dim x dim upper
+/// triangle into the upper triangle of `m`.
+pub fn add_packed(alpha: f64, packed: &[f64], dim: usize, m: &mut Array2<f64>) {
     let c = m.nrows();
-    let mut p = 0;
     for j in 0..c {
+        let src = &packed[row_start(j, dim)..row_start(j, dim) + c - j];
         let mut row = m.row_mut(j);
         let row = row.as_slice_mut().expect("standard layout");
-        for v in &mut row[j..] {
-            *v += alpha * packed[p];
-            p += 1;
+        for (v, x) in row[j..].iter_mut().zip(src) {
+            *v += alpha * x;
         }
     }
 }
 
-/// tr(A X) for a symmetric A (full, both triangles) and a symmetric X given by its packed upper
-/// triangle: sum_j A_jj X_jj + 2 sum_(j<k) A_jk X_jk.
-pub fn trace_product(a: &Array2<f64>, packed: &[f64]) -> f64 {
+/// tr(A X_c) for a symmetric c x c A (both triangles) and the leading c x c block X_c of a
+/// symmetric X given by its packed dim x dim upper triangle:
+/// sum_j A_jj X_jj + 2 sum_(j<k) A_jk X_jk.
+pub fn trace_product(a: &Array2<f64>, packed: &[f64], dim: usize) -> f64 {
     let c = a.nrows();
-    let mut p = 0;
     let (mut diag, mut off) = (0.0, 0.0);
     for j in 0..c {
+        let src = &packed[row_start(j, dim)..row_start(j, dim) + c - j];
         let row = a.row(j);
         let row = row.as_slice().expect("standard layout");
-        diag += row[j] * packed[p];
-        p += 1;
-        for v in &row[j + 1..] {
-            off += v * packed[p];
-            p += 1;
-        }
+        diag += row[j] * src[0];
+        off += row[j + 1..]
+            .iter()
+            .zip(&src[1..])
+            .map(|(v, x)| v * x)
+            .sum::<f64>();
+    }
+    diag + 2.0 * off
+}
+
+/// z^T X z for a symmetric X given by its packed dim x dim upper triangle (z of length dim).
+pub fn quadratic_form(packed: &[f64], z: &[f64]) -> f64 {
+    let dim = z.len();
+    let (mut diag, mut off) = (0.0, 0.0);
+    for j in 0..dim {
+        let src = &packed[row_start(j, dim)..row_start(j, dim) + dim - j];
+        diag += z[j] * z[j] * src[0];
+        off += z[j]
+            * z[j + 1..]
+                .iter()
+                .zip(&src[1..])
+                .map(|(a, b)| a * b)
+                .sum::<f64>();
     }
     diag + 2.0 * off
 }
@@ -152,8 +181,9 @@ struct Piece {
 /// The interpolated Gram of one backend.
 #[derive(Clone, Debug)]
 pub struct BackendGram {
-    /// The backend's TOAs (indices into the pulsar's).
+    /// The backend's TOAs (indices into the pulsar's) and their s_i = sigma_i^2.
     pub rows: Vec<usize>,
+    pub s: Vec<f64>,
     pub s_min: f64,
     /// The allowed range of t.
     pub t_range: [f64; 2],
@@ -249,6 +279,7 @@ impl BackendGram {
         };
         let base = BackendGram {
             rows,
+            s: s.clone(),
             s_min,
             t_range,
             tau_range,
