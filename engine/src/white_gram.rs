@@ -34,7 +34,10 @@
 //! T_k'(x) = k U_(k-1)(x) (Chebyshev polynomials of the second kind; Mason & Handscomb 2003,
 //! Chebyshev Polynomials, sec. 2.4.5), which gives dG_b/dt for the gradient without a second
 //! family. One evaluation costs 2 (n + 1) c (c + 1) / 2 multiply-adds per backend instead of
-//! n_b c (c + 1).
+//! n_b c (c + 1). Nothing here depends on what the columns are: the likelihood passes the rows
+//! of X = [T | r | 1 | sigma], whose weighted Gram holds every sum over TOAs an evaluation
+//! needs (T^T N^-1 T, T^T N^-1 r, r^T N^-1 r, sum N_i^-1, sum s_i N_i^-1;
+//! [`crate::likelihood`]).
 //!
 //! Nothing is used unchecked: at setup the interpolant and its derivative are compared with
 //! the exact sums at the ends of the range and between the nodes nearest each piece's ends and
