@@ -88,8 +88,8 @@ pub struct CommonArgs {
     /// Also sample the free spectrum (independent power at each frequency) of these models with
     /// NUTS, e.g. `curn,hd` (none by default; a correlated model costs one (2KN)^3 / 3
     /// factorisation per gradient).
-    #[arg(long, value_delimiter = ',')]
-    free_spectrum: Vec<String>,
+    #[arg(long, value_enum, value_delimiter = ',')]
+    free_spectrum: Vec<ModelArg>,
     /// Prior range of log10 rho_j (s^2) of the free spectrum: LO,HI.
     #[arg(long, default_value_t = range_text(FreeSpectrumSettings::default().log10_power_min, FreeSpectrumSettings::default().log10_power_max), allow_hyphen_values = true)]
     log10_power_range: String,
@@ -123,6 +123,28 @@ pub struct CommonArgs {
     /// NUTS chains of the joint fit (at least 2, for R-hat).
     #[arg(long, default_value_t = SamplerSettings::default().chains)]
     joint_red_chains: usize,
+}
+
+/// A correlation model of the common process.
+#[derive(Clone, Copy, clap::ValueEnum)]
+pub enum ModelArg {
+    /// Common uncorrelated red noise.
+    Curn,
+    /// Hellings-Downs correlations.
+    Hd,
+    Monopole,
+    Dipole,
+}
+
+impl From<ModelArg> for CommonModel {
+    fn from(m: ModelArg) -> Self {
+        match m {
+            ModelArg::Curn => CommonModel::Curn,
+            ModelArg::Hd => CommonModel::Hd,
+            ModelArg::Monopole => CommonModel::Monopole,
+            ModelArg::Dipole => CommonModel::Dipole,
+        }
+    }
 }
 
 #[derive(Clone, Copy, clap::ValueEnum)]
@@ -178,12 +200,8 @@ impl CommonArgs {
             return Ok(None);
         }
         let mut models = Vec::new();
-        for name in &self.free_spectrum {
-            let m = CommonModel::from_name(name.trim()).ok_or_else(|| {
-                anyhow::anyhow!(
-                    "invalid setting free-spectrum: unknown model {name:?} (curn, hd, monopole, dipole)"
-                )
-            })?;
+        for &arg in &self.free_spectrum {
+            let m = CommonModel::from(arg);
             if !models.contains(&m) {
                 models.push(m);
             }

@@ -5,13 +5,30 @@ use ptacorr_present::figure::{plot_folder, ColumnWidth, FigureFormat, FigureOpti
 use ptacorr_present::report::build_report_with;
 use std::path::{Path, PathBuf};
 
+/// A figure file format.
+#[derive(Clone, Copy, clap::ValueEnum)]
+pub enum FormatArg {
+    Svg,
+    Png,
+    Pdf,
+}
+
+impl From<FormatArg> for FigureFormat {
+    fn from(f: FormatArg) -> Self {
+        match f {
+            FormatArg::Svg => FigureFormat::Svg,
+            FormatArg::Png => FigureFormat::Png,
+            FormatArg::Pdf => FigureFormat::Pdf,
+        }
+    }
+}
+
 #[derive(clap::Args)]
 pub struct PlotArgs {
     /// An output folder of `correlate`, `null`, `inject` or `noise`.
     pub dir: PathBuf,
-    /// svg, png or pdf.
-    #[arg(long, default_value = "svg")]
-    pub format: String,
+    #[arg(long, value_enum, default_value_t = FormatArg::Svg)]
+    pub format: FormatArg,
     /// Where to write: a folder, or a file name ending in the format's extension (one figure).
     #[arg(long)]
     pub out: Option<PathBuf>,
@@ -62,7 +79,7 @@ impl StyleArgs {
 }
 
 pub fn plot(args: &PlotArgs) -> Result<()> {
-    let format: FigureFormat = args.format.parse()?;
+    let format = FigureFormat::from(args.format);
     let opts = args.style.options();
     let as_file = args
         .out

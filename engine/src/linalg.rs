@@ -473,14 +473,10 @@ impl ScaledCholesky {
         x
     }
 
-    /// The diagonal of S^-1, (S^-1)_jj = D_jj^-2 sum_k (L^-1)_kj^2, from the inverse of the
-    /// triangular factor (LAPACK dtrtri, dim^3 / 3 operations; Anderson et al. 1999), not from
-    /// S^-1 itself.
-    pub fn inverse_diagonal(&self) -> Vec<f64> {
+    /// L^-1 (row-major), by LAPACK dtrtri (dim^3 / 3 operations; Anderson et al. 1999). None
+    /// only on a zero pivot, which a successful Cholesky factor cannot have.
+    fn triangular_inverse(&self) -> Option<Array2<f64>> {
         let n = self.dim();
-        if n == 0 {
-            return Vec::new();
-        }
         let mut inv = self.l.clone();
         // Row-major L read column-major is L^T, an upper triangle; its inverse read row-major
         // again is L^-1.
@@ -489,10 +485,20 @@ impl ScaledCholesky {
         let mut info: std::ffi::c_int = 0;
         // SAFETY: `inv` is a contiguous n x n array; dtrtri overwrites its triangle in place.
         unsafe { dtrtri_(&uplo, &diag, &ni, inv.as_mut_ptr(), &ni, &mut info) };
-        if info != 0 {
-            // Only a zero pivot fails, which a successful Cholesky factor cannot have.
-            return vec![f64::NAN; n];
+        (info == 0).then_some(inv)
+    }
+
+    /// The diagonal of S^-1, (S^-1)_jj = D_jj^-2 sum_k (L^-1)_kj^2, from the inverse of the
+    /// triangular factor (LAPACK dtrtri, dim^3 / 3 operations; Anderson et al. 1999), not from
+    /// S^-1 itself.
+    pub fn inverse_diagonal(&self) -> Vec<f64> {
+        let n = self.dim();
+        if n == 0 {
+            return Vec::new();
         }
+        let Some(inv) = self.triangular_inverse() else {
+            return vec![f64::NAN; n];
+        };
         let mut out = vec![0.0; n];
         for (k, row) in inv.rows().into_iter().enumerate() {
             for (j, v) in row.iter().enumerate().take(k + 1) {
@@ -512,16 +518,9 @@ impl ScaledCholesky {
         if n == 0 {
             return Array2::zeros((0, 0));
         }
-        let mut inv = self.l.clone();
-        // As in `inverse_diagonal`: row-major L^-1 after dtrtri on the column-major L^T.
-        let (uplo, diag) = (b'U' as std::ffi::c_char, b'N' as std::ffi::c_char);
-        let ni = blas_int(n);
-        let mut info: std::ffi::c_int = 0;
-        // SAFETY: `inv` is a contiguous n x n array; dtrtri overwrites its triangle in place.
-        unsafe { dtrtri_(&uplo, &diag, &ni, inv.as_mut_ptr(), &ni, &mut info) };
-        if info != 0 {
+        let Some(inv) = self.triangular_inverse() else {
             return Array2::from_elem((n, n), f64::NAN);
-        }
+        };
         let mut out = Array2::zeros((n, n));
         syrk_tn(1.0, &inv, 0.0, &mut out);
         mirror_upper(&mut out);

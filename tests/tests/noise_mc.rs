@@ -17,7 +17,7 @@
 use ptacorr::analysis::{correlate, CommonAutoPower, CorrelateSettings};
 use ptacorr::noise::NoiseModel;
 use ptacorr::noise_fit::sample::SampleMode;
-use ptacorr::noise_fit::{fit_release, noise_model, NoiseSettings};
+use ptacorr::noise_fit::{fit_release, noise_model, NoiseRun, NoiseSettings};
 use ptacorr::orf::Pattern;
 use ptacorr::priors::PriorFile;
 use ptacorr::release::{read_release, Release};
@@ -85,15 +85,21 @@ fn rank_and_cover(draws: &mut [f64], truth: f64, l: usize) -> (usize, bool, bool
     )
 }
 
-#[test]
-#[ignore]
-fn posterior_coverage_and_simulation_based_calibration() {
-    let dir = temp_dir("noise-mc-calibration");
-    let rel = simulate_release(CALIBRATION, &dir, 17);
+/// Simulate `scenario` with `seed`, then sample every pulsar's full posterior under `priors`
+/// (300 warm-up and 250 kept draws per chain: enough for ranks among 1,000 draws); returns the
+/// run and the simulation's truth.
+fn fit_full_posterior(
+    scenario: &str,
+    priors: &str,
+    name: &str,
+    seed: u64,
+) -> (NoiseRun, toml::Value) {
+    let dir = temp_dir(name);
+    let rel = simulate_release(scenario, &dir, seed);
     let truth: toml::Value =
         toml::from_str(&std::fs::read_to_string(dir.join("truth.toml")).unwrap()).unwrap();
     let _ = std::fs::remove_dir_all(&dir);
-    let priors = PriorFile::parse(CALIBRATION_PRIORS, Path::new("priors.toml")).unwrap();
+    let priors = PriorFile::parse(priors, Path::new("priors.toml")).unwrap();
     let settings = NoiseSettings {
         mode: SampleMode::Full,
         sampler: SamplerSettings {
@@ -103,7 +109,17 @@ fn posterior_coverage_and_simulation_based_calibration() {
         },
         ..NoiseSettings::default()
     };
-    let run = fit_release(&rel, &priors, &settings, &|| {}).unwrap();
+    (
+        fit_release(&rel, &priors, &settings, &|| {}).unwrap(),
+        truth,
+    )
+}
+
+#[test]
+#[ignore]
+fn posterior_coverage_and_simulation_based_calibration() {
+    let (run, truth) =
+        fit_full_posterior(CALIBRATION, CALIBRATION_PRIORS, "noise-mc-calibration", 17);
     coverage_and_calibration(
         &run,
         &truth,
@@ -154,22 +170,7 @@ equad_log10_s = [-7.0, -6.0]
 #[test]
 #[ignore]
 fn ridge_coordinates_give_calibrated_efac_and_equad_posteriors() {
-    let dir = temp_dir("noise-mc-ridge");
-    let rel = simulate_release(RIDGE, &dir, 23);
-    let truth: toml::Value =
-        toml::from_str(&std::fs::read_to_string(dir.join("truth.toml")).unwrap()).unwrap();
-    let _ = std::fs::remove_dir_all(&dir);
-    let priors = PriorFile::parse(RIDGE_PRIORS, Path::new("priors.toml")).unwrap();
-    let settings = NoiseSettings {
-        mode: SampleMode::Full,
-        sampler: SamplerSettings {
-            warmup: 300,
-            draws: 250,
-            ..SamplerSettings::default()
-        },
-        ..NoiseSettings::default()
-    };
-    let run = fit_release(&rel, &priors, &settings, &|| {}).unwrap();
+    let (run, truth) = fit_full_posterior(RIDGE, RIDGE_PRIORS, "noise-mc-ridge", 23);
     coverage_and_calibration(
         &run,
         &truth,
@@ -185,7 +186,7 @@ fn ridge_coordinates_give_calibrated_efac_and_equad_posteriors() {
 /// uniformity over every pulsar of `run`, for the parameters `names`; `want(t, k)` is the true
 /// value of parameter k in the pulsar's `truth.toml` table t.
 fn coverage_and_calibration(
-    run: &ptacorr::noise_fit::NoiseRun,
+    run: &NoiseRun,
     truth: &toml::Value,
     names: &[&str],
     want: &dyn Fn(&toml::Value, usize) -> f64,
