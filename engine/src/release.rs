@@ -403,11 +403,16 @@ pub fn read_release_with(path: &Path, options: ReadOptions) -> Result<Release> {
             s.push(bytes);
         }
     };
-    for (c, chunk) in file.pulsar.chunks(window).enumerate() {
-        let tables: Vec<Tables> = chunk
+    let read_window = |chunk: &[toml::Spanned<PulsarEntry>]| -> Vec<Tables> {
+        chunk
             .par_iter()
             .map(|spanned| read_tables(&dir, spanned.get_ref(), &spare))
-            .collect();
+            .collect()
+    };
+    let mut check_window = |c: usize,
+                            chunk: &[toml::Spanned<PulsarEntry>],
+                            tables: Vec<Tables>|
+     -> Result<()> {
         for (j, (spanned, tables)) in chunk.iter().zip(tables).enumerate() {
             let i = c * window + j;
             let line = Some(line_of(&text, spanned.span().start));
@@ -461,6 +466,21 @@ pub fn read_release_with(path: &Path, options: ReadOptions) -> Result<Release> {
             }
             pulsars.push(p);
         }
+        Ok(())
+    };
+    // Window c is checked and hashed (in order, on one thread) while window c + 1 is read and
+    // parsed: the input hash no longer waits alone. The errors are the same and come in the
+    // same order (window c + 1's results are looked at only after window c passed).
+    let windows: Vec<&[toml::Spanned<PulsarEntry>]> = file.pulsar.chunks(window).collect();
+    let mut next = windows.first().map(|w| read_window(w));
+    for (c, chunk) in windows.iter().enumerate() {
+        let tables = next.take().unwrap_or_default();
+        let (checked, read) = rayon::join(
+            || check_window(c, chunk, tables),
+            || windows.get(c + 1).map(|w| read_window(w)),
+        );
+        checked?;
+        next = read;
     }
     // Pulsars in parallel, their warnings kept in the order of release.toml.
     let mut warnings: Vec<String> = file
