@@ -166,6 +166,7 @@ pub fn bin_covariance_with(
     // Everything per (i, j) is a few N x N matrices per bin (cache-resident), and nothing of
     // size (N 2K)^2 is written.
     let nn = n * n;
+    let partners: Vec<Partners> = members.iter().map(|m| Partners::of(m, n)).collect();
     let gather = |i: usize, j: usize| -> Vec<f64> {
         let mut w = vec![0.0; nn];
         for b in 0..n {
@@ -178,7 +179,7 @@ pub fn bin_covariance_with(
     };
     let share = |(i, j): (usize, usize)| -> Array2<f64> {
         let wij = gather(i, j);
-        let lij = left_rows(&members, &wij, n, false);
+        let lij = left_rows(&partners, &wij, n, false);
         if i == j {
             // L_B(ii)^T is the transpose of L_B(ii): the same values, no second pass of
             // row additions.
@@ -192,7 +193,7 @@ pub fn bin_covariance_with(
             }
             lij.dot(&lt.t()) * 0.5
         } else {
-            let x = lij.dot(&left_rows(&members, &gather(j, i), n, true).t());
+            let x = lij.dot(&left_rows(&partners, &gather(j, i), n, true).t());
             (&x + &x.t()) * 0.5
         }
     };
@@ -232,112 +233,144 @@ pub fn bin_covariance_with(
     })
 }
 
-/// `to` += `from` element by element (slices, so that the loop vectorises).
-#[inline(always)]
-fn add_row(to: &mut [f64], from: &[f64]) {
-    // A whole tile as a fixed-size array: one unrolled run of vector additions.
-    if let (Ok(t), Ok(f)) = (
-        <&mut [f64; TILE]>::try_from(&mut *to),
-        <&[f64; TILE]>::try_from(from),
-    ) {
-        for (d, v) in t.iter_mut().zip(f) {
-            *d += *v;
+/// The pairs of one bin by pulsar: for each row a, the rows b of the pairs (a, b) or (b, a)
+/// of the bin, in the bin's pair order (compressed rows: `list[start[a]..start[a + 1]]`).
+struct Partners {
+    start: Vec<usize>,
+    list: Vec<usize>,
+}
+
+impl Partners {
+    fn of(pairs: &[(usize, usize)], n: usize) -> Self {
+        let mut start = vec![0usize; n + 1];
+        for &(a, b) in pairs {
+            start[a + 1] += 1;
+            start[b + 1] += 1;
         }
-        return;
-    }
-    for (d, v) in to.iter_mut().zip(from) {
-        *d += *v;
+        for x in 0..n {
+            start[x + 1] += start[x];
+        }
+        let mut next = start.clone();
+        let mut list = vec![0usize; start[n]];
+        for &(a, b) in pairs {
+            list[next[a]] = b;
+            next[a] += 1;
+            list[next[b]] = a;
+            next[b] += 1;
+        }
+        Partners { start, list }
     }
 }
 
-/// L_B = H_B W for every bin B (`members`: the pairs (a, b) of each bin; `w`: an N x N matrix,
-/// row-major), one bin per row of an nb x N^2 matrix; `transpose` stores L_B^T instead. H_B
-/// is the symmetric 0/1 matrix of the bin's pairs, so row a of L_B is the sum of the rows b of
-/// W over the pairs (a, b) of the bin, added in the bin's pair order. The widest vector
-/// instructions the CPU has are used (chosen at run time); the additions are the same
+/// L_B = H_B W for every bin B (`partners`: the pairs of each bin by row; `w`: an N x N
+/// matrix, row-major), one bin per row of an nb x N^2 matrix; `transpose` stores L_B^T
+/// instead. H_B is the symmetric 0/1 matrix of the bin's pairs, so row a of L_B is the sum of
+/// the rows b of W over the pairs (a, b) of the bin, added in the bin's pair order. The widest
+/// vector instructions the CPU has are used (chosen at run time); the additions are the same
 /// element-wise IEEE additions in the same order whatever the width, so the bytes do not depend
 /// on the CPU.
-fn left_rows(members: &[Vec<(usize, usize)>], w: &[f64], n: usize, transpose: bool) -> Array2<f64> {
+fn left_rows(partners: &[Partners], w: &[f64], n: usize, transpose: bool) -> Array2<f64> {
     #[cfg(target_arch = "x86_64")]
     {
         if std::arch::is_x86_feature_detected!("avx512f") {
             // SAFETY: the CPU has AVX-512F (checked just above).
-            return unsafe { left_rows_avx512(members, w, n, transpose) };
+            return unsafe { left_rows_avx512(partners, w, n, transpose) };
         }
         if std::arch::is_x86_feature_detected!("avx2") {
             // SAFETY: the CPU has AVX2 (checked just above).
-            return unsafe { left_rows_avx2(members, w, n, transpose) };
+            return unsafe { left_rows_avx2(partners, w, n, transpose) };
         }
     }
-    left_rows_generic(members, w, n, transpose)
+    left_rows_generic(partners, w, n, transpose)
 }
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2")]
 unsafe fn left_rows_avx2(
-    members: &[Vec<(usize, usize)>],
+    partners: &[Partners],
     w: &[f64],
     n: usize,
     transpose: bool,
 ) -> Array2<f64> {
-    left_rows_generic(members, w, n, transpose)
+    left_rows_generic(partners, w, n, transpose)
 }
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
 unsafe fn left_rows_avx512(
-    members: &[Vec<(usize, usize)>],
+    partners: &[Partners],
     w: &[f64],
     n: usize,
     transpose: bool,
 ) -> Array2<f64> {
-    left_rows_generic(members, w, n, transpose)
+    left_rows_generic(partners, w, n, transpose)
 }
 
-/// Columns per tile of [`left_rows_generic`].
-const TILE: usize = 16;
+/// Columns per tile of [`left_rows_generic`]: its running sums stay in vector registers.
+const TILE: usize = 32;
 
 /// [`left_rows`] for the instruction set it is inlined into.
 #[inline(always)]
-fn left_rows_generic(
-    members: &[Vec<(usize, usize)>],
-    w: &[f64],
-    n: usize,
-    transpose: bool,
-) -> Array2<f64> {
+fn left_rows_generic(partners: &[Partners], w: &[f64], n: usize, transpose: bool) -> Array2<f64> {
     let nn = n * n;
-    let mut out = Array2::<f64>::zeros((members.len(), nn));
-    let mut tmp = vec![0.0; if transpose { nn } else { 0 }];
-    for (pairs, mut dst) in members.iter().zip(out.rows_mut()) {
+    let mut out = Array2::<f64>::zeros((partners.len(), nn));
+    for (pt, mut dst) in partners.iter().zip(out.rows_mut()) {
         let dst = dst.as_slice_mut().expect("standard layout");
-        // The sums go straight into the output row, or into `tmp` to be transposed.
-        let acc: &mut [f64] = if transpose {
-            tmp.fill(0.0);
-            &mut tmp
-        } else {
-            &mut *dst
-        };
-        // Column tiles of TILE: the tiles of `acc` and `w` (2 N TILE doubles, 25.6 kB at
-        // N = 100) stay in the first-level cache while every pair of the bin is added; whole
-        // rows (two N x N matrices, 160 kB) did not, and the additions were bound by the
-        // second-level cache. Each element still receives its additions in the bin's pair
-        // order, so the sums are the same bytes.
-        for c0 in (0..n).step_by(TILE) {
-            let c1 = (c0 + TILE).min(n);
-            for &(a, b) in pairs {
-                add_row(&mut acc[a * n + c0..a * n + c1], &w[b * n + c0..b * n + c1]);
-                add_row(&mut acc[b * n + c0..b * n + c1], &w[a * n + c0..a * n + c1]);
-            }
+        // Column tiles of TILE: the tile of W (N TILE doubles, 25.6 kB at N = 100) stays in
+        // the first-level cache, and each row's sums of a tile stay in registers while every
+        // partner row is added, then are stored once (before: a load and a store of the sum
+        // per addition). The last columns go in tiles of 4, then 1 (fixed widths, so that
+        // their sums stay in registers too). Each element still receives its additions from 0
+        // in the bin's pair order, so the sums are the same bytes; rows without a pair in the
+        // bin stay 0.
+        let mut c0 = 0;
+        while c0 + TILE <= n {
+            tile_rows::<TILE>(pt, w, n, c0, transpose, dst);
+            c0 += TILE;
         }
-        if transpose {
-            for x in 0..n {
-                for y in 0..n {
-                    dst[y * n + x] = tmp[x * n + y];
-                }
-            }
+        while c0 + 4 <= n {
+            tile_rows::<4>(pt, w, n, c0, transpose, dst);
+            c0 += 4;
+        }
+        while c0 < n {
+            tile_rows::<1>(pt, w, n, c0, transpose, dst);
+            c0 += 1;
         }
     }
     out
+}
+
+/// Columns `c0..c0 + W` of L_B (or of L_B^T with `transpose`) into `dst`: for each row x,
+/// the sum from 0 of the partner rows of W in the bin's pair order.
+#[inline(always)]
+fn tile_rows<const W: usize>(
+    pt: &Partners,
+    w: &[f64],
+    n: usize,
+    c0: usize,
+    transpose: bool,
+    dst: &mut [f64],
+) {
+    for x in 0..n {
+        let list = &pt.list[pt.start[x]..pt.start[x + 1]];
+        if list.is_empty() {
+            continue;
+        }
+        let mut acc = [0.0f64; W];
+        for &b in list {
+            let src: &[f64; W] = w[b * n + c0..b * n + c0 + W].try_into().expect("one tile");
+            for (d, v) in acc.iter_mut().zip(src) {
+                *d += *v;
+            }
+        }
+        if transpose {
+            for (k, v) in acc.iter().enumerate() {
+                dst[(c0 + k) * n + x] = *v;
+            }
+        } else {
+            dst[x * n + c0..x * n + c0 + W].copy_from_slice(&acc);
+        }
+    }
 }
 
 /// The fit of the Hellings-Downs curve to the bins with their full covariance.

@@ -4,7 +4,8 @@
 //! correlation analysis needs afterwards is X, Z and the sky direction.
 
 use crate::basis::{
-    chromatic_scale, ecorr_epochs, fourier_row_ladder, timing_model, ECORR_EPOCH_GAP_S,
+    chromatic_scale, ecorr_epochs, fourier_row_ladder, fourier_rows_ladder, timing_model,
+    ECORR_EPOCH_GAP_S,
 };
 use crate::constants::SECONDS_PER_DAY;
 use crate::error::{Error, Result};
@@ -165,10 +166,13 @@ impl PulsarModel {
 
         // White noise D_ii = (EFAC sigma_i)^2 + EQUAD^2 per backend.
         let whites: Vec<_> = p.backends.iter().map(|b| noise.white_for(b)).collect();
+        // (EFAC, EQUAD^2) per backend: one power of ten per backend, not per TOA.
+        let efac_equad2: Vec<(f64, f64)> =
+            whites.iter().map(|w| (w.efac, w.equad().powi(2))).collect();
         let sqrt_dinv: Vec<f64> = (0..n)
             .map(|i| {
-                let w = &whites[p.backend[i]];
-                let var = (w.efac * p.sigma[i]).powi(2) + w.equad().powi(2);
+                let (efac, equad2) = efac_equad2[p.backend[i]];
+                let var = (efac * p.sigma[i]).powi(2) + equad2;
                 1.0 / var.sqrt()
             })
             .collect();
@@ -184,7 +188,6 @@ impl PulsarModel {
         let n_m = basis.m.ncols();
         let (c_four, c_dm) = (n_m, n_m + 2 * k_f);
         let n_cols = c_dm + 2 * k_dm;
-        let wa = basis.whitened(&sqrt_dinv);
 
         // T's columns in U and the prior inverses of T (0 for the timing model's flat prior).
         let mut t_cols: Vec<usize> = (0..n_m).collect();
@@ -226,7 +229,11 @@ impl PulsarModel {
         } else {
             Vec::new()
         };
-        let v = ecorr_rows(&epochs, &sqrt_dinv, &wa);
+        // D^-1/2 U written row by row in one pass, with V summed in the same pass where the
+        // epochs allow it (else the separate pass of `ecorr_rows`, the same bytes).
+        let fold = EcorrFold::plan(&epochs, &sqrt_dinv);
+        let (wa, v) = basis.whitened(&sqrt_dinv, fold.as_ref());
+        let v = v.unwrap_or_else(|| ecorr_rows(&epochs, &sqrt_dinv, &wa));
 
         // U^T N^-1 U = U^T D^-1 U - V^T V: two symmetric rank-k updates.
         let gram = gram_n_inv(&wa, &v);
@@ -424,49 +431,73 @@ impl PulsarBasis {
     }
 
     /// D^-1/2 U: the distinct columns [M | Fourier (k_f) | chromatic Fourier (k_dm)], row i
-    /// scaled by `w[i]` (the same arithmetic as [`basis_columns`]).
-    fn whitened(&self, w: &[f64]) -> Array2<f64> {
+    /// scaled by `w[i]` (the same arithmetic as [`basis_columns`]). With `fold`, the ECORR rows
+    /// V of [`ecorr_rows`] are summed as each row is written (while it is in cache, instead of
+    /// a second pass over the n x c matrix); the plan's epochs list their TOAs in ascending
+    /// order, so each row of V receives the same additions in the same order: the same bytes.
+    fn whitened(&self, w: &[f64], fold: Option<&EcorrFold>) -> (Array2<f64>, Option<Array2<f64>>) {
         let n = self.t.len();
         let n_m = self.m.ncols();
         let k_f = self.k_f;
         let (c_four, c_dm) = (n_m, n_m + 2 * k_f);
         let n_cols = c_dm + 2 * self.k_dm;
-        let mut wa = Array2::<f64>::zeros((n, n_cols));
-        // The Fourier row of a basis without a stored table (the same call as in `make`).
-        let mut scratch = vec![
-            0.0;
-            if self.trig.is_none() {
-                2 * self.ladder.len()
-            } else {
-                0
-            }
-        ];
-        for (i, mut row) in wa.rows_mut().into_iter().enumerate() {
-            let row = row.as_slice_mut().expect("standard layout");
-            let trig: &[f64] = match &self.trig {
-                Some(table) => table.row(i).to_slice().expect("standard layout"),
-                None => {
-                    if !scratch.is_empty() {
-                        fourier_row_ladder(self.t[i], self.ladder[0], &mut scratch);
+        // Every value is written once, row by row, into memory that is not zeroed first.
+        let mut wa: Vec<f64> = Vec::with_capacity(n * n_cols);
+        let mut v = fold.map(|f| Array2::<f64>::zeros((f.n_epochs, n_cols)));
+        // The Fourier rows of a basis without a stored table, LANES rows at a time (the same
+        // bytes as one `fourier_row_ladder` call per row, as in `make`).
+        const LANES: usize = 4;
+        let width = 2 * self.ladder.len();
+        let computed = self.trig.is_none() && width > 0;
+        let mut scratch = vec![0.0; if computed { LANES * width } else { 0 }];
+        for i0 in (0..n).step_by(LANES) {
+            let rows = LANES.min(n - i0);
+            if computed {
+                if rows == LANES {
+                    let t: &[f64; LANES] = self.t[i0..i0 + LANES].try_into().expect("LANES TOAs");
+                    fourier_rows_ladder(t, self.ladder[0], width, &mut scratch);
+                } else {
+                    for l in 0..rows {
+                        fourier_row_ladder(
+                            self.t[i0 + l],
+                            self.ladder[0],
+                            &mut scratch[l * width..(l + 1) * width],
+                        );
                     }
-                    &scratch
                 }
-            };
-            let w = w[i];
-            for (dst, &src) in row[..n_m].iter_mut().zip(self.m.row(i)) {
-                *dst = w * src;
             }
-            for (dst, &src) in row[c_four..c_dm].iter_mut().zip(trig) {
-                *dst = w * src;
-            }
-            if self.k_dm > 0 {
-                let wd = w * self.dm_scale[i];
-                for (dst, &src) in row[c_dm..].iter_mut().zip(trig) {
-                    *dst = wd * src;
+            for l in 0..rows {
+                let i = i0 + l;
+                let trig: &[f64] = match &self.trig {
+                    Some(table) => table.row(i).to_slice().expect("standard layout"),
+                    None => &scratch[l * width..(l + 1) * width],
+                };
+                let w = w[i];
+                let row_start = wa.len();
+                wa.extend(self.m.row(i).iter().map(|&src| w * src));
+                wa.extend(trig[..c_dm - c_four].iter().map(|&src| w * src));
+                if self.k_dm > 0 {
+                    let wd = w * self.dm_scale[i];
+                    wa.extend(trig[..n_cols - c_dm].iter().map(|&src| wd * src));
+                }
+                let row = &wa[row_start..];
+                debug_assert_eq!(row.len(), n_cols);
+                if let (Some(f), Some(v)) = (fold, v.as_mut()) {
+                    let e = f.epoch[i];
+                    if e != usize::MAX {
+                        // `ArrayBase::scaled_add`'s arithmetic: y = y + (alpha x).
+                        let alpha = f.weight[i];
+                        let mut vr = v.row_mut(e);
+                        let vr = vr.as_slice_mut().expect("standard layout");
+                        for (y, &x) in vr.iter_mut().zip(row) {
+                            *y += alpha * x;
+                        }
+                    }
                 }
             }
         }
-        wa
+        let wa = Array2::from_shape_vec((n, n_cols), wa).expect("n rows of n_cols values");
+        (wa, v)
     }
 }
 
@@ -524,6 +555,41 @@ pub(crate) fn basis_columns(
 /// beta = c^2 / (1 + c^2 1^T D_I^-1 1); `sum_dinv` is 1^T D_I^-1 1.
 pub(crate) fn ecorr_beta(c2: f64, sum_dinv: f64) -> f64 {
     c2 / (1.0 + c2 * sum_dinv)
+}
+
+/// Which row of V each TOA adds to, for summing V as the whitened basis is written
+/// ([`PulsarBasis::whitened`]).
+struct EcorrFold {
+    /// The ECORR epoch of each TOA (`usize::MAX`: none).
+    epoch: Vec<usize>,
+    /// beta_e^(1/2) D_i^-1/2: the multiplier of row i in [`ecorr_rows`].
+    weight: Vec<f64>,
+    n_epochs: usize,
+}
+
+impl EcorrFold {
+    /// The plan for `epochs` (TOA indices and beta^(1/2)), or None when there are no epochs or
+    /// an epoch does not list its TOAs in ascending order (summing in row order would then
+    /// add them in another order than [`ecorr_rows`]).
+    fn plan(epochs: &[(Vec<usize>, f64)], sqrt_dinv: &[f64]) -> Option<Self> {
+        if epochs.is_empty() || epochs.iter().any(|(idx, _)| !idx.is_sorted()) {
+            return None;
+        }
+        let n = sqrt_dinv.len();
+        let mut epoch = vec![usize::MAX; n];
+        let mut weight = vec![0.0; n];
+        for (e, (idx, sqrt_beta)) in epochs.iter().enumerate() {
+            for &i in idx {
+                epoch[i] = e;
+                weight[i] = sqrt_beta * sqrt_dinv[i];
+            }
+        }
+        Some(EcorrFold {
+            epoch,
+            weight,
+            n_epochs: epochs.len(),
+        })
+    }
 }
 
 /// V (epochs x cols): row e is beta_e^(1/2) times the sum over epoch e of D^-1/2 times the rows
