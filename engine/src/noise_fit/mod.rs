@@ -220,14 +220,7 @@ impl PulsarFit {
     /// Warnings about this pulsar's fit (MAP not converged, chains not converged, divergences).
     pub fn warnings(&self) -> Vec<String> {
         let mut w = self.notes.clone();
-        if !self.map.converged {
-            w.push(format!(
-                "pulsar {}: the MAP search did not converge ({} of {} starts agree)",
-                self.label,
-                self.map.agreeing_runs,
-                self.map.runs.len()
-            ));
-        }
+        w.extend(self.map.warning(&self.label));
         if let Some(s) = &self.samples {
             if !s.converged {
                 let worst = s
