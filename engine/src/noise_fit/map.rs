@@ -322,7 +322,58 @@ pub fn maximum_a_posteriori(
 
 #[cfg(test)]
 mod tests {
-    use super::scaled_gradient;
+    use super::{scaled_gradient, MapResult, MapRun};
+
+    fn run(log_posterior: f64, converged: bool) -> MapRun {
+        MapRun {
+            start: vec![0.0],
+            values: vec![0.0],
+            log_posterior,
+            iterations: 12,
+            scaled_gradient: if converged { 1e-5 } else { 0.02 },
+            converged,
+            reason: "Solver converged".into(),
+        }
+    }
+
+    fn result(runs: Vec<MapRun>, agreeing_runs: usize, converged: bool) -> MapResult {
+        MapResult {
+            best: 0,
+            values: vec![0.0],
+            log_posterior: runs[0].log_posterior,
+            converged,
+            agreeing_runs,
+            runs,
+        }
+    }
+
+    #[test]
+    fn the_warning_says_why_the_starts_disagree() {
+        // The rule as docs/noise-estimation.md ("MAP") states it (our own rule, no outside
+        // reference). Confirmed by a second start: no warning, whatever the other starts did.
+        let ok = result(
+            vec![run(10.0, true), run(10.0, true), run(-500.0, true)],
+            2,
+            true,
+        );
+        assert_eq!(ok.warning("P1"), None);
+        // The best run stopped short of a maximum.
+        let short = result(vec![run(10.0, false), run(9.0, true)], 1, false);
+        let w = short.warning("P1").unwrap();
+        assert!(
+            w.contains("did not converge") && w.contains("2.0e-2"),
+            "{w}"
+        );
+        // Only the best start reached its maximum: the others at lower maxima or short.
+        let modes = result(
+            vec![run(10.0, true), run(9.5, true), run(3.0, false)],
+            1,
+            false,
+        );
+        let w = modes.warning("P1").unwrap();
+        assert!(w.contains("only 1 of 3") && w.contains("1 others") && w.contains("0.50"));
+        assert!(w.contains("1 stopped short"), "{w}");
+    }
 
     #[test]
     fn scaled_gradient_is_free_of_the_constant_of_ln_l() {
