@@ -391,6 +391,16 @@ impl Groups {
     }
 }
 
+/// What [`PulsarLikelihood::solve_compressed`] gives the gradient of a compressed form.
+struct Compressed {
+    lnl: f64,
+    chol: ScaledCholesky,
+    a: Array1<f64>,
+    binv: Vec<f64>,
+    red_share: Vec<f64>,
+    common_share: Vec<f64>,
+}
+
 impl PulsarLikelihood {
     /// The likelihood of pulsar `p` under `components`, Fourier frequencies on the ladder of
     /// `grid` (j / T_span, time origin `grid.t0_mjd`).
@@ -1034,18 +1044,8 @@ impl PulsarLikelihood {
         self
     }
 
-    /// [`Self::evaluate_in`] on grouped TOAs ([`Groups`]): the same formulas with the sums over
-    /// TOAs taken per group.
-    fn evaluate_grouped(
-        &self,
-        theta: &[f64],
-        grad: Option<&mut [f64]>,
-        groups: &Groups,
-    ) -> Result<f64> {
-        let non_finite = |what: &str| Error::NonFinite {
-            what: format!("the likelihood of pulsar {} ({what})", self.label),
-        };
-        let (n, cols) = self.t.dim();
+    /// Per backend, EFAC (1 when not a parameter) and EQUAD^2 (0 when not a parameter).
+    fn backend_white(&self, theta: &[f64]) -> (Vec<f64>, Vec<f64>) {
         let nb = self.backends.len();
         let mut efac = vec![1.0; nb];
         let mut equad2 = vec![0.0; nb];
@@ -1057,6 +1057,89 @@ impl PulsarLikelihood {
                 equad2[b] = 10f64.powf(2.0 * theta[i]);
             }
         }
+        (efac, equad2)
+    }
+
+    /// ln L of the compressed forms (grouped, interpolated) from their sums over TOAs: `s` =
+    /// T^T N^-1 T (B^-1 is added here), `tnr` = T^T N^-1 r, `rnr` = r^T N^-1 r, and ln det N.
+    /// r^T P r = r^T N^-1 r - (T^T N^-1 r)^T S^-1 (T^T N^-1 r) (Woodbury, as in [`FixedWhite`]).
+    fn solve_compressed(
+        &self,
+        theta: &[f64],
+        mut s: Array2<f64>,
+        tnr: &Array1<f64>,
+        rnr: f64,
+        log_det_n: f64,
+    ) -> Result<Compressed> {
+        let (n, cols) = self.t.dim();
+        let (phi, binv, red_share, common_share) = self.prior_variances(theta)?;
+        for c in self.n_m..cols {
+            s[[c, c]] += binv[c];
+        }
+        let chol = ScaledCholesky::from_owned(s, || {
+            format!("S = B^-1 + T^T N^-1 T of pulsar {}", self.label)
+        })?;
+        let a = chol.solve_vec(tnr.as_slice().expect("contiguous"));
+        let chi2 = rnr - a.dot(tnr);
+        let log_det_b: f64 = phi[self.n_m..].iter().map(|p| p.ln()).sum();
+        let lnl = -0.5 * (chi2 + log_det_n + log_det_b + chol.log_det())
+            - 0.5 * (n - self.n_m) as f64 * (2.0 * PI).ln();
+        if !lnl.is_finite() {
+            return Err(Error::NonFinite {
+                what: format!("the likelihood of pulsar {} (ln L)", self.label),
+            });
+        }
+        Ok(Compressed {
+            lnl,
+            chol,
+            a,
+            binv,
+            red_share,
+            common_share,
+        })
+    }
+
+    /// The red/DM/common part of the gradient of the compressed forms, from a = S^-1 T^T N^-1 r
+    /// and S^-1, added to `grad`; then every entry is checked finite.
+    fn prior_gradient(
+        &self,
+        a: &Array1<f64>,
+        s_inv: &Array2<f64>,
+        binv: &[f64],
+        red_share: &[f64],
+        common_share: &[f64],
+        grad: &mut [f64],
+    ) -> Result<()> {
+        let cols = self.t.ncols();
+        let mut h = vec![0.0; cols];
+        for c in self.n_m..cols {
+            h[c] = 0.5 * (a[c] * a[c] * binv[c] - 1.0 + s_inv[[c, c]] * binv[c]);
+        }
+        self.power_law_gradient(&h, red_share, common_share, grad);
+        if let Some(k) = grad.iter().position(|g| !g.is_finite()) {
+            return Err(Error::NonFinite {
+                what: format!(
+                    "the likelihood of pulsar {} (gradient in {})",
+                    self.label, self.params[k].name
+                ),
+            });
+        }
+        Ok(())
+    }
+
+    /// [`Self::evaluate_in`] on grouped TOAs ([`Groups`]): the same formulas with the sums over
+    /// TOAs taken per group.
+    fn evaluate_grouped(
+        &self,
+        theta: &[f64],
+        grad: Option<&mut [f64]>,
+        groups: &Groups,
+    ) -> Result<f64> {
+        let non_finite = |what: &str| Error::NonFinite {
+            what: format!("the likelihood of pulsar {} ({what})", self.label),
+        };
+        let cols = self.t.ncols();
+        let (efac, equad2) = self.backend_white(theta);
         let ng = groups.count.len();
         let mut d = vec![0.0; ng];
         let mut s = Array2::<f64>::zeros((cols, cols));
@@ -1074,23 +1157,14 @@ impl PulsarLikelihood {
             rnr += groups.rr[k] / dk;
             log_det_n += groups.count[k] * dk.ln();
         }
-        let (phi, binv, red_share, common_share) = self.prior_variances(theta)?;
-        for c in self.n_m..cols {
-            s[[c, c]] += binv[c];
-        }
-        let chol = ScaledCholesky::from_owned(s, || {
-            format!("S = B^-1 + T^T N^-1 T of pulsar {}", self.label)
-        })?;
-        let a = chol.solve_vec(tnr.as_slice().expect("contiguous"));
-        // r^T P r = r^T N^-1 r - (T^T N^-1 r)^T S^-1 (T^T N^-1 r) (Woodbury, as in
-        // [`FixedWhite`]).
-        let chi2 = rnr - a.dot(&tnr);
-        let log_det_b: f64 = phi[self.n_m..].iter().map(|p| p.ln()).sum();
-        let lnl = -0.5 * (chi2 + log_det_n + log_det_b + chol.log_det())
-            - 0.5 * (n - self.n_m) as f64 * (2.0 * PI).ln();
-        if !lnl.is_finite() {
-            return Err(non_finite("ln L"));
-        }
+        let Compressed {
+            lnl,
+            chol,
+            a,
+            binv,
+            red_share,
+            common_share,
+        } = self.solve_compressed(theta, s, &tnr, rnr, log_det_n)?;
         let Some(grad) = grad else {
             return Ok(lnl);
         };
@@ -1123,14 +1197,7 @@ impl PulsarLikelihood {
                 grad[i] += LN_10 * equad2[b] * h;
             }
         }
-        let mut h = vec![0.0; cols];
-        for c in self.n_m..cols {
-            h[c] = 0.5 * (a[c] * a[c] * binv[c] - 1.0 + s_inv[[c, c]] * binv[c]);
-        }
-        self.power_law_gradient(&h, &red_share, &common_share, grad);
-        if let Some(k) = grad.iter().position(|g| !g.is_finite()) {
-            return Err(non_finite(&format!("gradient in {}", self.params[k].name)));
-        }
+        self.prior_gradient(&a, &s_inv, &binv, &red_share, &common_share, grad)?;
         Ok(lnl)
     }
 
@@ -1157,19 +1224,10 @@ impl PulsarLikelihood {
         let non_finite = |what: &str| Error::NonFinite {
             what: format!("the likelihood of pulsar {} ({what})", self.label),
         };
-        let (n, cols) = self.t.dim();
+        let cols = self.t.ncols();
         let dim = cols + 3;
         let nb = self.backends.len();
-        let mut efac = vec![1.0; nb];
-        let mut equad2 = vec![0.0; nb];
-        for (b, wi) in self.white_index.iter().enumerate() {
-            if let Some(i) = wi.efac {
-                efac[b] = theta[i];
-            }
-            if let Some(i) = wi.equad {
-                equad2[b] = 10f64.powf(2.0 * theta[i]);
-            }
-        }
+        let (efac, equad2) = self.backend_white(theta);
         let len = grams.first().map_or(0, |g| g.packed_len());
         w.gram_h.resize(2 * nb * len, 0.0);
         let mut tval = vec![0.0; nb];
@@ -1219,21 +1277,14 @@ impl PulsarLikelihood {
             rnr += f * packed_entry(h, dim, cols, cols);
         }
         mirror_upper(&mut s);
-        let (phi, binv, red_share, common_share) = self.prior_variances(theta)?;
-        for c in self.n_m..cols {
-            s[[c, c]] += binv[c];
-        }
-        let chol = ScaledCholesky::from_owned(s, || {
-            format!("S = B^-1 + T^T N^-1 T of pulsar {}", self.label)
-        })?;
-        let a = chol.solve_vec(tnr.as_slice().expect("contiguous"));
-        let chi2 = rnr - a.dot(&tnr);
-        let log_det_b: f64 = phi[self.n_m..].iter().map(|p| p.ln()).sum();
-        let lnl = -0.5 * (chi2 + log_det_n + log_det_b + chol.log_det())
-            - 0.5 * (n - self.n_m) as f64 * (2.0 * PI).ln();
-        if !lnl.is_finite() {
-            return Err(non_finite("ln L"));
-        }
+        let Compressed {
+            lnl,
+            chol,
+            a,
+            binv,
+            red_share,
+            common_share,
+        } = self.solve_compressed(theta, s, &tnr, rnr, log_det_n)?;
         let Some(grad) = grad else {
             return Ok(Some(lnl));
         };
@@ -1278,14 +1329,7 @@ impl PulsarLikelihood {
                 grad[i] += LN_10 * equad2[b] * (q0 - d0 + tr_k0);
             }
         }
-        let mut h = vec![0.0; cols];
-        for c in self.n_m..cols {
-            h[c] = 0.5 * (a[c] * a[c] * binv[c] - 1.0 + s_inv[[c, c]] * binv[c]);
-        }
-        self.power_law_gradient(&h, &red_share, &common_share, grad);
-        if let Some(k) = grad.iter().position(|g| !g.is_finite()) {
-            return Err(non_finite(&format!("gradient in {}", self.params[k].name)));
-        }
+        self.prior_gradient(&a, &s_inv, &binv, &red_share, &common_share, grad)?;
         Ok(Some(lnl))
     }
 
