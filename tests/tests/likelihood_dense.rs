@@ -608,6 +608,19 @@ fn fixed_white_likelihood_matches_the_full_one() {
     }
 }
 
+/// The test scenario with every TOA uncertainty scattered by `dex` (so no two are equal),
+/// simulated with `seed` in a temporary folder that is removed again.
+fn scattered_release(dex: f64, name: &str, seed: u64) -> Release {
+    let scatter = SCENARIO.replace(
+        "sigma_us = [0.3, 1.5]",
+        &format!("sigma_us = [0.3, 1.5]\nsigma_scatter_dex = {dex}"),
+    );
+    let dir = temp_dir(name);
+    let rel = simulate_release(&scatter, &dir, seed);
+    let _ = std::fs::remove_dir_all(&dir);
+    rel
+}
+
 /// The interpolated white-weighted Gram (engine/src/white_gram.rs) with distinct TOA
 /// uncertainties (0.2 dex scatter, so the TOAs are not grouped): ln L against the dense form
 /// at 1e-10 relative (as above), the gradient against five-point central differences
@@ -616,13 +629,7 @@ fn fixed_white_likelihood_matches_the_full_one() {
 /// (interpolated in t) and without it (one t: the exact Gram kept).
 #[test]
 fn interpolated_white_gram_matches_dense_and_finite_differences() {
-    let scatter = SCENARIO.replace(
-        "sigma_us = [0.3, 1.5]",
-        "sigma_us = [0.3, 1.5]\nsigma_scatter_dex = 0.2",
-    );
-    let dir = temp_dir("likelihood-dense-interpolated");
-    let rel = simulate_release(&scatter, &dir, 7);
-    let _ = std::fs::remove_dir_all(&dir);
+    let rel = scattered_release(0.2, "likelihood-dense-interpolated", 7);
     let grid = FrequencyGrid::for_release(&rel, 1).unwrap();
     let mut rng = rand_chacha_rng(11);
     let backends = |equad: bool| {
@@ -755,13 +762,7 @@ fn interpolated_white_gram_matches_dense_and_finite_differences() {
 /// arithmetic, rounded differently only where BLAS sees buffers at other alignments).
 #[test]
 fn interpolated_white_gram_falls_back_when_its_check_fails() {
-    let scatter = SCENARIO.replace(
-        "sigma_us = [0.3, 1.5]",
-        "sigma_us = [0.3, 1.5]\nsigma_scatter_dex = 0.3",
-    );
-    let dir = temp_dir("likelihood-dense-fallback");
-    let rel = simulate_release(&scatter, &dir, 8);
-    let _ = std::fs::remove_dir_all(&dir);
+    let rel = scattered_release(0.3, "likelihood-dense-fallback", 8);
     let grid = FrequencyGrid::for_release(&rel, 1).unwrap();
     let comp = Components {
         backends: vec![
