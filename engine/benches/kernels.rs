@@ -1,7 +1,7 @@
 //! Criterion benchmarks of the engine's kernels at the size of one pulsar of the 100 x 10k
 //! benchmark array (docs/performance.md): the Fourier rows, the rank-k update of the reduction,
-//! the reduction of one pulsar, the pair traces of 100 pulsars and the parse of one residual
-//! table.
+//! the reduction of one pulsar, the pair traces of 100 pulsars, the covariances with signal of
+//! 100 pulsars and the parse of one residual table.
 //!
 //!     cargo bench -p ptacorr-engine
 
@@ -110,6 +110,42 @@ fn kernels(c: &mut Criterion) {
     let w: Vec<_> = (0..100).map(|_| weight(&r, &phi)).collect();
     c.bench_function("pair traces 100 pulsars K=30 (4950 pairs)", |b| {
         b.iter(|| pair_traces(black_box(&w)))
+    });
+
+    // The covariances with signal at 100 pulsars x 14 frequencies (N 2K = 2,800), 10 bins: the
+    // per-frequency covariance and the bin covariance from one set of joint-covariance slices.
+    let grid14 = FrequencyGrid::new(p.mjd[0], *p.mjd.last().unwrap(), 14).unwrap();
+    let r14 = reduce_pulsar(&p, &noise(false), &grid14, auto).unwrap();
+    let phi14 = ptacorr::spectrum::template(13.0 / 3.0, &grid14.freqs, grid14.t_span);
+    let w14: Vec<_> = (0..100).map(|_| weight(&r14, &phi14)).collect();
+    let dirs: Vec<_> = (0..100)
+        .map(|i| {
+            let (u, v) = ((i as f64 * 0.618_034) % 1.0, (i as f64 * 0.414_214) % 1.0);
+            ptacorr::sky::isotropic_direction(u, v)
+        })
+        .collect();
+    let g = Array2::from_shape_vec(
+        (100, 100),
+        ptacorr::orf::pattern_matrix(ptacorr::orf::Pattern::Hd, &dirs),
+    )
+    .unwrap();
+    let z14: Vec<_> = w14.iter().map(|x| x.z.clone()).collect();
+    let dc = vec![0.0; 28];
+    let slices = ptacorr::paircov::JointBlocks::new(&z14, &g, &dc, 1.0).unwrap();
+    let groups: Vec<Vec<usize>> = (0..10)
+        .map(|b| (b * 495..(b + 1) * 495).collect())
+        .collect();
+    c.bench_function("bin covariance 100 pulsars K=14 (10 bins)", |b| {
+        b.iter(|| {
+            ptacorr::bin_covariance::bin_covariance_with(black_box(&slices), &w14, 1.0, &groups)
+                .unwrap()
+        })
+    });
+    c.bench_function("per-frequency covariance 100 pulsars K=14", |b| {
+        b.iter(|| {
+            ptacorr::per_frequency::signal_covariance_with(black_box(&slices), &g, &[1.0; 14])
+                .unwrap()
+        })
     });
 
     let dir = std::env::temp_dir().join(format!("ptacorr-bench-{}", std::process::id()));

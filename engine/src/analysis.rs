@@ -309,7 +309,7 @@ fn extras(
     let m = 2 * grid.k();
     let bin_cov = if n * m > MAX_STACKED {
         Err(format!(
-            "not computed: N 2K = {} exceeds {MAX_STACKED} (memory of the joint covariance)",
+            "not computed: N 2K = {} exceeds {MAX_STACKED} (the cost grows as N^3 (2K)^2)",
             n * m
         ))
     } else {
@@ -320,12 +320,11 @@ fn extras(
         let dc = common_in_template_units(common, settings.spectral_index, grid);
         let a2 = hd.amplitude2.max(0.0);
         let z: Vec<ndarray::Array2<f64>> = w.iter().map(|x| x.z.clone()).collect();
-        let c = crate::paircov::joint_covariance(&z, &g, &dc, a2)?;
+        let c = crate::paircov::JointBlocks::new(&z, &g, &dc, a2)?;
         drop(z);
         pf.covariance_signal = Some(crate::per_frequency::signal_covariance_with(
             &c,
             &g,
-            m,
             &pf.amplitude2_sigma,
         )?);
         pf.signal_amplitude2 = Some(a2);

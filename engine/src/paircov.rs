@@ -240,6 +240,72 @@ pub fn joint_covariance(
     Ok(c)
 }
 
+/// The joint covariance C~ = C0 + a2 C1 of [`joint_covariance`] served one component pair at a
+/// time, without forming its (N 2K)^2 entries: for components r, s (0..2K) the N x N matrix
+///
+///   S_rs[b, c] = C~[(b, r), (c, s)] = a2 G_bc (Z~_b Z~_c)[r, s] + delta_bc B_b[r, s],
+///
+/// (B_b the noise block of C0) is one N x 2K by 2K x N product of the stacked rows r of every
+/// Z~_b with the stacked columns s of every Z~_c, scaled by a2 G and with B on the diagonal.
+/// Every slice together costs the same operations as the full matrix (N^2 (2K)^3 multiply-adds),
+/// but each is a cache-resident product and the callers, which need the slices anyway, no longer
+/// gather them with strided reads from a matrix of 63 MB at 100 pulsars x 14 frequencies.
+pub struct JointBlocks {
+    n: usize,
+    m: usize,
+    /// rows[r]: N x 2K, row b = row r of Z~_b.
+    rows: Vec<Array2<f64>>,
+    /// cols[s]: N x 2K, row c = column s of Z~_c.
+    cols: Vec<Array2<f64>>,
+    /// a2 G (N x N).
+    scaled_pattern: Array2<f64>,
+    /// B_b = Z~_b - Z~_b D_c Z~_b.
+    noise: Vec<Array2<f64>>,
+}
+
+impl JointBlocks {
+    /// The slices of C~ for weighted matrices `z`, pattern `g` (N x N, unit diagonal), common
+    /// auto-power `dc` (length 2K) and signal amplitude squared `a2`.
+    pub fn new(z: &[Array2<f64>], g: &Array2<f64>, dc: &[f64], a2: f64) -> Result<Self> {
+        let m = check_inputs(z, g, dc)?;
+        let n = z.len();
+        let rows = (0..m)
+            .map(|r| Array2::from_shape_fn((n, m), |(b, k)| z[b][[r, k]]))
+            .collect();
+        let cols = (0..m)
+            .map(|s| Array2::from_shape_fn((n, m), |(c, k)| z[c][[k, s]]))
+            .collect();
+        Ok(JointBlocks {
+            n,
+            m,
+            rows,
+            cols,
+            scaled_pattern: g * a2,
+            noise: noise_blocks(z, dc),
+        })
+    }
+
+    /// Number of pulsars N.
+    pub fn pulsars(&self) -> usize {
+        self.n
+    }
+
+    /// Components per pulsar, 2K.
+    pub fn components(&self) -> usize {
+        self.m
+    }
+
+    /// S_rs (N x N, see the type's documentation).
+    pub fn slice(&self, r: usize, s: usize) -> Array2<f64> {
+        let mut out = self.rows[r].dot(&self.cols[s].t());
+        out *= &self.scaled_pattern;
+        for b in 0..self.n {
+            out[[b, b]] += self.noise[b][[r, s]];
+        }
+        out
+    }
+}
+
 /// Var(A2_hat) by the explicit sum over pairs of pairs of the Isserlis form
 /// (docs/pair-covariance.md),
 /// Cov(n_ab, n_cd) = <C~_ac, C~_bd> + <C~_ad, C~_bc> (Allen & Romano 2023), with n_ab = x~_a.x~_b.
@@ -281,6 +347,35 @@ mod tests {
     use crate::sky::isotropic_direction;
     use rand::Rng;
     use rand_distr::StandardNormal;
+
+    /// Every slice S_rs of JointBlocks is the full matrix's entries C~[(b, r), (c, s)] (the
+    /// definition, formed densely by joint_covariance), to 1e-13 of the largest entry (one
+    /// product's rounding, in another summation order), with and without common auto-power.
+    #[test]
+    fn slices_are_the_joint_covariance() {
+        let (n, m) = (6, 4);
+        let (z, g) = toy(n, m, 21);
+        for dc in [vec![0.0; m], vec![0.5, 0.5, 0.1, 0.1]] {
+            let a2 = 2.3;
+            let c = joint_covariance(&z, &g, &dc, a2).unwrap();
+            let blocks = JointBlocks::new(&z, &g, &dc, a2).unwrap();
+            let big = c.iter().fold(0.0f64, |x, v| x.max(v.abs()));
+            for r in 0..m {
+                for s in 0..m {
+                    let sl = blocks.slice(r, s);
+                    for b in 0..n {
+                        for cc in 0..n {
+                            let want = c[[b * m + r, cc * m + s]];
+                            assert!(
+                                (sl[[b, cc]] - want).abs() <= 1e-13 * big,
+                                "({r},{s}) [{b},{cc}]"
+                            );
+                        }
+                    }
+                }
+            }
+        }
+    }
 
     /// Random symmetric positive-definite 2K x 2K matrices and an HD pattern on random skies.
     fn toy(n: usize, m: usize, seed: u64) -> (Vec<Array2<f64>>, Array2<f64>) {

@@ -83,22 +83,20 @@ pub fn signal_covariance(
         ));
     }
     let z: Vec<Array2<f64>> = w.iter().map(|x| x.z.clone()).collect();
-    let c = crate::paircov::joint_covariance(&z, g, dc, a2.max(0.0))?;
-    signal_covariance_with(&c, g, m, sigma)
+    let c = crate::paircov::JointBlocks::new(&z, g, dc, a2.max(0.0))?;
+    signal_covariance_with(&c, g, sigma)
 }
 
-/// [`signal_covariance`] from an already formed joint covariance `c` = C~ (N 2K square), with
-/// `m` = 2K rows per pulsar.
+/// [`signal_covariance`] from the slices `c` of the joint covariance C~.
 pub fn signal_covariance_with(
-    c: &Array2<f64>,
+    c: &crate::paircov::JointBlocks,
     g: &Array2<f64>,
-    m: usize,
     sigma: &[f64],
 ) -> Result<Vec<Vec<f64>>> {
     let n = g.nrows();
+    let m = c.components();
     let k = m / 2;
-    let nm = n * m;
-    if c.dim() != (nm, nm) || sigma.len() != k {
+    if c.pulsars() != n || sigma.len() != k {
         return Err(Error::setting(
             "per-frequency",
             "the joint covariance must be N 2K square, with one uncertainty per frequency",
@@ -109,40 +107,28 @@ pub fn signal_covariance_with(
         gp[[a, a]] = 0.0;
     }
     // Per component pair, as in bin_covariance.rs: with V_ij the N x N matrix
-    // V_ij[c, b] = C~[(c, i), (b, j)], the (i, j) block of P is G' V_ij, and C~ symmetric gives
-    // V_ji = V_ij^T, so the rows r of component i and s of component j add
+    // V_ij[c, b] = C~[(c, i), (b, j)] (the slice S_ij of JointBlocks), the (i, j) block of P is
+    // G' V_ij, and C~ symmetric gives V_ji = V_ij^T, so the rows r of component i and s of
+    // component j add
     //   sum_ab (G' V_ij)[a, b] (G' V_ji)[b, a] = <G' V_ij, V_ij G'> (Frobenius),
     // the same for (j, i). Two N x N products per pair i <= j (the same 2 (2K)^2 N^3 operations
     // as the one product G' C~ in all), each on cache-resident N x N matrices, and nothing of
-    // size (N 2K)^2 is written; the pairs run in parallel a chunk at a time and their terms are
-    // added in pair order, so the result does not depend on the thread count.
-    let gather = |i: usize, j: usize| -> Array2<f64> {
-        let mut v = Array2::<f64>::zeros((n, n));
-        for cc in 0..n {
-            let row = c.row(cc * m + i);
-            for b in 0..n {
-                v[[cc, b]] = row[b * m + j];
-            }
-        }
-        v
-    };
+    // size (N 2K)^2 is written; the pairs run in one parallel loop and their terms are added in
+    // pair order, so the result does not depend on the thread count.
     let term = |(i, j): (usize, usize)| -> f64 {
-        let v = gather(i, j);
+        let v = c.slice(i, j);
         let left = gp.dot(&v);
         let right = v.dot(&gp);
         crate::optimal::frobenius(&left, &right)
     };
     let tasks: Vec<(usize, usize)> = (0..m).flat_map(|i| (i..m).map(move |j| (i, j))).collect();
     let mut cov = vec![vec![0.0; k]; k];
-    let chunk = 16 * rayon::current_num_threads().max(1);
-    for part in tasks.chunks(chunk) {
-        let terms: Vec<f64> = part.par_iter().map(|&t| term(t)).collect();
-        for (&(i, j), t) in part.iter().zip(terms) {
-            let (fi, fj) = (i / 2, j / 2);
-            cov[fi][fj] += t;
-            if i != j {
-                cov[fj][fi] += t;
-            }
+    let terms: Vec<f64> = tasks.par_iter().map(|&t| term(t)).collect();
+    for (&(i, j), t) in tasks.iter().zip(terms) {
+        let (fi, fj) = (i / 2, j / 2);
+        cov[fi][fj] += t;
+        if i != j {
+            cov[fj][fi] += t;
         }
     }
     for i in 0..k {
@@ -599,20 +585,27 @@ mod tests {
     fn block_form_is_the_dense_trace() {
         // The per-component-pair form equals the definition written out densely,
         // (1/2) sum over rows r of frequency k and s of frequency l of P_rs P_sr with
-        // P = (G' (x) I) C (Isserlis 1918), on a random symmetric C; tolerance: a few hundred
-        // roundings of terms of order one (1e-12 relative).
+        // P = (G' (x) I) C (Isserlis 1918), with C the full joint covariance
+        // (paircov::joint_covariance) of random symmetric Z~, random common auto-power and a
+        // random pattern; the block form reads it through JointBlocks' slices. Tolerance: a few
+        // hundred roundings of terms of order one (1e-12 relative).
         let (n, k) = (5, 3);
         let m = 2 * k;
         let nm = n * m;
         let mut r = crate::rng::stream(5, crate::rng::Purpose::Layout, 0);
-        let mut c = Array2::<f64>::zeros((nm, nm));
-        for i in 0..nm {
-            for j in 0..=i {
-                let v = rand::Rng::random::<f64>(&mut r) - 0.5;
-                c[[i, j]] = v;
-                c[[j, i]] = v;
+        let mut z = Vec::new();
+        for _ in 0..n {
+            let mut za = Array2::<f64>::zeros((m, m));
+            for i in 0..m {
+                for j in 0..=i {
+                    let v = rand::Rng::random::<f64>(&mut r) - 0.5;
+                    za[[i, j]] = v;
+                    za[[j, i]] = v;
+                }
             }
+            z.push(za);
         }
+        let dc: Vec<f64> = (0..m).map(|_| rand::Rng::random::<f64>(&mut r)).collect();
         let mut g = Array2::<f64>::eye(n);
         for a in 0..n {
             for b in 0..a {
@@ -621,8 +614,11 @@ mod tests {
                 g[[b, a]] = v;
             }
         }
-        let sigma = [1.0, 0.5, 2.0];
-        let got = signal_covariance_with(&c, &g, m, &sigma).unwrap();
+        let a2 = 1.3;
+        let c = crate::paircov::joint_covariance(&z, &g, &dc, a2).unwrap();
+        let blocks = crate::paircov::JointBlocks::new(&z, &g, &dc, a2).unwrap();
+        let sigma = [1.0f64, 0.5, 2.0];
+        let got = signal_covariance_with(&blocks, &g, &sigma).unwrap();
         let mut gpi = Array2::<f64>::zeros((nm, nm));
         for a in 0..n {
             for b in 0..n {
