@@ -225,7 +225,8 @@ fn standard(a: &Array2<f64>) -> &[f64] {
 }
 
 /// The pairs of one bin by pulsar: for each row a, the rows b of the pairs (a, b) or (b, a)
-/// of the bin, in the bin's pair order (compressed rows: `list[start[a]..start[a + 1]]`).
+/// of the bin, in the bin's pair order (compressed rows: `list[start[a]..start[a + 1]]`), each
+/// stored as the offset b N of its row in an N x N row-major matrix.
 struct Partners {
     start: Vec<usize>,
     list: Vec<usize>,
@@ -244,9 +245,9 @@ impl Partners {
         let mut next = start.clone();
         let mut list = vec![0usize; start[n]];
         for &(a, b) in pairs {
-            list[next[a]] = b;
+            list[next[a]] = b * n;
             next[a] += 1;
-            list[next[b]] = a;
+            list[next[b]] = a * n;
             next[b] += 1;
         }
         Partners { start, list }
@@ -344,8 +345,8 @@ fn tile_rows<const W: usize>(
     transpose: bool,
     dst: &mut [f64],
 ) {
-    let row =
-        |b: usize| -> &[f64; W] { w[b * n + c0..b * n + c0 + W].try_into().expect("one tile") };
+    let tile = &w[c0..];
+    let row = |off: usize| -> &[f64; W] { tile[off..off + W].try_into().expect("one tile") };
     let add = |acc: &mut [f64; W], src: &[f64; W]| {
         for (d, v) in acc.iter_mut().zip(src) {
             *d += *v;
