@@ -219,11 +219,11 @@ fn lane_dot(a: &[f64], b: &[f64], c: Option<&[f64]>) -> f64 {
     lane_sum(&s)
 }
 
-/// The sums of one candidate over the padded pair array in three flat passes: the cosines of
+/// The sums of one candidate over the padded pair array in two flat passes: the cosines of
 /// every row in whole vectors of [`LANES`] (fixed-size arrays, so no row ends in a scalar
-/// remainder), then the pattern over the whole array in one long loop (which the compiler
-/// vectorises and the processor overlaps across iterations: in rows of a few vectors the
-/// pattern's long dependency chain and the loop's set-up were not hidden), then the four sums.
+/// remainder), then the pattern and the four sums over the whole array in one long loop (which
+/// the compiler vectorises and the processor overlaps across iterations: in rows of a few
+/// vectors the pattern's long dependency chain and the loop's set-up were not hidden).
 /// Lane l of each sum adds the terms at indices l mod [`LANES`] in order: the same terms in the
 /// same order as [`lane_dot`] over the values of [`pattern_pass`], so the results are bit for
 /// bit those of the separate passes (test `fused_pass_is_the_passes`). `valid` is 1 at a pair
@@ -256,16 +256,30 @@ fn fused_pass<F: Fn(f64) -> f64>(
         }
         k += plen;
     }
-    let g = &mut g[..k];
-    for (v, ok) in g.iter_mut().zip(&t.valid[..k]) {
-        *v = f(*v) * ok;
+    // The pattern and the four sums in one long loop: four independent chains of additions
+    // per lane (one chain per sum, as four separate passes had, but overlapped instead of each
+    // waiting on its own additions' latency), the same terms in the same order.
+    let mut sums = [[0.0f64; LANES]; 4];
+    let chunks = g[..k]
+        .chunks_exact(LANES)
+        .zip(t.valid[..k].chunks_exact(LANES))
+        .zip(t.g_true[..k].chunks_exact(LANES))
+        .zip(t.numerators[..k].chunks_exact(LANES))
+        .zip(t.traces[..k].chunks_exact(LANES));
+    for ((((gc, ok), gt), num), tr) in chunks {
+        for l in 0..LANES {
+            let v = f(gc[l]) * ok[l];
+            sums[0][l] += v * gt[l];
+            sums[1][l] += v * v;
+            sums[2][l] += v * num[l];
+            sums[3][l] += v * v * tr[l];
+        }
     }
-    let g = &g[..];
     [
-        lane_dot(g, &t.g_true[..k], None),
-        lane_dot(g, g, None),
-        lane_dot(g, &t.numerators[..k], None),
-        lane_dot(g, g, Some(&t.traces[..k])),
+        lane_sum(&sums[0]),
+        lane_sum(&sums[1]),
+        lane_sum(&sums[2]),
+        lane_sum(&sums[3]),
     ]
 }
 
