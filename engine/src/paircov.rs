@@ -28,8 +28,8 @@
 //!   Var(Q) = v0 + v1 a2 + v2 a2^2,
 //!   v0 = (1/2) tr(Y0 Y0),  v1 = tr(Y0 Y1),  v2 = (1/2) tr(Y1 Y1),  Yk = (G' (x) I) Ck,
 //!
-//! computed once per analysis in O(N^3 (2K)^2) (one matrix product), after which the variance at
-//! any amplitude (the injected one, or the recovered one a data analyst would plug in) costs
+//! computed once per analysis in O(N^3 (2K)^2) (two N x N products per pair of components,
+//! nothing of size (N 2K)^2 formed), after which the variance at any amplitude (the injected one, or the recovered one a data analyst would plug in) costs
 //! nothing. At a2 = 0 with D_c = 0 it reduces to S, i.e. Var(A2_hat) = sigma_0^2.
 
 use crate::error::{Error, Result};
@@ -114,7 +114,6 @@ pub fn variance_polynomial(
 ) -> Result<VariancePolynomial> {
     let m = check_inputs(z, g, dc)?;
     let n = z.len();
-    let nm = n * m;
     let mut gp = g.clone();
     for a in 0..n {
         gp[[a, a]] = 0.0;
@@ -141,59 +140,39 @@ pub fn variance_polynomial(
         }
     }
 
-    // C1 (N m x N m), blocks G_ab Z~_a Z~_b: block row a = Z~_a [Z~_1 ... Z~_N] scaled.
-    let mut stacked = Array2::<f64>::zeros((m, nm));
-    for (b, zb) in z.iter().enumerate() {
-        stacked.slice_mut(s![.., b * m..(b + 1) * m]).assign(zb);
-    }
-    let mut c1 = Array2::<f64>::zeros((nm, nm));
-    for a in 0..n {
-        let row = z[a].dot(&stacked);
-        let mut dst = c1.slice_mut(s![a * m..(a + 1) * m, ..]);
-        dst.assign(&row);
-        for b in 0..n {
-            dst.slice_mut(s![.., b * m..(b + 1) * m])
-                .mapv_inplace(|v| v * g[[a, b]]);
+    // v2 and v1 one pair of components (i, j) at a time, as in per_frequency.rs: with
+    // V_ij[c, b] = C1[(c, i), (b, j)] (the signal slice of JointBlocks at a2 = 1), block (i, j)
+    // of Y1 is G' V_ij, and C1 symmetric gives V_ji = V_ij^T, so
+    //   tr(Y1 Y1) = sum_ij <G' V_ij, V_ij G'>,
+    //   tr(Y0 Y1) = sum_ij sum_ab G'_ab B_b[i, j] (V_ij G')[a, b]   (C0 = blockdiag B),
+    // the terms of (i, j) and (j, i) equal (B symmetric, G' symmetric). Two N x N products per
+    // pair i <= j (the N^3 (2K)^2 operations of the one product (G' (x) I) C1), on
+    // cache-resident matrices: nothing of size (N 2K)^2 is formed (two such matrices were 9.2 GB
+    // at 200 pulsars x 60 frequencies). The pairs run in one parallel loop and their terms are
+    // added in pair order, so the result does not depend on the thread count.
+    let blocks = JointBlocks::new(z, g, dc, 1.0)?;
+    let term = |(i, j): (usize, usize)| -> (f64, f64) {
+        let v = blocks.signal_slice(i, j);
+        let left = gp.dot(&v);
+        let right = v.dot(&gp);
+        let mut t1 = 0.0;
+        for a in 0..n {
+            for b in 0..n {
+                t1 += gp[[a, b]] * blocks.noise_entry(b, i, j) * right[[a, b]];
+            }
         }
-    }
-    // Y1 = (G' (x) I) C1: rows of block-row a are sum_b G'_ab (block-row b); as a product of
-    // G' (N x N) with C1 viewed as N x (m N m), which is its row-major memory layout.
-    let c1_flat = c1
-        .into_shape_with_order((n, m * nm))
-        .expect("contiguous C1");
-    let y1 = gp
-        .dot(&c1_flat)
-        .into_shape_with_order((nm, nm))
-        .expect("contiguous Y1");
-
-    // v2 = (1/2) tr(Y1 Y1) = (1/2) sum_rs Y1_rs Y1_sr.
-    let mut v2 = 0.0;
-    for r in 0..nm {
-        for c in 0..nm {
-            v2 += y1[[r, c]] * y1[[c, r]];
-        }
+        let w = if i == j { 1.0 } else { 2.0 };
+        (w * frobenius(&left, &right), w * t1)
+    };
+    use rayon::prelude::*;
+    let tasks: Vec<(usize, usize)> = (0..m).flat_map(|i| (i..m).map(move |j| (i, j))).collect();
+    let terms: Vec<(f64, f64)> = tasks.par_iter().map(|&t| term(t)).collect();
+    let (mut v1, mut v2) = (0.0, 0.0);
+    for (t2, t1) in terms {
+        v2 += t2;
+        v1 += t1;
     }
     v2 *= 0.5;
-
-    // v1 = tr(Y0 Y1), (Y0)_ab = G'_ab B_b: sum_ab G'_ab tr(B_b (Y1)_ba).
-    let mut v1 = 0.0;
-    for a in 0..n {
-        for b in 0..n {
-            let w = gp[[a, b]];
-            if w == 0.0 {
-                continue;
-            }
-            let blk = y1.slice(s![b * m..(b + 1) * m, a * m..(a + 1) * m]);
-            // tr(B_b Yba) = sum_ij B_b,ij Yba,ji
-            let mut t = 0.0;
-            for i in 0..m {
-                for j in 0..m {
-                    t += bl[b][[i, j]] * blk[[j, i]];
-                }
-            }
-            v1 += w * t;
-        }
-    }
     let out = VariancePolynomial { v0, v1, v2, norm };
     if [v0, v1, v2].iter().any(|v| !v.is_finite()) {
         return Err(Error::NonFinite {
@@ -297,12 +276,23 @@ impl JointBlocks {
 
     /// S_rs (N x N, see the type's documentation).
     pub fn slice(&self, r: usize, s: usize) -> Array2<f64> {
-        let mut out = self.rows[r].dot(&self.cols[s].t());
-        out *= &self.scaled_pattern;
+        let mut out = self.signal_slice(r, s);
         for b in 0..self.n {
             out[[b, b]] += self.noise[b][[r, s]];
         }
         out
+    }
+
+    /// The signal part of S_rs alone: a2 G_bc (Z~_b Z~_c)[r, s] (the slice of a2 C1).
+    pub fn signal_slice(&self, r: usize, s: usize) -> Array2<f64> {
+        let mut out = self.rows[r].dot(&self.cols[s].t());
+        out *= &self.scaled_pattern;
+        out
+    }
+
+    /// B_b[r, s], the noise part of S_rs (its diagonal).
+    pub fn noise_entry(&self, b: usize, r: usize, s: usize) -> f64 {
+        self.noise[b][[r, s]]
     }
 }
 
