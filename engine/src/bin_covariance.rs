@@ -39,6 +39,9 @@ use statrs::distribution::{ChiSquared, ContinuousCDF};
 /// 100 pulsars x 14 frequencies), so larger arrays skip it with a note rather than spend minutes.
 pub const MAX_STACKED: usize = 4096;
 
+/// Component pairs per parallel batch of [`bin_covariance_with`].
+const TASK_CHUNK: usize = 1024;
+
 /// The covariance of the binned correlations at one amplitude.
 #[derive(Clone, Debug, PartialEq, serde::Serialize)]
 pub struct BinCovariance {
@@ -187,12 +190,15 @@ pub fn bin_covariance_with(
         }
     };
     let tasks: Vec<(usize, usize)> = (0..m).flat_map(|i| (i..m).map(move |j| (i, j))).collect();
-    // Tasks in parallel (one parallel loop: no waiting between chunks), their shares (nb x nb
-    // each, small) added in task order: thread-count independent bytes.
-    let shares: Vec<Array2<f64>> = tasks.par_iter().map(|&t| share(t)).collect();
+    // Tasks in parallel, TASK_CHUNK at a time (the shares held at once stay bounded for arrays
+    // with few pulsars and many frequencies; large enough that the workers seldom wait), their
+    // shares (nb x nb each) added in task order: thread-count independent bytes.
     let mut total = Array2::<f64>::zeros((nb, nb));
-    for q in shares {
-        total += &q;
+    for part in tasks.chunks(TASK_CHUNK) {
+        let shares: Vec<Array2<f64>> = part.par_iter().map(|&t| share(t)).collect();
+        for q in shares {
+            total += &q;
+        }
     }
     let mut cov = vec![vec![0.0; nb]; nb];
     for bi in 0..nb {
