@@ -230,12 +230,7 @@ impl FixedWhite<'_> {
     pub fn log_likelihood_and_gradient(&self, theta: &[f64], grad: &mut [f64]) -> Result<f64> {
         let lik = self.lik;
         lik.check_theta(theta)?;
-        if grad.len() != lik.params.len() {
-            return Err(Error::setting(
-                "gradient",
-                "gradient buffer has the wrong length",
-            ));
-        }
+        lik.check_gradient(grad)?;
         let (n, cols) = lik.t.dim();
         let m = lik.n_m;
         let (phi, binv, red_share, common_share) = lik.prior_variances(theta)?;
@@ -1168,13 +1163,7 @@ impl PulsarLikelihood {
         let Some(grad) = grad else {
             return Ok(lnl);
         };
-        if grad.len() != self.params.len() {
-            return Err(Error::setting(
-                "gradient",
-                "gradient buffer has the wrong length",
-            ));
-        }
-        grad.iter_mut().for_each(|g| *g = 0.0);
+        self.clear_gradient(grad)?;
         let s_inv = chol.inverse();
         for k in 0..ng {
             let b = groups.backend[k];
@@ -1288,13 +1277,7 @@ impl PulsarLikelihood {
         let Some(grad) = grad else {
             return Ok(Some(lnl));
         };
-        if grad.len() != self.params.len() {
-            return Err(Error::setting(
-                "gradient",
-                "gradient buffer has the wrong length",
-            ));
-        }
-        grad.iter_mut().for_each(|g| *g = 0.0);
+        self.clear_gradient(grad)?;
         let s_inv = chol.inverse();
         let mut z = vec![0.0; dim];
         z.iter_mut().zip(a.iter()).for_each(|(z, a)| *z = -a);
@@ -1331,6 +1314,24 @@ impl PulsarLikelihood {
         }
         self.prior_gradient(&a, &s_inv, &binv, &red_share, &common_share, grad)?;
         Ok(Some(lnl))
+    }
+
+    /// An error unless `grad` has one entry per parameter.
+    fn check_gradient(&self, grad: &[f64]) -> Result<()> {
+        if grad.len() != self.params.len() {
+            return Err(Error::setting(
+                "gradient",
+                "gradient buffer has the wrong length",
+            ));
+        }
+        Ok(())
+    }
+
+    /// [`Self::check_gradient`], then every entry set to 0 for the sums that follow.
+    fn clear_gradient(&self, grad: &mut [f64]) -> Result<()> {
+        self.check_gradient(grad)?;
+        grad.iter_mut().for_each(|g| *g = 0.0);
+        Ok(())
     }
 
     fn evaluate_in(&self, theta: &[f64], grad: Option<&mut [f64]>, w: &mut Work) -> Result<f64> {
@@ -1373,13 +1374,7 @@ impl PulsarLikelihood {
         let Some(grad) = grad else {
             return Ok(lnl);
         };
-        if grad.len() != self.params.len() {
-            return Err(Error::setting(
-                "gradient",
-                "gradient buffer has the wrong length",
-            ));
-        }
-        grad.iter_mut().for_each(|g| *g = 0.0);
+        self.clear_gradient(grad)?;
 
         // P r = N^-1 (r - T a), per TOA: D^-1/2 (e_i - D_i^-1/2 beta^(1/2) es_epoch); and
         // N^-1 T in place of D^-1/2 T, row by row.
